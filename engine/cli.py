@@ -1,0 +1,147 @@
+"""The ``lenslane`` command line."""
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+from engine import __version__
+from engine.models import CAUTION
+
+
+def _host(lab: Path | None, trace: bool = False):
+    from engine.config import load_config
+    from engine.host import start_host
+
+    return start_host(load_config(lab), trace=trace or None)
+
+
+def cmd_init(args) -> int:
+    from engine.inbox import init_lab
+
+    created = init_lab(Path(args.lab))
+    print(f"lab folder {args.lab}: " + (("created " + ", ".join(created)) if created else "already set up, nothing changed"))
+    return 0
+
+
+def cmd_schema(args) -> int:
+    from engine.models import LensOrder, LensOrderResult
+
+    model = LensOrderResult if args.result else LensOrder
+    print(json.dumps(model.model_json_schema(), indent=2, ensure_ascii=False))
+    return 0
+
+
+def cmd_preview(args) -> int:
+    from engine.intake import OrderRejected, read_order
+    from engine.pipeline import Pipeline, StageFailure
+
+    host = _host(Path(args.lab) if args.lab else None, args.trace_hooks)
+    raw = Path(args.file).read_bytes()
+    try:
+        order, parsed = read_order(raw, host.settings.materials)
+        result = Pipeline(host).run(order, parsed).result
+    except OrderRejected as exc:
+        print(json.dumps({"file": args.file, "rejected": True, "problems": exc.problems}, indent=1, ensure_ascii=False))
+        return 1
+    except StageFailure as exc:
+        print(json.dumps({"file": args.file, "rejected": True,
+                          "problems": [{"field": f"(stage {exc.stage})", "message": exc.message}]}, indent=1))
+        return 1
+    print(json.dumps(result, indent=1, ensure_ascii=False))
+    return 0
+
+
+def cmd_plugins(args) -> int:
+    host = _host(Path(args.lab) if args.lab else None)
+    chain = [link.stage.name for link in host.chain]
+    rows = [("stage", "position", "enabled", "from", "version", "plugin")]
+    for name, info in host.stages.items():
+        if name in chain:
+            position, enabled = str(chain.index(name) + 1), "yes"
+        elif name in host.disabled:
+            position, enabled = str(host.config.engine.chain.index(name) + 1), "no (disabled)"
+        else:
+            position, enabled = "-", "no (not in engine.chain)"
+        rows.append((name, position, enabled, info.origin, info.version, info.plugin))
+    rows[1:] = sorted(rows[1:], key=lambda r: (r[1] == "-", int(r[1]) if r[1] != "-" else 0, r[0]))
+    widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
+    for row in rows:
+        print("  ".join(cell.ljust(width) for cell, width in zip(row, widths)).rstrip())
+    if host.config.engine.blocked:
+        print("blocked (not loaded): " + ", ".join(host.config.engine.blocked))
+    return 0
+
+
+def cmd_watch(args) -> int:
+    from engine.inbox import Lab
+
+    lab = Lab(Path(args.lab), _host(Path(args.lab), args.trace_hooks))
+    if args.once:
+        done = lab.drain()
+        published = sum(1 for p in done if p.outcome == "published")
+        review = sum(1 for p in done if p.status == "review")
+        rejected = sum(1 for p in done if p.outcome == "rejected")
+        print(f"{len(done)} orders: {published} published ({review} held for review), {rejected} rejected")
+        return 0
+    from engine.daemon import run_daemon
+
+    return run_daemon(lab)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="lenslane",
+        description="Unattended checks, compensation and audit trail for spectacle-lens orders.",
+        epilog=CAUTION,
+    )
+    parser.add_argument("--version", action="version", version=f"lenslane {__version__}")
+    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    sub = commands.add_parser("init", help="make a lab folder (idempotent)", description="Make LAB/inbox, outbox, "
+                              "rejected, archive, work, an empty audit.jsonl and a commented lenslane.toml. "
+                              "Never overwrites an existing config.")
+    sub.add_argument("lab", metavar="LAB")
+    sub.set_defaults(func=cmd_init)
+
+    sub = commands.add_parser("watch", help="process the lab's inbox", description="Watch LAB/inbox and process "
+                              "every order: results to outbox/, bad orders to rejected/, inputs to archive/.")
+    sub.add_argument("lab", metavar="LAB")
+    sub.add_argument("--once", action="store_true", help="drain the inbox once and exit")
+    sub.add_argument("--trace-hooks", action="store_true", help="print every hook call to standard error")
+    sub.set_defaults(func=cmd_watch)
+
+    sub = commands.add_parser("preview", help="print the result of one order file, writing nothing",
+                              description="Run one order file through the chain and print the result JSON.")
+    sub.add_argument("file", metavar="FILE")
+    sub.add_argument("--lab", metavar="LAB", help="use this lab's config (default: the built-in defaults)")
+    sub.add_argument("--trace-hooks", action="store_true", help="print every hook call to standard error")
+    sub.set_defaults(func=cmd_preview)
+
+    sub = commands.add_parser("plugins", help="list the stages and where they come from",
+                              description="List every stage: its place in the chain, whether it is enabled, "
+                              "the distribution that provides it and its version.")
+    sub.add_argument("--lab", metavar="LAB", help="use this lab's config (default: the built-in defaults)")
+    sub.set_defaults(func=cmd_plugins)
+
+    sub = commands.add_parser("schema", help="print the JSON Schema of the order (or of the result)",
+                              description="Print the JSON Schema of lens-order/1, or of lens-order-result/1.")
+    sub.add_argument("--result", action="store_true", help="the schema of the result instead")
+    sub.set_defaults(func=cmd_schema)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    from engine.config import ConfigError
+
+    args = build_parser().parse_args(argv)
+    try:
+        return args.func(args)
+    except ConfigError as exc:
+        print(f"lenslane: bad config: {exc}", file=sys.stderr)
+        return 2
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

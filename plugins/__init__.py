@@ -1,0 +1,1 @@
+"""The built-in stages of lenslane, one small module each, and the optics they need."""
