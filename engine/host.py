@@ -86,8 +86,11 @@ def _origin_of(pm: pluggy.PluginManager, plugin: object) -> tuple[str, str]:
     return "built-in", __version__
 
 
-def start_host(config: LabConfig, trace: bool | None = None) -> Host:
+def start_host(config: LabConfig, trace: bool | None = None, plugins: dict[str, object] | None = None) -> Host:
     """Load every plugin, check the hooks, validate the chain and its parameters.
+
+    ``plugins`` registers further plugin objects by name, beside the built-in
+    and installed ones (for a program that embeds the engine, and for tests).
 
     Raises
     ------
@@ -100,6 +103,9 @@ def start_host(config: LabConfig, trace: bool | None = None) -> Host:
     pm = _new_plugin_manager(config.engine.blocked)
     _register_builtins(pm)
     pm.load_setuptools_entrypoints(ENTRY_POINT_GROUP)
+    for name, plugin in (plugins or {}).items():
+        if not pm.is_blocked(name):
+            pm.register(plugin, name=name)
     pm.check_pending()
     if trace if trace is not None else config.engine.trace_hooks:
         enable_tracing(pm)

@@ -86,7 +86,7 @@ class Lens(_Strict):
         materials = (info.context or {}).get("materials")
         if materials is not None and value not in materials:
             known = ", ".join(sorted(materials))
-            raise ValueError(f"unknown material {value!r}; the lab's table has: {known}")
+            raise ValueError(f"unknown material {value!r} (the lab's table has: {known})")
         return value
 
 
