@@ -210,3 +210,12 @@ def test_the_schemas_are_published_from_the_models():
     result_schema = LensOrderResult.model_json_schema()
     assert result_schema["title"] == "lens-order-result/1"
     assert {"lenses", "changes", "flags", "engine", "status"} <= set(result_schema["required"])
+
+
+@pytest.mark.parametrize("model, name", [(LensOrder, "lens-order-1.schema.json"),
+                                         (LensOrderResult, "lens-order-result-1.schema.json")])
+def test_the_published_schema_files_match_the_models(model, name):
+    from tests.conftest import REPO
+
+    published = json.loads((REPO / "schema" / name).read_text())
+    assert published == model.model_json_schema(), f"regenerate schema/{name} with `lenslane schema`"
