@@ -1,0 +1,133 @@
+"""Stage ``tilt``: the surfacing power for the pantoscopic tilt and face form at which the lens is worn.
+
+A tilted lens acts along the line of sight as ``k Sᵀ F S`` (Martin's formula on
+the power matrix). When the order gives a pantoscopic or face-form angle, the
+surfacing power becomes the exact inverse ``F = S⁻ᵀ F_w S⁻¹ / k`` of the wanted
+power ``F_w`` (the surfacing power so far, after vertex compensation), with the
+lens index from the order or the lab's material table. A lab that lowers
+optical centres for pantoscopic tilt instead leaves such designs out of
+``apply_to``. Whatever happens, the result says what was and was not applied,
+and why.
+"""
+from __future__ import annotations
+
+import math
+
+from pydantic import Field
+
+from engine import Flag, Stage, hookimpl
+from plugins.compensation import (
+    CompensationParams, Design, matrix_of, no_surfacing, not_applied, power_dict, propose, trade_notation,
+)
+from plugins.optics.tilt import compensate_tilt, martin_factor, tangential_meridian_deg, tilt_obliquity
+
+METHOD = ("exact inverse of Martin's tilt formula on the power matrix, F = S⁻ᵀ F_w S⁻¹ / k, "
+          "k = 1 + sin²θ/(2n), S = I + (sec θ − 1) t tᵀ, cos θ = cos p · cos w")
+SOURCE = ("Martin's formula, as given in Jalie, The Principles of Ophthalmic Lenses, and Brooks & Borish, "
+          "System for Ophthalmic Dispensing; power-matrix generalisation: Harris, Optom Vis Sci 2002; "
+          "Keating, Optom Vis Sci 1995")
+
+ALL_DESIGNS: list[Design] = ["single_vision", "progressive", "bifocal"]
+
+
+class TiltParams(CompensationParams):
+    """``[stages.tilt]``."""
+
+    apply_to: list[Design] = Field(default_factory=lambda: list(ALL_DESIGNS))
+    """The designs whose surfacing power is compensated for tilt."""
+
+
+def _missing_fit(view, params: TiltParams, pantoscopic, face_form):
+    design = view.order.lens.design
+    missing = [name for name, value in (("pantoscopic tilt", pantoscopic), ("face form", face_form)) if value is None]
+    if design in params.fit_expected_for and missing:
+        yield Flag(
+            "fit-tilt-missing", "info",
+            f"A {design.replace('_', '-')} lens is normally made for the measured tilt of the frame; the order "
+            f"gives no {' and no '.join(missing)}"
+            + (", so no tilt compensation was made" if len(missing) == 2 else ", taken as 0°")
+            + ": ask the practice for the measurement.",
+            None, {"design": design, "missing": missing},
+        )
+
+
+def _index(view) -> tuple[float, str]:
+    lens = view.order.lens
+    if lens.index is not None:
+        return lens.index, "order (lens.index)"
+    return view.material().index, f"material table ({lens.material})"
+
+
+def run(view, params: TiltParams):
+    fit = view.order.fit
+    design = view.order.lens.design
+    pantoscopic, face_form = fit.pantoscopic_deg, fit.face_form_deg
+    if params.policy == "never":
+        yield not_applied("tilt", "The lab's tilt policy is 'never': the surfacing power is not compensated for "
+                                  "pantoscopic tilt or face form.", values={"policy": "never"})
+        return
+    if pantoscopic is None and face_form is None:
+        yield not_applied("tilt", "The order gives neither a pantoscopic tilt nor a face-form angle, so the "
+                                  "surfacing power is not compensated for tilt.")
+        yield from _missing_fit(view, params, pantoscopic, face_form)
+        return
+    if design not in params.apply_to:
+        yield not_applied(
+            "tilt",
+            f"The lab's tilt policy does not compensate {design.replace('_', '-')} lenses (apply_to: "
+            f"{', '.join(params.apply_to) or 'none'}), so the surfacing power is not changed for the tilt "
+            "of the frame.",
+            values={"design": design, "apply_to": list(params.apply_to)},
+        )
+        return
+    yield from _missing_fit(view, params, pantoscopic, face_form)
+    assumptions = [f"{name} 0° (not given)" for name, value in
+                   (("pantoscopic tilt", pantoscopic), ("face form", face_form)) if value is None]
+    pantoscopic, face_form = pantoscopic or 0.0, face_form or 0.0
+    if pantoscopic == 0.0 and face_form == 0.0:
+        yield not_applied("tilt", "The pantoscopic tilt and face form are 0°: the lens is not tilted and needs no "
+                                  "compensation.", values={"pantoscopic_deg": 0.0, "face_form_deg": 0.0})
+        return
+    index, index_from = _index(view)
+    form = view.settings.cylinder_form
+    angles = (f"pantoscopic tilt {pantoscopic:.1f}°, face form {face_form:.1f}°"
+              + (f" ({'; '.join(assumptions)})" if assumptions else ""))
+    for eye in view.eyes:
+        before = view.get(f"lenses.{eye}.surfacing")
+        if before is None:
+            yield no_surfacing("tilt", eye)
+            continue
+        theta, tangential = tilt_obliquity(pantoscopic, face_form, eye)
+        after = power_dict(compensate_tilt(matrix_of(before), theta, tangential, index), before, form)
+        obliquity_deg = math.degrees(theta)
+        meridian = tangential_meridian_deg(tangential)
+        inputs = {
+            "eye": eye,
+            "pantoscopic_deg": pantoscopic,
+            "face_form_deg": face_form,
+            "assumptions": assumptions,
+            "index": index,
+            "index_from": index_from,
+            "obliquity_deg": obliquity_deg,
+            "tangential_direction": [tangential[0], tangential[1]],
+            "tangential_meridian_deg": meridian,
+            "martin_factor": martin_factor(theta, index),
+            "policy": params.policy,
+        }
+        reason = (
+            f"Worn with {angles}, the lens meets the line of sight at {obliquity_deg:.1f}° in the "
+            f"{meridian:.0f}° meridian (index {index:.3f}), so it is made {trade_notation(before)} → "
+            f"{trade_notation(after)} for its tilted effect to equal the wanted power."
+        )
+        yield from propose(
+            "tilt", eye, before, after, params, reason=reason, method=METHOD, source=SOURCE, inputs=inputs,
+            described=f"Tilt compensation for {angles} (obliquity {obliquity_deg:.1f}°)",
+        )
+
+
+@hookimpl
+def lenslane_stages():
+    return [Stage(
+        name="tilt", run=run, writes=("lenses.*.surfacing",), params=TiltParams,
+        description="surfacing power for pantoscopic tilt and face form (inverse of Martin's formula)",
+    )]
