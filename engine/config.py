@@ -18,7 +18,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError
 CONFIG_NAME = "lenslane.toml"
 TEMPLATE = Path(__file__).resolve().parent.parent / "config" / CONFIG_NAME
 
-DEFAULT_CHAIN = ["validate", "normalize", "prism"]
+DEFAULT_CHAIN = ["validate", "normalize", "prism", "vertex", "tilt", "geometry", "safety"]
 
 
 class ConfigError(Exception):
@@ -48,6 +48,7 @@ class WatchSettings(_Section):
 
 class AuditSettings(_Section):
     rotate_bytes: Annotated[int, Field(ge=0)] = 64 << 20
+    rotate_period: Literal["none", "day", "month"] = "none"
 
 
 class Material(_Section):

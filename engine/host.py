@@ -28,6 +28,10 @@ BUILTIN_PLUGINS: tuple[tuple[str, str], ...] = (
     ("validate", "plugins.validate"),
     ("normalize", "plugins.normalize"),
     ("prism", "plugins.prism"),
+    ("vertex", "plugins.vertex"),
+    ("tilt", "plugins.tilt"),
+    ("geometry", "plugins.geometry"),
+    ("safety", "plugins.safety"),
 )
 
 

@@ -1,0 +1,309 @@
+"""Stage ``geometry``: front curve, centre thickness, edges, blank size and weight per lens.
+
+Works on ``lenses.<eye>.surfacing`` as the stages before it left it, so the
+lens is shaped for the power that will be produced. The model is the
+contract's straightforward one (see :mod:`plugins.optics.thickness`): a
+spherical front of true power at the lens index, a toric back solved from the
+thick-lens back vertex power per principal meridian, exact sags, the optical
+centre at the monocular PD and fitting height, prescribed prism as a wedge.
+Every value is proposed as its own change, with the method that made it.
+"""
+from __future__ import annotations
+
+from typing import Annotated, NamedTuple
+
+from pydantic import BaseModel, ConfigDict, Field, field_validator
+
+from engine import Change, Flag, Stage, hookimpl
+from plugins.optics.front_curve import (
+    FRONT_CURVE_METHODS, ROTATION_DISTANCE_MM, NoBestForm, front_curve, front_curve_method, nearest_stocked_base,
+)
+from plugins.optics.outline import (
+    DEFAULT_EXPONENT, blank_diameter_mm, decentration, modelled_outline, optical_centre, outline_points,
+)
+from plugins.optics.power import power_matrix, spherical_equivalent
+from plugins.optics.thickness import (
+    LensNotMakeable, LensShape, lens_volume_mm3, lens_weight_g, solve_center_thickness, thickness_mm,
+)
+
+SURFACES_SOURCE = ("Jalie, The Principles of Ophthalmic Lenses: surface power, exact sag, thick-lens back vertex "
+                   "power; Euler's theorem for the toric back")
+COMMON_PRACTICE = "Common practice"
+
+Thickness = Annotated[float, Field(gt=0, le=10)]
+
+
+class ThicknessMinimums(BaseModel):
+    """A material's minimum thicknesses, mm: the centre (minus, plano and mixed lenses) and the edge per mount."""
+
+    model_config = ConfigDict(extra="forbid", strict=True, frozen=True)
+
+    center_mm: Thickness
+    edge_full_rim_mm: Thickness = 1.0
+    edge_grooved_mm: Thickness = 1.5
+    edge_drilled_mm: Thickness = 2.0
+
+    def edge_for(self, mount: str) -> float:
+        return getattr(self, f"edge_{mount}_mm")
+
+
+# Common practice, from memory (DOMAIN.md): the lab's config is meant to replace them.
+DEFAULT_MINIMUMS: dict[str, ThicknessMinimums] = {
+    "resin-1.50": ThicknessMinimums(center_mm=2.0),
+    "urethane-1.53": ThicknessMinimums(center_mm=1.0),
+    "polycarbonate-1.59": ThicknessMinimums(center_mm=1.0),
+    "resin-1.60": ThicknessMinimums(center_mm=1.2),
+    "resin-1.67": ThicknessMinimums(center_mm=1.3),
+    "resin-1.74": ThicknessMinimums(center_mm=1.5),
+    "glass-1.52": ThicknessMinimums(center_mm=2.0),
+}
+OTHER_MINIMUMS = ThicknessMinimums(center_mm=2.0)
+
+# Stocked semi-finished base curves, true power at the lens index (an invented, plausible stock).
+_LOW_INDEX_BASES = [1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0, 9.0, 10.0]
+_HIGH_INDEX_BASES = [1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0]
+DEFAULT_BASES: dict[str, list[float]] = {
+    "resin-1.50": _LOW_INDEX_BASES,
+    "urethane-1.53": _LOW_INDEX_BASES,
+    "polycarbonate-1.59": [1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0, 9.0],
+    "resin-1.60": _HIGH_INDEX_BASES,
+    "resin-1.67": _HIGH_INDEX_BASES,
+    "resin-1.74": [1.0, 2.0, 3.0, 4.0, 5.0, 6.0],
+    "glass-1.52": _LOW_INDEX_BASES,
+}
+
+#: A requested front curve within this of a stocked base counts as stocked (D).
+STOCK_MATCH_D = 0.005
+
+BaseCurve = Annotated[float, Field(ge=0, le=14)]
+
+
+class GeometryParams(BaseModel):
+    model_config = ConfigDict(extra="forbid", strict=True)
+
+    front_curve_method: str = "vogel"
+    """How to choose the front curve when the order requests none: "vogel" or "tscherning"."""
+    rotation_distance_mm: Annotated[float, Field(gt=10, le=40)] = ROTATION_DISTANCE_MM
+    """Lens to the eye's centre of rotation, for the best form (mm)."""
+    base_curves_d: dict[str, Annotated[list[BaseCurve], Field(min_length=1)]] = Field(
+        default_factory=lambda: {k: list(v) for k, v in DEFAULT_BASES.items()})
+    """Stocked base curves per material (true power at the lens index, D); merged over the defaults."""
+    other_base_curves_d: Annotated[list[BaseCurve], Field(min_length=1)] = Field(
+        default_factory=lambda: list(_LOW_INDEX_BASES))
+    """Stocked base curves for a material the table does not name."""
+    minimum_thickness: dict[str, ThicknessMinimums] = Field(default_factory=lambda: dict(DEFAULT_MINIMUMS))
+    """Minimum centre and edge thicknesses per material (mm); merged over the defaults."""
+    other_minimum_thickness: ThicknessMinimums = OTHER_MINIMUMS
+    """Minimums for a material the table does not name."""
+    blank_allowance_mm: Annotated[float, Field(ge=0, le=10)] = 2.0
+    """Added to twice the farthest outline point from the optical centre (mm)."""
+    outline_exponent_without_ed: Annotated[float, Field(ge=2, le=60)] = DEFAULT_EXPONENT
+    """Superellipse exponent of the modelled outline when the order gives neither outline nor ED."""
+
+    @field_validator("front_curve_method")
+    @classmethod
+    def _known_method(cls, value: str) -> str:
+        front_curve_method(value)  # raises ValueError naming the known methods
+        return value
+
+    @field_validator("base_curves_d")
+    @classmethod
+    def _merge_bases(cls, value: dict[str, list[float]]) -> dict[str, list[float]]:
+        return {**{k: list(v) for k, v in DEFAULT_BASES.items()}, **value}
+
+    @field_validator("minimum_thickness")
+    @classmethod
+    def _merge_minimums(cls, value: dict[str, ThicknessMinimums]) -> dict[str, ThicknessMinimums]:
+        return {**DEFAULT_MINIMUMS, **value}
+
+
+DESIGN_ASSUMPTIONS: dict[str, tuple[str, ...]] = {
+    "single_vision": (),
+    "progressive": (
+        "progressive: the distance power is taken over the whole lens; the power progression toward the add "
+        "is not modelled, so the lower part may differ by a few tenths of a millimetre",
+        "progressive: the optical centre is taken at the fitting point (monocular PD and fitting height); "
+        "no prism-reference offset and no thinning prism unless prescribed",
+    ),
+    "bifocal": (
+        "bifocal: the distance power is taken over the whole lens; the segment's added power and ledge "
+        "are not modelled",
+        "bifocal: the distance optical centre is taken at the fitting height",
+    ),
+}
+
+
+class FrontCurveChoice(NamedTuple):
+    """The chosen front curve (D), how and from what it was chosen, and any flags it raised."""
+
+    curve_d: float
+    method: str
+    source: str
+    inputs: dict
+    flags: list
+
+
+def _choose_front_curve(view, eye, sphere, cylinder, material_key, index, params) -> FrontCurveChoice:
+    stocked = params.base_curves_d.get(material_key, params.other_base_curves_d)
+    requested = view.order.lens.front_curve_d
+    inputs = {"material": material_key, "stocked_d": list(stocked)}
+    flags = []
+    if requested is not None:
+        nearest = nearest_stocked_base(requested, stocked)
+        if abs(nearest - requested) > STOCK_MATCH_D:
+            flags.append(Flag(
+                "front-curve-not-stocked", "warning",
+                f"The practice asks for a {requested:.2f} D front curve, which the lab does not stock in "
+                f"{material_key} (nearest {nearest:.2f} D): order the blank, or agree the nearest stocked base "
+                "with the practice.",
+                eye, {"requested_d": requested, "nearest_stocked_d": nearest, "stocked_d": list(stocked)},
+            ))
+        return FrontCurveChoice(requested, "front curve requested by the practice", "The order",
+                                {**inputs, "requested_d": requested}, flags)
+    method = front_curve_method(params.front_curve_method)
+    try:
+        wanted = front_curve(method.name, sphere, cylinder, index, params.rotation_distance_mm)
+    except NoBestForm as exc:
+        flags.append(Flag(
+            "front-curve-no-best-form", "info",
+            f"{exc}; Vogel's rule is used instead. A person may choose an aspheric design for this power.",
+            eye, {"spherical_equivalent_d": spherical_equivalent(sphere, cylinder), "index": index},
+        ))
+        method = FRONT_CURVE_METHODS["vogel"]
+        wanted = front_curve(method.name, sphere, cylinder, index, params.rotation_distance_mm)
+    inputs.update({"spherical_equivalent_d": spherical_equivalent(sphere, cylinder), "computed_d": wanted})
+    if method.name == "tscherning":
+        inputs.update({"index": index, "rotation_distance_mm": params.rotation_distance_mm})
+    return FrontCurveChoice(nearest_stocked_base(wanted, stocked),
+                            f"{method.title}, snapped to the nearest stocked base", method.source, inputs, flags)
+
+
+def _outline(view, params):
+    """The right lens's outline radii and a sentence on where they come from."""
+    frame = view.order.frame
+    if frame.outline_mm is not None:
+        return list(frame.outline_mm), f"outline from the order ({len(frame.outline_mm)} radii about the box centre)"
+    shape = modelled_outline(frame.box_width_mm, frame.box_height_mm, frame.effective_diameter_mm,
+                             params.outline_exponent_without_ed)
+    if frame.effective_diameter_mm is None:
+        basis = f"the lab's exponent m = {shape.exponent:g}, as the order gives no effective diameter"
+    else:
+        basis = f"m = {shape.exponent:.2f} fitted so that twice the longest radius is the ED {frame.effective_diameter_mm:.1f} mm"
+    return list(shape.radii_mm), (
+        f"outline modelled as the superellipse |x/(A/2)|^m + |y/(B/2)|^m = 1 with A {frame.box_width_mm:.1f} mm, "
+        f"B {frame.box_height_mm:.1f} mm and {basis}"
+    )
+
+
+def _eye_geometry(view, eye, params):
+    order = view.order
+    surfacing = view.get(f"lenses.{eye}.surfacing")
+    if surfacing is None:
+        yield Flag("geometry-no-power", "review",
+                   "No surfacing power reached the geometry stage (is normalize in the chain?): "
+                   "the lens geometry was not worked out; check the lab's chain.", eye)
+        return
+    sphere, cylinder, axis = surfacing["sphere"], surfacing.get("cylinder", 0.0), surfacing.get("axis", 180)
+    matrix = power_matrix(sphere, cylinder, axis)
+    material_key = order.lens.material
+    material = view.material()
+    index = material.index
+
+    choice = _choose_front_curve(view, eye, sphere, cylinder, material_key, index, params)
+    yield from choice.flags
+    front = choice.curve_d
+
+    radii, outline_note = _outline(view, params)
+    frame = order.frame
+    fit = getattr(order.fit, eye)
+    offset = decentration(frame.box_width_mm, frame.bridge_mm, frame.box_height_mm, fit.pd_mm, fit.height_mm)
+    centre = optical_centre(eye, offset)
+    points = outline_points(radii, eye)
+    about_centre = points - centre
+
+    prism = view.get(f"lenses.{eye}.prism") or {}
+    shape = LensShape(front, matrix, index, float(prism.get("amount", 0.0)), float(prism.get("base_deg", 0.0)))
+    minimums = params.minimum_thickness.get(material_key, params.other_minimum_thickness)
+    min_edge = minimums.edge_for(frame.mount)
+    try:
+        solved = solve_center_thickness(about_centre, shape, minimums.center_mm, min_edge)
+        edges = thickness_mm(about_centre, shape, solved.center_mm)
+        volume = lens_volume_mm3(radii, eye, centre, shape, solved.center_mm)
+    except LensNotMakeable as exc:
+        yield Flag(
+            "lens-not-makeable", "review",
+            f"The lens cannot be made as ordered: {exc} (front {front:.2f} D, surfacing {sphere:+.2f} "
+            f"{cylinder:+.2f} × {axis:.0f}, {material_key}). Choose another front curve, material, frame or "
+            "design with the practice.",
+            eye, {"front_curve_d": front, "sphere": sphere, "cylinder": cylinder, "axis": axis},
+        )
+        return
+    blank = blank_diameter_mm(points, centre, params.blank_allowance_mm)
+    weight = lens_weight_g(volume, material.density)
+
+    field = f"lenses.{eye}.geometry"
+    binding_text = (f"the minimum centre thickness {minimums.center_mm:.1f} mm" if solved.binding == "centre"
+                    else f"the minimum edge thickness {min_edge:.1f} mm for a {frame.mount.replace('_', ' ')} mount")
+    yield Change(f"{field}.front_curve_d", front,
+                 "The front curve is the true surface power at the lens index.",
+                 choice.method, choice.source, choice.inputs)
+    yield Change(
+        f"{field}.center_thickness_mm", solved.center_mm,
+        f"The centre thickness is the least that meets {binding_text}; the back surface is solved from "
+        "the thick-lens back vertex power per principal meridian.",
+        f"least centre thickness meeting the binding minimum ({solved.binding}); "
+        "back surface F2 = Fv − F1/(1 − (t/n)F1) per principal meridian",
+        SURFACES_SOURCE,
+        {"binding": solved.binding, "min_center_mm": minimums.center_mm, "min_edge_mm": min_edge,
+         "mount": frame.mount, "index": index, "front_curve_d": front},
+    )
+    edge_inputs = {"outline_points": len(radii), "optical_centre_mm": list(centre), "index": index,
+                   "prism_amount": shape.prism_delta, "prism_base_deg": shape.prism_base_deg}
+    edge_method = ("thickness along the outline: centre − exact front sag + exact back sag "
+                   "(toric back by Euler's theorem) + prism wedge")
+    yield Change(f"{field}.edge_min_mm", float(edges.min()),
+                 "The thinnest edge along the outline.", edge_method, SURFACES_SOURCE, edge_inputs)
+    yield Change(f"{field}.edge_max_mm", float(edges.max()),
+                 "The thickest edge along the outline.", edge_method, SURFACES_SOURCE, edge_inputs)
+    yield Change(
+        f"{field}.blank_min_diameter_mm", blank,
+        "The smallest blank that covers the outline about the decentred optical centre.",
+        f"twice the farthest outline point from the optical centre plus {params.blank_allowance_mm:.1f} mm",
+        "Dispensing texts, e.g. Brooks & Borish, System for Ophthalmic Dispensing",
+        {"farthest_mm": (blank - params.blank_allowance_mm) / 2.0, "allowance_mm": params.blank_allowance_mm,
+         "decentration_in_mm": offset.inward_mm, "decentration_up_mm": offset.upward_mm},
+    )
+    yield Change(
+        f"{field}.weight_g", weight,
+        "The weight of the edged lens.",
+        "thickness integrated over the outline area (polar trapezoid × 16-point Gauss–Legendre) × density",
+        "Jalie, The Principles of Ophthalmic Lenses (weight = volume × density)",
+        {"volume_cm3": volume / 1000.0, "density_g_cm3": material.density},
+    )
+    assumptions = [
+        outline_note,
+        "spherical front and toric back, exact sags, both vertices at the optical centre",
+        "optical centre at the monocular PD and the fitting height (half the box height when none is given)",
+        "prescribed prism as a plane wedge through the optical centre, thicker toward the base",
+        *DESIGN_ASSUMPTIONS.get(order.lens.design, ()),
+    ]
+    yield Change(f"{field}.optical_centre_mm", list(centre),
+                 "Where the optical centre sits about the box centre, seen from the front (x to the observer's right).",
+                 "decentration (A + DBL)/2 − PD toward the nose, height − B/2 up", "ISO 8624 (boxing system)",
+                 {"pd_mm": fit.pd_mm, "height_mm": fit.height_mm})
+    yield Change(f"{field}.assumptions", assumptions,
+                 "What the geometry estimate assumes, for a person checking it.",
+                 "statement of the geometry model", COMMON_PRACTICE, {"design": order.lens.design})
+
+
+def run(view, params: GeometryParams):
+    for eye in view.eyes:
+        yield from _eye_geometry(view, eye, params)
+
+
+@hookimpl
+def lenslane_stages():
+    return [Stage(
+        name="geometry", run=run, writes=("lenses.*.geometry",), params=GeometryParams,
+        description="front curve, centre thickness, edges, blank size and weight per lens",
+    )]
