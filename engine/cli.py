@@ -33,6 +33,31 @@ def cmd_schema(args) -> int:
     return 0
 
 
+def cmd_audit_verify(args) -> int:
+    from engine.audit import verify
+
+    report = verify(Path(args.lab))
+    print(report.summary())
+    for note in report.notes:
+        print(f"note: {note}")
+    for finding in (report.breaks + report.result_problems)[1:]:
+        print(f"also: {finding}")
+    return 0 if report.ok else 1
+
+
+def cmd_explain(args) -> int:
+    from engine.explain import order_story, render
+
+    story = order_story(Path(args.lab), args.order_id)
+    if args.json:
+        print(json.dumps(story, indent=1, ensure_ascii=False))
+    elif story["found"]:
+        print(render(story))
+    else:
+        print(f"lenslane: {render(story)}", file=sys.stderr)
+    return 0 if story["found"] else 1
+
+
 def cmd_preview(args) -> int:
     from engine.intake import OrderRejected, read_order
     from engine.pipeline import Pipeline, StageFailure
@@ -78,16 +103,9 @@ def cmd_watch(args) -> int:
     from engine.inbox import Lab
 
     lab = Lab(Path(args.lab), _host(Path(args.lab), args.trace_hooks))
-    if args.once:
-        done = lab.drain()
-        published = sum(1 for p in done if p.outcome == "published")
-        review = sum(1 for p in done if p.status == "review")
-        rejected = sum(1 for p in done if p.outcome == "rejected")
-        print(f"{len(done)} orders: {published} published ({review} held for review), {rejected} rejected")
-        return 0
-    from engine.daemon import run_daemon
+    from engine.daemon import run_daemon, run_once
 
-    return run_daemon(lab)
+    return run_once(lab, stats=getattr(args, "stats", False)) if args.once else run_daemon(lab)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -124,6 +142,24 @@ def build_parser() -> argparse.ArgumentParser:
                               "the distribution that provides it and its version.")
     sub.add_argument("--lab", metavar="LAB", help="use this lab's config (default: the built-in defaults)")
     sub.set_defaults(func=cmd_plugins)
+
+    sub = commands.add_parser("audit", help="check the lab's audit log", description="Work with LAB/audit.jsonl.")
+    audit_commands = sub.add_subparsers(dest="audit_command", required=True, metavar="ACTION")
+    sub = audit_commands.add_parser("verify", help="walk the whole hash chain and check the outbox against it",
+                                    description="Walk the hash chain across every audit file; check each published "
+                                    "result in outbox/ still has the sha256 the log recorded. Exit 0 with a one-line "
+                                    "summary when intact; exit 1 naming the first broken record.")
+    sub.add_argument("lab", metavar="LAB")
+    sub.set_defaults(func=cmd_audit_verify)
+
+    sub = commands.add_parser("explain", help="tell the story of one order from the audit log",
+                              description="What arrived, what each stage changed and why, every flag, the final "
+                              "lens and the outcome of one order, read from the audit log (the outbox may be gone). "
+                              "Exit 1 when the log does not know the order.")
+    sub.add_argument("lab", metavar="LAB")
+    sub.add_argument("order_id", metavar="ORDER_ID")
+    sub.add_argument("--json", action="store_true", help="the same story as JSON data")
+    sub.set_defaults(func=cmd_explain)
 
     sub = commands.add_parser("schema", help="print the JSON Schema of the order (or of the result)",
                               description="Print the JSON Schema of lens-order/1, or of lens-order-result/1.")

@@ -1,13 +1,45 @@
-"""Durable file operations: write through a temp name, fsync, rename, fsync the folder."""
+"""File-system work the drop folder relies on: durable writes, safe opens, the lab lock.
+
+Everything here is about not being fooled by what sits in a folder: a write
+is either absent or whole after a crash, an inbox entry is never followed as a
+link or opened in a way that can block, and two engines never share a lab.
+"""
 from __future__ import annotations
 
+import errno
+import fcntl
+import hashlib
 import os
+import stat
 from pathlib import Path
 
 TEMP_SUFFIX = ".tmp"
+LOCK_NAME = ".lock"
+#: Longest file name (bytes) kept as it is in rejected/, held/ and archive/; longer ones are shortened
+#: so that ``<name>.errors.json`` still fits the usual 255-byte limit.
+NAME_KEEP_BYTES = 200
+
+_SAFE_OPEN = os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC
 
 
-def fsync_dir(folder: Path) -> None:
+class NotRegular(Exception):
+    """An inbox entry that is not a plain file; ``kind`` says what it is."""
+
+    def __init__(self, kind: str):
+        super().__init__(kind)
+        self.kind = kind
+
+
+class LabLocked(Exception):
+    """Another engine holds the lab's lock; ``holder`` is what it wrote there (its pid)."""
+
+    def __init__(self, path: Path, holder: str):
+        super().__init__(f"{path} is held by another lenslane process (pid {holder or 'unknown'})")
+        self.path = path
+        self.holder = holder
+
+
+def fsync_dir(folder: str | Path) -> None:
     fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY)
     try:
         os.fsync(fd)
@@ -15,32 +47,202 @@ def fsync_dir(folder: Path) -> None:
         os.close(fd)
 
 
-def write_durably(path: Path, data: bytes, sync_folder: bool = True) -> None:
+def write_durably(path: str | Path, data: bytes, sync_folder: bool = True) -> None:
     """Write ``data`` to ``path`` so a crash leaves either the old file or the whole new one.
 
     The bytes go to ``.<name>.tmp`` in the same folder, are fsynced, renamed over
     ``path``, and the folder is fsynced so the rename itself survives power loss.
+    A failed write (disk full, no permission) removes its temp file and raises.
     """
-    temp = path.with_name(f".{path.name}{TEMP_SUFFIX}")
-    fd = os.open(temp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
+    folder, name = os.path.split(os.fspath(path))
+    temp = os.path.join(folder, f".{name}{TEMP_SUFFIX}")
     try:
-        view = memoryview(data)
-        while view:
-            written = os.write(fd, view)
-            view = view[written:]
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-    os.replace(temp, path)
+        fd = os.open(temp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_CLOEXEC, 0o644)
+        try:
+            view = memoryview(data)
+            while view:
+                view = view[os.write(fd, view):]
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        os.replace(temp, path)
+    except OSError:
+        _remove_quietly(temp)
+        raise
     if sync_folder:
-        fsync_dir(path.parent)
+        fsync_dir(folder or ".")
 
 
-def unique_path(folder: Path, name: str) -> Path:
-    """``folder/name``, or ``folder/name.1``, ``.2``… when that name is taken."""
-    candidate = folder / name
-    counter = 0
-    while candidate.exists() or candidate.is_symlink():
+def _remove_quietly(path: str | Path) -> None:
+    try:
+        os.unlink(path)
+    except OSError:
+        pass
+
+
+def remove_temp_leftovers(folder: Path) -> list[str]:
+    """Delete ``.<name>.tmp`` files a crash left behind (never published); returns their names."""
+    removed = []
+    try:
+        names = os.listdir(folder)
+    except FileNotFoundError:
+        return removed
+    for name in names:
+        if name.startswith(".") and name.endswith(TEMP_SUFFIX):
+            _remove_quietly(folder / name)
+            removed.append(name)
+    return removed
+
+
+def free_name(folder: str | Path, name: str, tag: str, never_ends_with: str = "") -> str:
+    """A name for ``name`` in ``folder`` that nothing there uses yet, chosen the same way every time.
+
+    The name is kept when it is free; otherwise ``.<tag>`` is added, ``tag``
+    being derived from the claim, so a redo after a crash picks the same name.
+    A name ending in ``never_ends_with`` (the suffix of the report files beside
+    the inputs) always gets the tag, so an input can never be taken for, or
+    overwrite, another input's report.
+    """
+    encoded = os.fsencode(name)
+    base = os.fsdecode(encoded[:NAME_KEEP_BYTES]) if len(encoded) > NAME_KEEP_BYTES else name
+    clash = bool(never_ends_with) and base.endswith(never_ends_with)
+    folder = os.fspath(folder)
+    if base == name and not clash and not os.path.lexists(os.path.join(folder, name)):
+        return name
+    candidate, counter = f"{base}.{tag}", 0
+    while os.path.lexists(os.path.join(folder, candidate)):
         counter += 1
-        candidate = folder / f"{name}.{counter}"
+        candidate = f"{base}.{tag}-{counter}"
     return candidate
+
+
+_KINDS = ((stat.S_ISLNK, "symbolic link"), (stat.S_ISDIR, "folder"), (stat.S_ISFIFO, "named pipe (FIFO)"),
+          (stat.S_ISCHR, "character device"), (stat.S_ISBLK, "block device"), (stat.S_ISSOCK, "socket"))
+
+
+def entry_kind(mode: int) -> str:
+    """What a non-regular directory entry is, in plain words."""
+    return next((kind for is_kind, kind in _KINDS if is_kind(mode)), "special file")
+
+
+def open_regular(path: str | Path) -> tuple[int, os.stat_result]:
+    """Open a plain file for reading without following a link or blocking on a pipe or device.
+
+    Returns the descriptor and its ``fstat``; raises :class:`NotRegular` for
+    anything that is not a plain file (the descriptor is then closed).
+    """
+    try:
+        fd = os.open(path, _SAFE_OPEN)
+    except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            raise NotRegular("symbolic link") from None
+        if exc.errno == errno.ENXIO:  # a socket, or a device with nothing behind it
+            raise NotRegular("special file") from None
+        raise
+    info = os.fstat(fd)
+    if not stat.S_ISREG(info.st_mode):
+        os.close(fd)
+        raise NotRegular(entry_kind(info.st_mode))
+    return fd, info
+
+
+def read_exactly(fd: int, size: int) -> bytes:
+    """Read a file of ``size`` bytes (from ``fstat``) in as few calls as the kernel allows."""
+    chunks = []
+    remaining = size
+    while remaining > 0:
+        chunk = os.read(fd, remaining)
+        if not chunk:
+            break
+        chunks.append(chunk)
+        remaining -= len(chunk)
+    return chunks[0] if len(chunks) == 1 else b"".join(chunks)
+
+
+def claim_key(info: os.stat_result) -> str:
+    """Who a claimed file is: its inode and the change time its claim (a rename) gave it.
+
+    The rename into ``work/`` sets the change time; nothing the engine does
+    afterwards changes it, so the same key is read back after a restart, while a
+    later file that reuses the inode gets another change time.
+    """
+    return f"{info.st_ino}:{info.st_ctime_ns}"
+
+
+def claim_tag(claim: str) -> str:
+    """A short, stable name suffix for a claim, used when a name is already taken."""
+    return hashlib.sha256(claim.encode()).hexdigest()[:10]
+
+
+def printable(name: str) -> str:
+    """A file name as text that is always valid UTF-8 (undecodable bytes shown as ``\\xNN``)."""
+    try:
+        name.encode("utf-8")
+        return name
+    except UnicodeEncodeError:
+        return os.fsencode(name).decode("utf-8", "backslashreplace")
+
+
+def lock_lab(root: Path) -> int:
+    """Take the lab's lock (``LAB/.lock``) for the life of the process; returns its descriptor.
+
+    ``flock`` locks belong to the open file, so the kernel releases the lock
+    when the holder exits in any way, ``kill -9`` included: a crash never blocks
+    a restart. Raises :class:`LabLocked` when another process holds it.
+    """
+    path = Path(root) / LOCK_NAME
+    fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError as exc:
+        holder = os.pread(fd, 32, 0).decode("ascii", "replace").strip()
+        os.close(fd)
+        if exc.errno in (errno.EWOULDBLOCK, errno.EAGAIN, errno.EACCES):
+            raise LabLocked(path, holder) from None
+        raise
+    os.ftruncate(fd, 0)
+    os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
+    return fd
+
+
+#: File-system types whose changes made elsewhere inotify does not see (network and shared folders).
+NETWORK_FILE_SYSTEMS = frozenset({
+    "nfs", "nfs4", "cifs", "smb3", "smbfs", "ncpfs", "9p", "afs", "coda", "ceph", "glusterfs", "lustre",
+    "gpfs", "ocfs2", "gfs2", "davfs", "virtiofs", "vboxsf", "vmhgfs", "prl_fs",
+    "fuse.sshfs", "fuse.glusterfs", "fuse.s3fs", "fuse.rclone", "fuse.davfs2", "fuse.vmhgfs-fuse",
+    "fuse.cephfs", "fuse.gcsfuse", "fuse.juicefs", "fuse.smbnetfs",
+})
+
+
+def _unescape_mount_path(text: str) -> str:
+    # mountinfo writes space, tab, newline and backslash as octal escapes.
+    return (text.replace("\\040", " ").replace("\\011", "\t").replace("\\012", "\n").replace("\\134", "\\"))
+
+
+def filesystem_type(path: Path, mountinfo: str | None = None) -> str | None:
+    """The type of the file system ``path`` lives on, from ``/proc/self/mountinfo`` (Linux).
+
+    ``mountinfo`` may be given as text (for tests); ``None`` when unknown.
+    """
+    if mountinfo is None:
+        try:
+            with open("/proc/self/mountinfo", encoding="utf-8", errors="replace") as handle:
+                mountinfo = handle.read()
+        except OSError:
+            return None
+    target = os.path.realpath(path)
+    best, best_type = "", None
+    for line in mountinfo.splitlines():
+        left, sep, right = line.partition(" - ")
+        fields = left.split()
+        if not sep or len(fields) < 5 or not right:
+            continue
+        mount_point = _unescape_mount_path(fields[4])
+        inside = target == mount_point or target.startswith(mount_point.rstrip("/") + "/")
+        if inside and len(mount_point) >= len(best):
+            best, best_type = mount_point, right.split()[0]
+    return best_type
+
+
+def is_network_file_system(fs_type: str | None) -> bool:
+    return fs_type is not None and (fs_type in NETWORK_FILE_SYSTEMS or fs_type.startswith("nfs"))

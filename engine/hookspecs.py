@@ -7,7 +7,7 @@ later without breaking plugins that do not ask for them. A plugin writes::
 
 Each hook below is documented once, with its exact signature, the types and
 units of its arguments, what to return and a runnable example; ``DEVELOPERS.md``
-walks through them. ``tests/test_hookspecs.py`` fails when a hook lacks either.
+walks through them. ``tests/plugins/test_hooks.py`` fails when a hook lacks either.
 """
 from __future__ import annotations
 
