@@ -27,6 +27,8 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Iterable, Iterator
 
+import orjson
+
 from engine.fsio import fsync_dir
 
 AUDIT_NAME = "audit.jsonl"
@@ -40,12 +42,21 @@ CHAIN_FIELDS = frozenset({"seq", "ts", "prev", "hash"})
 PERIOD_PREFIX = {"day": 10, "month": 7}
 
 
+_CANONICAL = orjson.OPT_SORT_KEYS | orjson.OPT_SERIALIZE_NUMPY
+
+
 class AuditError(Exception):
     """The audit log cannot be written safely (the engine must not archive the input)."""
 
 
 def canonical(record: dict[str, Any]) -> bytes:
-    return json.dumps(record, sort_keys=True, separators=(",", ":"), ensure_ascii=False).encode()
+    """The record's canonical JSON: UTF-8, keys sorted, no spaces (what its hash is taken of).
+
+    orjson writes it, about ten times faster than the standard library: an
+    order makes some thirty records, and encoding them was the engine's largest
+    per-order cost after the fsyncs.
+    """
+    return orjson.dumps(record, option=_CANONICAL)
 
 
 def record_hash(record: dict[str, Any]) -> str:
@@ -224,10 +235,11 @@ class AuditLog:
                 raise ValueError(f"an audit event may not set {sorted(CHAIN_FIELDS & set(event))}")
             seq += 1
             record = {"seq": seq, "ts": ts, "prev": prev, **event}
-            record["hash"] = record_hash(record)
-            prev = record["hash"]
+            body = canonical(record)  # what record_hash() hashes: the record without its hash
+            prev = record["hash"] = hashlib.sha256(body).hexdigest()
             records.append(record)
-            lines.append(canonical(record))
+            # The hash goes last on the line; readers parse the line, so key order there is free.
+            lines.append(b"%s,\"hash\":\"%s\"}" % (body[:-1], prev.encode()))
         if not prefix and self._rotation_due(ts):
             self._rotate()
         self._write(prefix + b"\n".join(lines) + b"\n")

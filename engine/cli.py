@@ -105,7 +105,7 @@ def cmd_watch(args) -> int:
     lab = Lab(Path(args.lab), _host(Path(args.lab), args.trace_hooks))
     from engine.daemon import run_daemon, run_once
 
-    return run_once(lab, stats=getattr(args, "stats", False)) if args.once else run_daemon(lab)
+    return run_once(lab, stats=args.stats) if args.once else run_daemon(lab)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -127,6 +127,8 @@ def build_parser() -> argparse.ArgumentParser:
                               "every order: results to outbox/, bad orders to rejected/, inputs to archive/.")
     sub.add_argument("lab", metavar="LAB")
     sub.add_argument("--once", action="store_true", help="drain the inbox once and exit")
+    sub.add_argument("--stats", action="store_true",
+                     help="with --once: also print the time spent in each stage, as one JSON line")
     sub.add_argument("--trace-hooks", action="store_true", help="print every hook call to standard error")
     sub.set_defaults(func=cmd_watch)
 

@@ -1,0 +1,92 @@
+"""Benchmark: the engine draining a backlog against the bare file-system floor.
+
+    make bench                     # 4 000 orders
+    python tests/benchmarks/bench_drain.py --orders 1000 20000   # memory flatness
+
+For each N: generate N orders, drain them with ``lenslane watch LAB --once``,
+then run the floor (tests/benchmarks/floor.py) on the same files in a second
+lab, and print orders per second for both, the ratio engine/floor, the
+per-stage time shares from the pipeline's own timing, and the engine's peak RSS.
+Never part of the test suite's pass/fail.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE.parent.parent))
+
+from tests.benchmarks.orders import write_orders  # noqa: E402
+
+
+def _peak_rss_mb(argv: list[str]) -> tuple[float, float, str]:
+    started = time.perf_counter()
+    child = subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL)
+    out = child.stdout.read().decode()
+    _, status, usage = os.wait4(child.pid, 0)
+    elapsed = time.perf_counter() - started
+    if os.waitstatus_to_exitcode(status) != 0:
+        raise SystemExit(f"{' '.join(argv)} exited {os.waitstatus_to_exitcode(status)}")
+    return elapsed, usage.ru_maxrss / 1024.0, out
+
+
+def bench(count: int, workdir: Path) -> dict:
+    source = workdir / f"orders-{count}"
+    write_orders(source, count)
+    engine_lab, floor_lab = workdir / f"engine-{count}", workdir / f"floor-{count}"
+    lenslane = [sys.executable, "-m", "engine.cli"]
+    subprocess.run([*lenslane, "init", str(engine_lab)], check=True, stdout=subprocess.DEVNULL)
+    (floor_lab / "inbox").mkdir(parents=True)
+    for name in os.listdir(source):
+        shutil.copy(source / name, engine_lab / "inbox" / name)
+        shutil.copy(source / name, floor_lab / "inbox" / name)
+
+    engine_s, engine_rss, out = _peak_rss_mb([*lenslane, "watch", str(engine_lab), "--once", "--stats"])
+    floor_s, floor_rss, _ = _peak_rss_mb([sys.executable, str(HERE / "floor.py"), str(floor_lab)])
+    published = len(os.listdir(engine_lab / "outbox"))
+    stats = {}
+    for line in out.splitlines():
+        if line.startswith("{") and '"stage_seconds"' in line:
+            stats = json.loads(line)
+    return {"orders": count, "published": published, "engine_s": engine_s, "floor_s": floor_s,
+            "engine_rate": count / engine_s, "floor_rate": count / floor_s, "ratio": engine_s / floor_s,
+            "engine_peak_rss_mb": engine_rss, "floor_peak_rss_mb": floor_rss, "stats": stats}
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--orders", type=int, nargs="+", default=[4000], help="backlog sizes (default 4000)")
+    parser.add_argument("--keep", action="store_true", help="keep the generated labs")
+    args = parser.parse_args()
+    workdir = Path(tempfile.mkdtemp(prefix="lenslane-bench-", dir=os.environ.get("BENCH_DIR")))
+    print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, {workdir}")
+    try:
+        for count in args.orders:
+            row = bench(count, workdir)
+            print(f"N={row['orders']}: engine {row['engine_rate']:.0f} orders/s ({row['engine_s']:.1f} s), "
+                  f"floor {row['floor_rate']:.0f} orders/s ({row['floor_s']:.1f} s), "
+                  f"ratio {row['ratio']:.2f}, engine peak RSS {row['engine_peak_rss_mb']:.0f} MB "
+                  f"(floor {row['floor_peak_rss_mb']:.0f} MB), published {row['published']}")
+            stage_seconds = row["stats"].get("stage_seconds", {})
+            total = row["engine_s"]
+            if stage_seconds:
+                shares = ", ".join(f"{name} {100 * s / total:.1f}%" for name, s in stage_seconds.items())
+                print(f"  share of engine wall time: {shares}")
+    finally:
+        if not args.keep:
+            shutil.rmtree(workdir, ignore_errors=True)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
