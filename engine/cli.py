@@ -68,14 +68,16 @@ def cmd_preview(args) -> int:
         order, parsed = read_order(raw, host.settings.materials)
         result = Pipeline(host).run(order, parsed).result
     except OrderRejected as exc:
-        print(json.dumps({"file": args.file, "rejected": True, "problems": exc.problems}, indent=1, ensure_ascii=False))
-        return 1
+        problems = exc.problems
     except StageFailure as exc:
-        print(json.dumps({"file": args.file, "rejected": True,
-                          "problems": [{"field": f"(stage {exc.stage})", "message": exc.message}]}, indent=1))
-        return 1
-    print(json.dumps(result, indent=1, ensure_ascii=False))
-    return 0
+        problems = [{"field": f"(stage {exc.stage})", "message": exc.message}]
+    except Exception as exc:  # e.g. a result_ready hook that raised: the same verdict as the inbox gives
+        problems = [{"field": "(engine)", "message": f"{type(exc).__name__}: {exc}"}]
+    else:
+        print(json.dumps(result, indent=1, ensure_ascii=False))
+        return 0
+    print(json.dumps({"file": args.file, "rejected": True, "problems": problems}, indent=1, ensure_ascii=False))
+    return 1
 
 
 def cmd_plugins(args) -> int:

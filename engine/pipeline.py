@@ -16,7 +16,10 @@ from engine import __version__
 from engine.host import Host
 from engine.models import CAUTION, RESULT_FORMAT, LensOrder
 from engine.precision import present
-from engine.stage import LEVELS, Change, Flag, OrderView
+from engine.stage import _ATOMS, LEVELS, Change, Flag, OrderView, copy_value
+
+#: Bound on each stage's may-write memo, so a plugin writing ever-new fields cannot grow it without end.
+_WRITABLE_LIMIT = 4096
 
 
 class StageFailure(Exception):
@@ -47,6 +50,8 @@ class Pipeline:
             "config_sha256": host.config_sha256,
             "stages": self.stage_names,
         }
+        # Per stage: whether it may write a field, decided once per field (see _apply).
+        self._writable: dict[str, dict[str, tuple[str, ...] | None]] = {}
 
     def run(self, order: LensOrder, received: dict[str, Any]) -> Outcome:
         """Run every enabled stage in order; raise :class:`StageFailure` on any fault.
@@ -64,6 +69,9 @@ class Pipeline:
         for link in self.host.chain:
             stage = link.stage
             started = clock()
+            writable = self._writable.get(stage.name)
+            if writable is None:
+                writable = self._writable[stage.name] = {}
             try:
                 proposals = self.run_stage(stage=stage, view=view, params=link.params)
             except StageFailure:
@@ -71,8 +79,8 @@ class Pipeline:
             except Exception as exc:  # a plugin fault fails the order, never the engine
                 raise StageFailure(stage.name, f"{type(exc).__name__}: {exc}") from exc
             for proposal in proposals or ():
-                if isinstance(proposal, Change):
-                    changes.append(self._apply(stage, proposal, state, eyes))
+                if type(proposal) is Change or isinstance(proposal, Change):
+                    changes.append(self._apply(stage, proposal, state, eyes, writable))
                 elif isinstance(proposal, Flag):
                     flags.append(_flag_record(stage.name, proposal, eyes))
                 else:
@@ -96,31 +104,46 @@ class Pipeline:
         return Outcome(result, timings)
 
     @staticmethod
-    def _apply(stage, change: Change, state: dict[str, Any], eyes: list[str]) -> dict[str, Any]:
+    def _apply(stage, change: Change, state: dict[str, Any], eyes: list[str],
+               writable: dict[str, tuple[str, ...] | None] | None = None) -> dict[str, Any]:
+        """Apply one change to ``state`` and return its record.
+
+        ``writable`` remembers, for this stage, each field it wrote as its split
+        path (None: it may not write it).
+        """
         path = change.field
-        parts = path.split(".")
-        if not stage.may_write(path):
+        # What a stage may do with a field depends on the two names only: checked once, remembered.
+        parts = writable.get(path, False) if writable is not None else False
+        if parts is False:
+            parts = tuple(path.split(".")) if stage.may_write(path) else None
+            if writable is not None and len(writable) < _WRITABLE_LIMIT:
+                writable[path] = parts
+        if parts is None:
             allowed = ", ".join(stage.writes) or "nothing"
             raise StageFailure(stage.name, f"may not write {path!r} (it may write: {allowed})")
         if parts[0] != "lenses" or len(parts) < 3 or parts[1] not in eyes:
             raise StageFailure(stage.name, f"{path!r} is not a field of an eye being made ({', '.join(eyes)})")
-        node = state
-        for part in parts[:-1]:
+        node = state["lenses"][parts[1]]  # made for every eye at the start; no change can replace it
+        for part in parts[2:-1]:
             node = node.setdefault(part, {})
-            if not isinstance(node, dict):
+            if type(node) is not dict and not isinstance(node, dict):
                 raise StageFailure(stage.name, f"{path!r} goes through a value that is not an object")
-        before = node.get(parts[-1])
-        value = copy.deepcopy(change.value)
-        node[parts[-1]] = value
+        key = parts[-1]
+        before = node.get(key)
+        value = change.value
+        if type(value) not in _ATOMS:
+            value = copy_value(value)
+        node[key] = value
+        inputs = change.inputs
         return {
             "stage": stage.name,
             "field": path,
-            "before": present(before, parts[-1]),
-            "after": present(value, parts[-1]),
+            "before": present(before, key),
+            "after": present(value, key),
             "reason": change.reason,
             "method": change.method,
             "source": change.source,
-            "inputs": present(dict(change.inputs)),
+            "inputs": present(inputs if type(inputs) is dict else dict(inputs)),
         }
 
 
@@ -131,5 +154,6 @@ def _flag_record(stage: str, flag: Flag, eyes: list[str]) -> dict[str, Any]:
         raise StageFailure(stage, f"flag {flag.code!r} names eye {flag.eye!r}, which is not being made")
     record = {"code": flag.code, "level": flag.level, "eye": flag.eye, "message": flag.message, "stage": stage}
     if flag.values:
-        record["values"] = present(dict(flag.values))
+        values = flag.values
+        record["values"] = present(values if type(values) is dict else dict(values))
     return record

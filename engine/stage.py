@@ -106,32 +106,59 @@ class Stage:
         return False
 
 
+_MISSING = object()
+_ATOMS = frozenset((str, int, float, bool, type(None)))
+
+
+def copy_value(value: Any) -> Any:
+    """A deep copy of a result value, cheap for the plain JSON it normally is.
+
+    Dicts and lists are rebuilt, str / int / float / bool / None (immutable) are
+    shared, and anything else goes through :func:`copy.deepcopy`, so no part of
+    the copy can change the original.
+    """
+    kind = type(value)
+    if kind in _ATOMS:
+        return value
+    if kind is dict:
+        return {k: v if type(v) in _ATOMS else copy_value(v) for k, v in value.items()}
+    if kind is list:
+        return [v if type(v) in _ATOMS else copy_value(v) for v in value]
+    return copy.deepcopy(value)
+
+
 class OrderView:
     """What a stage sees: the validated order, the current result, the lab's settings.
 
     Every value returned by :meth:`get` is a copy; changing it changes nothing.
     """
 
-    __slots__ = ("order", "eyes", "settings", "_state")
+    __slots__ = ("order", "eyes", "settings", "_state", "_material")
 
     def __init__(self, order: "LensOrder", state: dict[str, Any], settings: "LabSettings"):
         self.order = order
         self.eyes: tuple[str, ...] = tuple(e for e in EYES if getattr(order.rx, e) is not None)
         self.settings = settings
         self._state = state
+        self._material: "Material | None" = None
 
     def get(self, field_path: str, default: Any = None) -> Any:
         """The current value of a result field (a copy), or ``default``."""
         node: Any = self._state
         for part in field_path.split("."):
-            if not isinstance(node, dict) or part not in node:
+            if type(node) is not dict and not isinstance(node, dict):
                 return default
-            node = node[part]
-        return copy.deepcopy(node)
+            node = node.get(part, _MISSING)
+            if node is _MISSING:
+                return default
+        return copy_value(node)
 
     def material(self) -> "Material":
         """The order's material from the lab's table, with the order's index override applied."""
-        material = self.settings.materials[self.order.lens.material]
-        if self.order.lens.index is not None:
-            material = material.model_copy(update={"index": self.order.lens.index})
-        return material
+        # The order and the table are frozen, so the answer is worked out once per order.
+        if self._material is None:
+            material = self.settings.materials[self.order.lens.material]
+            if self.order.lens.index is not None:
+                material = material.model_copy(update={"index": self.order.lens.index})
+            self._material = material
+        return self._material

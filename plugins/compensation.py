@@ -73,11 +73,12 @@ def trade_notation(power: Mapping[str, Any]) -> str:
     """
     sphere = round(power["sphere"], 2) + 0.0
     cylinder = round(power.get("cylinder", 0.0), 2) + 0.0
-    written = "plano" if sphere == 0.0 else dioptres(sphere)
+    # As dioptres() writes them: the values are rounded already.
+    written = "plano" if sphere == 0.0 else f"{sphere:+.2f}".replace("-", "−")
     if cylinder == 0.0:
         return written if sphere == 0.0 else f"{written} DS"
     axis = round(power["axis"]) % 180 or 180
-    return f"{written} {dioptres(cylinder)} × {axis}"
+    return f"{written} {cylinder:+.2f} × {axis}".replace("-", "−")
 
 
 # --------------------------------------------------------------------------
@@ -105,14 +106,15 @@ def assess(before: Mapping[str, Any], after: Mapping[str, Any], params: Compensa
     change alone misses a turned axis, which a lensmeter sees.
     """
     meridians = principal_meridian_changes(matrix_of(before), matrix_of(after))
+    first, second = meridians
     scale = params.tolerance_scale
-    beyond = any(abs(m.change) > scale * m.tolerance for m in meridians)
+    beyond = abs(first.change) > scale * first.tolerance or abs(second.change) > scale * second.tolerance
     shift = tolerance = None
     tolerance_before = axis_tolerance(before.get("cylinder", 0.0))
     if tolerance_before is not None and axis_tolerance(after.get("cylinder", 0.0)) is not None:
         shift, tolerance = axis_shift_deg(before["axis"], after["axis"]), tolerance_before
         beyond = beyond or abs(shift) > scale * tolerance
-    largest = max(abs(m.change) for m in meridians)
+    largest = max(abs(first.change), abs(second.change))
     return Assessment(meridians, shift, tolerance, largest, beyond, largest > params.review_above_d)
 
 

@@ -10,6 +10,7 @@ Every value is proposed as its own change, with the method that made it.
 """
 from __future__ import annotations
 
+from functools import lru_cache
 from typing import Annotated, NamedTuple
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
@@ -18,12 +19,10 @@ from engine import Change, Flag, Stage, hookimpl
 from plugins.optics.front_curve import (
     FRONT_CURVE_METHODS, ROTATION_DISTANCE_MM, NoBestForm, front_curve, front_curve_method, nearest_stocked_base,
 )
-from plugins.optics.outline import (
-    DEFAULT_EXPONENT, blank_diameter_mm, decentration, modelled_outline, optical_centre, outline_points,
-)
+from plugins.optics.outline import DEFAULT_EXPONENT, decentration, modelled_outline, optical_centre
 from plugins.optics.power import power_matrix, spherical_equivalent
 from plugins.optics.thickness import (
-    LensNotMakeable, LensShape, lens_volume_mm3, lens_weight_g, solve_center_thickness, thickness_mm,
+    LensNotMakeable, LensRequest, LensShape, edged_lenses, lens_weight_g, outline_grid,
 )
 
 SURFACES_SOURCE = ("Jalie, The Principles of Ophthalmic Lenses: surface power, exact sag, thick-lens back vertex "
@@ -179,66 +178,86 @@ def _choose_front_curve(view, eye, sphere, cylinder, material_key, index, params
 
 
 def _outline(view, params):
-    """The right lens's outline radii and a sentence on where they come from."""
+    """The right lens's outline (an :func:`outline_grid`) and a sentence on where it comes from."""
     frame = view.order.frame
     if frame.outline_mm is not None:
-        return list(frame.outline_mm), f"outline from the order ({len(frame.outline_mm)} radii about the box centre)"
-    shape = modelled_outline(frame.box_width_mm, frame.box_height_mm, frame.effective_diameter_mm,
-                             params.outline_exponent_without_ed)
-    if frame.effective_diameter_mm is None:
+        return outline_grid(frame.outline_mm), f"outline from the order ({len(frame.outline_mm)} radii about the box centre)"
+    return _modelled(frame.box_width_mm, frame.box_height_mm, frame.effective_diameter_mm,
+                     params.outline_exponent_without_ed)
+
+
+@lru_cache(maxsize=256)
+def _modelled(box_width_mm, box_height_mm, effective_diameter_mm, exponent_without_ed):
+    # Frames repeat from order to order: the modelled outline's grid and its sentence are kept.
+    shape = modelled_outline(box_width_mm, box_height_mm, effective_diameter_mm, exponent_without_ed)
+    if effective_diameter_mm is None:
         basis = f"the lab's exponent m = {shape.exponent:g}, as the order gives no effective diameter"
     else:
-        basis = f"m = {shape.exponent:.2f} fitted so that twice the longest radius is the ED {frame.effective_diameter_mm:.1f} mm"
-    return list(shape.radii_mm), (
-        f"outline modelled as the superellipse |x/(A/2)|^m + |y/(B/2)|^m = 1 with A {frame.box_width_mm:.1f} mm, "
-        f"B {frame.box_height_mm:.1f} mm and {basis}"
+        basis = f"m = {shape.exponent:.2f} fitted so that twice the longest radius is the ED {effective_diameter_mm:.1f} mm"
+    return outline_grid(shape.radii_mm), (
+        f"outline modelled as the superellipse |x/(A/2)|^m + |y/(B/2)|^m = 1 with A {box_width_mm:.1f} mm, "
+        f"B {box_height_mm:.1f} mm and {basis}"
     )
 
 
-def _eye_geometry(view, eye, params):
+class _Prepared(NamedTuple):
+    """One eye's lens, ready for the thickness solution: what the stage chose and measured before it."""
+
+    sphere: float
+    cylinder: float
+    axis: float
+    material: object
+    choice: FrontCurveChoice
+    offset: object
+    centre: tuple[float, float]
+    shape: LensShape
+    minimums: ThicknessMinimums
+    min_edge: float
+
+
+def _prepare(view, eye, params) -> _Prepared | None:
+    """The eye's front curve, optical centre, shape and minimums; None when no surfacing power reached the stage."""
     order = view.order
     surfacing = view.get(f"lenses.{eye}.surfacing")
     if surfacing is None:
-        yield Flag("geometry-no-power", "review",
-                   "No surfacing power reached the geometry stage (is normalize in the chain?): "
-                   "the lens geometry was not worked out; check the lab's chain.", eye)
-        return
+        return None
     sphere, cylinder, axis = surfacing["sphere"], surfacing.get("cylinder", 0.0), surfacing.get("axis", 180)
     matrix = power_matrix(sphere, cylinder, axis)
     material_key = order.lens.material
     material = view.material()
     index = material.index
-
     choice = _choose_front_curve(view, eye, sphere, cylinder, material_key, index, params)
-    yield from choice.flags
-    front = choice.curve_d
-
-    radii, outline_note = _outline(view, params)
     frame = order.frame
     fit = getattr(order.fit, eye)
     offset = decentration(frame.box_width_mm, frame.bridge_mm, frame.box_height_mm, fit.pd_mm, fit.height_mm)
     centre = optical_centre(eye, offset)
-    points = outline_points(radii, eye)
-    about_centre = points - centre
-
     prism = view.get(f"lenses.{eye}.prism") or {}
-    shape = LensShape(front, matrix, index, float(prism.get("amount", 0.0)), float(prism.get("base_deg", 0.0)))
+    shape = LensShape(choice.curve_d, matrix, index, float(prism.get("amount", 0.0)), float(prism.get("base_deg", 0.0)))
     minimums = params.minimum_thickness.get(material_key, params.other_minimum_thickness)
-    min_edge = minimums.edge_for(frame.mount)
-    try:
-        solved = solve_center_thickness(about_centre, shape, minimums.center_mm, min_edge)
-        edges = thickness_mm(about_centre, shape, solved.center_mm)
-        volume = lens_volume_mm3(radii, eye, centre, shape, solved.center_mm)
-    except LensNotMakeable as exc:
+    return _Prepared(sphere, cylinder, axis, material, choice, offset, centre, shape, minimums,
+                     minimums.edge_for(frame.mount))
+
+
+def _eye_geometry(view, eye, params, outline, lens: _Prepared, solved):
+    order = view.order
+    grid, outline_note = outline
+    frame = order.frame
+    fit = getattr(order.fit, eye)
+    material_key = order.lens.material
+    material, choice, offset, centre, shape = lens.material, lens.choice, lens.offset, lens.centre, lens.shape
+    minimums, min_edge, index, front = lens.minimums, lens.min_edge, shape.index, choice.curve_d
+    if isinstance(solved, LensNotMakeable):
         yield Flag(
             "lens-not-makeable", "review",
-            f"The lens cannot be made as ordered: {exc} (front {front:.2f} D, surfacing {sphere:+.2f} "
-            f"{cylinder:+.2f} × {axis:.0f}, {material_key}). Choose another front curve, material, frame or "
+            f"The lens cannot be made as ordered: {solved} (front {front:.2f} D, surfacing {lens.sphere:+.2f} "
+            f"{lens.cylinder:+.2f} × {lens.axis:.0f}, {material_key}). Choose another front curve, material, frame or "
             "design with the practice.",
-            eye, {"front_curve_d": front, "sphere": sphere, "cylinder": cylinder, "axis": axis},
+            eye, {"front_curve_d": front, "sphere": lens.sphere, "cylinder": lens.cylinder, "axis": lens.axis},
         )
         return
-    blank = blank_diameter_mm(points, centre, params.blank_allowance_mm)
+    volume = solved.volume_mm3
+    # The rule of blank_diameter_mm, from the distances the solution has already worked out.
+    blank = 2.0 * solved.farthest_mm + params.blank_allowance_mm
     weight = lens_weight_g(volume, material.density)
 
     field = f"lenses.{eye}.geometry"
@@ -257,13 +276,13 @@ def _eye_geometry(view, eye, params):
         {"binding": solved.binding, "min_center_mm": minimums.center_mm, "min_edge_mm": min_edge,
          "mount": frame.mount, "index": index, "front_curve_d": front},
     )
-    edge_inputs = {"outline_points": len(radii), "optical_centre_mm": list(centre), "index": index,
+    edge_inputs = {"outline_points": grid.radii.size, "optical_centre_mm": list(centre), "index": index,
                    "prism_amount": shape.prism_delta, "prism_base_deg": shape.prism_base_deg}
     edge_method = ("thickness along the outline: centre − exact front sag + exact back sag "
                    "(toric back by Euler's theorem) + prism wedge")
-    yield Change(f"{field}.edge_min_mm", float(edges.min()),
+    yield Change(f"{field}.edge_min_mm", solved.edge_min_mm,
                  "The thinnest edge along the outline.", edge_method, SURFACES_SOURCE, edge_inputs)
-    yield Change(f"{field}.edge_max_mm", float(edges.max()),
+    yield Change(f"{field}.edge_max_mm", solved.edge_max_mm,
                  "The thickest edge along the outline.", edge_method, SURFACES_SOURCE, edge_inputs)
     yield Change(
         f"{field}.blank_min_diameter_mm", blank,
@@ -276,7 +295,8 @@ def _eye_geometry(view, eye, params):
     yield Change(
         f"{field}.weight_g", weight,
         "The weight of the edged lens.",
-        "thickness integrated over the outline area (polar trapezoid × 16-point Gauss–Legendre) × density",
+        ("thickness integrated over the outline area (polar trapezoid over about 120 of the radii × 6-point "
+         "Gauss–Legendre; centre thickness and prism wedge over every sector exactly) × density"),
         "Jalie, The Principles of Ophthalmic Lenses (weight = volume × density)",
         {"volume_cm3": volume / 1000.0, "density_g_cm3": material.density},
     )
@@ -297,8 +317,20 @@ def _eye_geometry(view, eye, params):
 
 
 def run(view, params: GeometryParams):
-    for eye in view.eyes:
-        yield from _eye_geometry(view, eye, params)
+    outline = _outline(view, params)
+    prepared = [_prepare(view, eye, params) for eye in view.eyes]
+    # Both lenses of the pair share the outline: their thicknesses are solved together, in one set of arrays.
+    requests = [LensRequest(eye, lens.centre, lens.shape, lens.minimums.center_mm, lens.min_edge)
+                for eye, lens in zip(view.eyes, prepared) if lens is not None]
+    solutions = iter(edged_lenses(outline[0], requests) if requests else ())
+    for eye, lens in zip(view.eyes, prepared):
+        if lens is None:
+            yield Flag("geometry-no-power", "review",
+                       "No surfacing power reached the geometry stage (is normalize in the chain?): "
+                       "the lens geometry was not worked out; check the lab's chain.", eye)
+            continue
+        yield from lens.choice.flags
+        yield from _eye_geometry(view, eye, params, outline, lens, next(solutions))
 
 
 @hookimpl

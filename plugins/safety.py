@@ -83,7 +83,7 @@ def _power_checks(view, params: SafetyParams, eye: str):
         return
     matrix = _matrix(surfacing)
     larger, smaller, larger_direction = principal_powers(matrix)
-    strongest = max(larger, smaller, key=abs)
+    strongest = smaller if abs(smaller) > abs(larger) else larger  # max(..., key=abs): the first on a tie
     if abs(strongest) > params.high_power_d:
         yield Flag(
             "power-very-high", "warning",

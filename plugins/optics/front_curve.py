@@ -308,4 +308,9 @@ def nearest_stocked_base(curve_d: float, stocked_d: Sequence[float]) -> float:
     """
     if not stocked_d:
         raise ValueError("no stocked base curves for this material")
-    return min(sorted(stocked_d), key=lambda base: abs(base - curve_d))
+    ordered = sorted(stocked_d)
+    nearest, gap = ordered[0], abs(ordered[0] - curve_d)
+    for base in ordered:  # the first of equally near bases (the flatter) is kept
+        if abs(base - curve_d) < gap:
+            nearest, gap = base, abs(base - curve_d)
+    return nearest

@@ -21,6 +21,24 @@ class Extent(NamedTuple):
     effective_diameter_mm: float
 
 
+@lru_cache(maxsize=64)
+def unit_circle(count: int) -> tuple[np.ndarray, np.ndarray]:
+    """cos θ and sin θ of ``count`` equal angle steps from 0°, counter-clockwise (read-only arrays).
+
+    The directions of an outline of ``count`` radii; kept, since outlines come
+    with few distinct counts (36, 72, 100, 360...).
+
+    Examples
+    --------
+    >>> [c.round(6).tolist() for c in unit_circle(4)]
+    [[1.0, 0.0, -1.0, -0.0], [0.0, 1.0, 0.0, -1.0]]
+    """
+    angles = np.arange(count) * (2.0 * math.pi / count)
+    cosines, sines = np.cos(angles), np.sin(angles)
+    cosines.flags.writeable = sines.flags.writeable = False
+    return cosines, sines
+
+
 def outline_points(radii_mm: Sequence[float], eye: str = "right") -> np.ndarray:
     """The outline as an (N, 2) array of x, y in mm about the box centre, seen from the front.
 
@@ -33,11 +51,11 @@ def outline_points(radii_mm: Sequence[float], eye: str = "right") -> np.ndarray:
     [[20.0, 0.0], [0.0, 20.0], [-20.0, 0.0], [-0.0, -20.0]]
     """
     radii = np.asarray(radii_mm, dtype=float)
-    angles = np.arange(radii.size) * (2.0 * math.pi / radii.size)
-    x = radii * np.cos(angles)
+    cosines, sines = unit_circle(radii.size)
+    x = radii * cosines
     if eye == "left":
         x = -x
-    return np.column_stack((x, radii * np.sin(angles)))
+    return np.column_stack((x, radii * sines))
 
 
 def outline_extent(radii_mm: Sequence[float]) -> Extent:
@@ -53,10 +71,13 @@ def outline_extent(radii_mm: Sequence[float]) -> Extent:
     >>> outline_extent([25.0] * 360).width_mm
     50.0
     """
-    points = outline_points(radii_mm)
-    width = float(points[:, 0].max() - points[:, 0].min())
-    height = float(points[:, 1].max() - points[:, 1].min())
-    return Extent(width, height, 2.0 * float(np.max(radii_mm)))
+    radii = np.asarray(radii_mm, dtype=float)
+    cosines, sines = unit_circle(radii.size)
+    # The points of outline_points, by coordinate (argmax/argmin: numpy's quick path to an extreme).
+    x, y = radii * cosines, radii * sines
+    width = float(x[x.argmax()] - x[x.argmin()])
+    height = float(y[y.argmax()] - y[y.argmin()])
+    return Extent(width, height, 2.0 * float(radii[radii.argmax()]))
 
 
 # --------------------------------------------------------------------------

@@ -102,6 +102,8 @@ def surface_curvature_per_mm(power_d, index: float, side: str = "front"):
     >>> round(surface_curvature_per_mm(6.0, 1.5), 6)
     0.012
     """
+    if type(power_d) is float or type(power_d) is int:  # plain numbers skip numpy's call overhead
+        return _side_sign(side) * float(power_d) / (1000.0 * (index - 1.0))
     curvature = _side_sign(side) * np.asarray(power_d, dtype=float) / (1000.0 * (index - 1.0))
     return float(curvature) if curvature.ndim == 0 else curvature
 

@@ -23,17 +23,14 @@ References
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 from typing import NamedTuple, Sequence
 
 import numpy as np
 
+from plugins.optics.outline import unit_circle
 from plugins.optics.power import PowerMatrix, principal_powers
-from plugins.optics.surfaces import ToricBack, sag_mm, surface_curvature_per_mm, toric_back_surface
-
-#: Gauss–Legendre nodes and weights on [0, 1] for the radial part of the volume integral.
-_NODES, _WEIGHTS = np.polynomial.legendre.leggauss(16)
-_RADIAL_NODES = 0.5 * (_NODES + 1.0)
-_RADIAL_WEIGHTS = 0.5 * _WEIGHTS
+from plugins.optics.surfaces import ToricBack, back_surface_power, surface_curvature_per_mm
 
 
 class LensNotMakeable(ValueError):
@@ -120,6 +117,124 @@ def back_power_in_direction(back: ToricBack, direction_rad):
     return float(power) if power.ndim == 0 else power
 
 
+# --------------------------------------------------------------------------
+# Thickness at many points: what does not depend on the centre thickness is worked out once
+# --------------------------------------------------------------------------
+
+_NOT_REACHING = "a surface of this lens does not reach the outline: its curve is steeper than the lens is wide"
+_NOT_CONVERGING = "the centre thickness does not converge for this lens"
+#: Added to ρ² where it divides, so that a point at the optical centre itself (ρ = 0) gets cos² = 0, not 0/0;
+#: far below half an ulp of any other squared distance, so it changes nothing else.
+_TINY_MM2 = 1e-300
+#: c²ρ² may come this close to 1 before every point is checked one by one.
+_REACH_MARGIN = 0.999999
+
+
+def _sag_of(curvature_per_mm, rho2_mm2):
+    """The exact sag ``c ρ² / (1 + √(1 − c² ρ²))`` from the squared distance ρ² (no square root of ρ needed)."""
+    return curvature_per_mm * rho2_mm2 / (1.0 + np.sqrt(1.0 - curvature_per_mm * curvature_per_mm * rho2_mm2))
+
+
+class _Profile(NamedTuple):
+    """What the thickness at a set of points owes to the lens apart from its centre thickness.
+
+    ``rho2`` is the squared distance from the optical centre (mm²); ``fixed`` the
+    part of the thickness that does not depend on the centre thickness, minus
+    the front sag plus the prism wedge (mm); ``back_cylinder`` the back's
+    curvature from its cylinder, ``k (F_a − F_b) cos²(φ − α)`` (1/mm, 0.0 for a
+    spherical back), so that the back's curvature in each direction is
+    ``back_cylinder + k F_b(t)`` with ``k = −1 / (1000 (n − 1))``: the centre
+    thickness moves both principal back powers by the same amount, since
+    F₂ = Fv − F₁/(1 − (t/n)F₁) in each meridian. ``cylinder_span`` is
+    ``k (F_a − F_b)``, the most ``back_cylinder`` can be, and ``rho2_max`` (at
+    least) the largest ρ²: together they bound c²ρ² without looking at every
+    point. ``edge_rho2_max`` is the largest ρ² of the edge points.
+    """
+
+    rho2: np.ndarray
+    fixed: np.ndarray
+    back_cylinder: np.ndarray | float
+    front_d: float
+    back_vertex_b_d: float
+    index: float
+    cylinder_span: float
+    rho2_max: float
+    edge_rho2_max: float
+
+
+def _profile(x_mm: np.ndarray, y_mm: np.ndarray, shape: LensShape, strict: bool,
+             edge_count: int | None = None, box_centre_rho2: float = 0.0) -> _Profile:
+    """The :class:`_Profile` of points x, y (mm about the optical centre, front view).
+
+    ``strict``: raise :class:`LensNotMakeable` when the front does not reach a
+    point; otherwise the thickness there is NaN. With ``edge_count``, the
+    points after the first ``edge_count`` (the edge) lie on the segments from
+    the box centre, at ``box_centre_rho2`` from the optical centre, to edge
+    points; ρ² is convex along a segment, so none is farther than the edge or
+    the box centre.
+    """
+    index = shape.index
+    rho2 = x_mm * x_mm
+    rho2 += y_mm * y_mm
+    edge = rho2 if edge_count is None else rho2[:edge_count]
+    edge_rho2_max = float(edge[edge.argmax()]) if edge.size else 0.0
+    rho2_max = edge_rho2_max if edge_count is None else max(edge_rho2_max, box_centre_rho2)
+    front_curvature = surface_curvature_per_mm(shape.front_d, index, "front")
+    if front_curvature:
+        square = front_curvature * front_curvature
+        # rho2_max bounds every ρ²: only near the limit look at every point.
+        if strict and square * rho2_max > _REACH_MARGIN and float(np.max(square * rho2)) > 1.0:
+            raise LensNotMakeable(_NOT_REACHING)
+        fixed = _sag_of(-front_curvature, rho2)  # the sag is odd in the curvature: this is minus the front sag
+    else:
+        fixed = np.zeros_like(rho2)
+    if shape.prism_delta:
+        base = math.radians(shape.prism_base_deg)
+        per_mm = shape.prism_delta / (100.0 * (index - 1.0))
+        wedge = x_mm * (per_mm * math.cos(base))
+        wedge += y_mm * (per_mm * math.sin(base))
+        fixed += wedge
+    larger, smaller, direction = principal_powers(shape.surfacing)
+    back_cylinder: np.ndarray | float = 0.0
+    span = surface_curvature_per_mm(larger - smaller, index, "back")
+    if larger != smaller:
+        # cos²(φ − α) = (p · a)² / |p|², a the unit vector of the larger power's meridian (Euler's theorem).
+        # span ≤ 0, so k (F_a − F_b) cos² = (√−span (p · a))² / (−|p|²).
+        alpha, scale = math.radians(direction), math.sqrt(-span)
+        along = x_mm * (scale * math.cos(alpha))
+        along += y_mm * (scale * math.sin(alpha))
+        along *= along
+        along /= -_TINY_MM2 - rho2
+        back_cylinder = along
+    return _Profile(rho2, fixed, back_cylinder, shape.front_d, smaller, index, span, rho2_max, edge_rho2_max)
+
+
+def _relief_of(profile: _Profile, center_thickness_mm: float, strict: bool) -> np.ndarray:
+    """The thickness (mm) at the profile's points less the centre thickness, for a centre thickness.
+
+    (The centre thickness itself is added where it is needed, to a number
+    rather than to every point.) Where the back does not reach a point:
+    :class:`LensNotMakeable` when ``strict``, NaN otherwise.
+    """
+    # k F_b(t): the back's curvature in the meridian of its smaller power, at this centre thickness.
+    back_b = back_surface_power(profile.front_d, profile.back_vertex_b_d, center_thickness_mm, profile.index)
+    shift = surface_curvature_per_mm(back_b, profile.index, "back")
+    curvature = profile.back_cylinder + shift
+    thickness = curvature * profile.rho2             # c ρ²
+    root = curvature * thickness                     # c² ρ²
+    np.subtract(1.0, root, out=root)
+    if strict and root.size:
+        # c lies between k F_b and k F_b + span, ρ² is at most rho2_max: only near the limit look at every point.
+        steepest = max(shift * shift, (shift + profile.cylinder_span) ** 2)
+        if steepest * profile.rho2_max > _REACH_MARGIN and float(root[root.argmin()]) < 0.0:
+            raise LensNotMakeable(_NOT_REACHING)
+    np.sqrt(root, out=root)
+    root += 1.0
+    thickness /= root                                # the back sag, c ρ² / (1 + √(1 − c² ρ²))
+    thickness += profile.fixed
+    return thickness
+
+
 def thickness_mm(points_mm, shape: LensShape, center_thickness_mm: float) -> np.ndarray:
     """The lens thickness (mm) at points about the optical centre.
 
@@ -160,19 +275,10 @@ def thickness_mm(points_mm, shape: LensShape, center_thickness_mm: float) -> np.
     4.708
     """
     points = np.asarray(points_mm, dtype=float).reshape(-1, 2)
-    x, y = points[:, 0], points[:, 1]
-    radius = np.hypot(x, y)
-    direction = np.arctan2(y, x)
-    index = shape.index
-    back = toric_back_surface(shape.front_d, shape.surfacing, center_thickness_mm, index)
-    front_sag = sag_mm(surface_curvature_per_mm(shape.front_d, index, "front"), radius)
-    back_curvature = surface_curvature_per_mm(back_power_in_direction(back, direction), index, "back")
-    back_sag = sag_mm(back_curvature, radius)
-    thickness = center_thickness_mm - front_sag + back_sag
-    if shape.prism_delta:
-        base = math.radians(shape.prism_base_deg)
-        along_base = x * math.cos(base) + y * math.sin(base)
-        thickness = thickness + shape.prism_delta * along_base / (100.0 * (index - 1.0))
+    with np.errstate(invalid="ignore"):
+        profile = _profile(points[:, 0], points[:, 1], shape, strict=False)
+        thickness = _relief_of(profile, center_thickness_mm, strict=False)
+    thickness += center_thickness_mm
     return thickness
 
 
@@ -197,6 +303,74 @@ class CentreThickness(NamedTuple):
 
     center_mm: float
     binding: str
+
+
+#: The thinnest edge meets its minimum to within this (mm); far below what a lab can measure.
+EDGE_TOLERANCE_MM = 1e-10
+_NEWTON_STEP_MM = 1e-12
+_MAX_ITERATIONS = 100
+
+
+def _edge_root_mm(profile: _Profile, point: int, target_mm: float, center_mm: float) -> float:
+    """The centre thickness at which one point's thickness is ``target_mm`` (Newton's method, plain floats).
+
+    The point's thickness is ``T(t) = t + fixed + s(c(t), ρ²)`` with the back's
+    curvature ``c(t) = cyl + k F_b(t)``; its slope is
+    ``T′ = 1 + ρ² / (w (1 + w)) · dc/dt`` with ``w = √(1 − c²ρ²)`` and
+    ``dc/dt = −k F₁² / (1000 n (1 − (t/n) F₁)²) ≥ 0``, so T rises with t and the
+    root is unique.
+    """
+    rho2 = float(profile.rho2[point])
+    fixed = float(profile.fixed[point])
+    cylinder = profile.back_cylinder if isinstance(profile.back_cylinder, float) else float(profile.back_cylinder[point])
+    front, index = profile.front_d, profile.index
+    per_dioptre = surface_curvature_per_mm(1.0, index, "back")
+    reduced = front / (1000.0 * index)
+    t = center_mm
+    for _ in range(_MAX_ITERATIONS):
+        denominator = 1.0 - t * reduced
+        curvature = cylinder + per_dioptre * (profile.back_vertex_b_d - front / denominator)
+        discriminant = 1.0 - curvature * curvature * rho2
+        if not discriminant > 0.0:
+            raise LensNotMakeable(_NOT_REACHING)
+        w = math.sqrt(discriminant)
+        thickness = t + fixed + curvature * rho2 / (1.0 + w)
+        slope = 1.0 - rho2 / (w * (1.0 + w)) * per_dioptre * front * reduced / (denominator * denominator)
+        step = (target_mm - thickness) / slope
+        t += step
+        if abs(step) < _NEWTON_STEP_MM:
+            return t
+    raise LensNotMakeable(_NOT_CONVERGING)
+
+
+class _Solved(NamedTuple):
+    center_mm: float
+    binding: str
+    relief_mm: np.ndarray  # thickness less the centre thickness at every point, for the solved centre thickness
+    thinnest_mm: float     # the thinnest edge
+
+
+def _solve(profile: _Profile, edge_count: int, min_center_mm: float, min_edge_mm: float) -> _Solved:
+    """The least centre thickness meeting the minimums; the profile's first ``edge_count`` points are the edge."""
+    # The minimum centre applies to a lens with a minus or plano meridian (centre_minimum_applies).
+    centre_minimum = profile.back_vertex_b_d <= 0.0
+    center = min_center_mm if centre_minimum else min_edge_mm
+    relief = _relief_of(profile, center, strict=True)
+    edge = relief[:edge_count]
+    point = int(edge.argmin())
+    thinnest = float(edge[point]) + center
+    # Every point thickens with the centre, so edges at or above their minimum here mean the centre binds.
+    if centre_minimum and thinnest >= min_edge_mm:
+        return _Solved(center, "centre", relief, thinnest)
+    for _ in range(_MAX_ITERATIONS):
+        if abs(thinnest - min_edge_mm) <= EDGE_TOLERANCE_MM:
+            return _Solved(center, "edge", relief, thinnest)
+        center = _edge_root_mm(profile, point, min_edge_mm, center)
+        relief = _relief_of(profile, center, strict=True)
+        edge = relief[:edge_count]
+        point = int(edge.argmin())
+        thinnest = float(edge[point]) + center
+    raise LensNotMakeable(_NOT_CONVERGING)
 
 
 def solve_center_thickness(edge_points_mm, shape: LensShape, min_center_mm: float,
@@ -228,15 +402,21 @@ def solve_center_thickness(edge_points_mm, shape: LensShape, min_center_mm: floa
 
     Notes
     -----
-    The edge grows a little faster than the centre (the back steepens as the
-    centre thickens, to keep the back vertex power), so the fixed-point
-    iteration t ← t + (minimum − thinnest edge) contracts by that small excess
-    and converges in a few steps.
+    Every point of the lens thickens with the centre, a little faster than
+    the centre does (the back steepens as the centre thickens, to keep the
+    back vertex power), so the thinnest edge rises strictly with the centre
+    thickness and the answer is unique. When the minimum centre applies and
+    the edges already meet their minimum there, the centre binds. Otherwise
+    the thinnest edge point's own equation ``T(t) = minimum`` is solved by
+    Newton's method in plain floats, the whole outline is checked at that
+    thickness, and a point that is then thinner takes over (each takeover
+    raises the thickness, so this ends); the thinnest edge meets its minimum
+    to within :data:`EDGE_TOLERANCE_MM`.
 
     References
     ----------
     Jalie, *The Principles of Ophthalmic Lenses*: minimum substance of minus
-    and plus lenses.
+    and plus lenses; Newton's method as in any numerical-analysis text.
 
     Examples
     --------
@@ -248,21 +428,292 @@ def solve_center_thickness(edge_points_mm, shape: LensShape, min_center_mm: floa
     ('edge', 1.0)
     """
     points = np.asarray(edge_points_mm, dtype=float).reshape(-1, 2)
-    centre_floor = min_center_mm if centre_minimum_applies(shape.surfacing) else -math.inf
-    center = max(centre_floor, min_edge_mm)
-    for _ in range(100):
-        thinnest_edge = float(np.min(thickness_mm(points, shape, center)))
-        if math.isnan(thinnest_edge):
-            raise LensNotMakeable("a surface of this lens does not reach the outline: its curve is steeper than the lens is wide")
-        step = min_edge_mm - thinnest_edge
-        if abs(step) < 1e-10:
-            break
-        center += step
+    profile = _profile(points[:, 0], points[:, 1], shape, strict=True)
+    solved = _solve(profile, len(points), min_center_mm, min_edge_mm)
+    return CentreThickness(solved.center_mm, solved.binding)
+
+
+# --------------------------------------------------------------------------
+# The volume: the thickness integrated over the outline
+# --------------------------------------------------------------------------
+
+#: Radial Gauss–Legendre nodes per angle of the volume quadrature.
+RADIAL_NODES = 6
+_NODES, _WEIGHTS = np.polynomial.legendre.leggauss(RADIAL_NODES)
+_RADIAL_NODES = 0.5 * (_NODES + 1.0)
+_RADIAL_WEIGHTS = 0.5 * _WEIGHTS
+#: ∫₀¹ f(s R) s ds ≈ Σ f(s_k R) s_k w_k: the weights of the area element r dr on [0, 1].
+_AREA_NODE_WEIGHTS = _RADIAL_NODES * _RADIAL_WEIGHTS
+#: The sag part of the volume is integrated over about this many of the outline's angles (every k-th radius).
+VOLUME_ANGLES = 120
+
+
+def _volume_stride(count: int) -> int:
+    stride = max(1, count // VOLUME_ANGLES)
+    while count % stride:
+        stride -= 1
+    return stride
+
+
+class _Layout(NamedTuple):
+    """Where the points of an outline of ``count`` radii sit (read-only arrays, the right lens's view).
+
+    ``cosines`` / ``sines``: cos θ and sin θ of the ``count`` outline points
+    first, then of the quadrature nodes, ``RADIAL_NODES`` on every ``stride``-th
+    radius; ``row``: the node weights of one sampled radius, including its share
+    ``stride × 2π / count`` of the angle.
+    """
+
+    cosines: np.ndarray
+    sines: np.ndarray
+    stride: int
+    row: np.ndarray
+
+
+@lru_cache(maxsize=64)
+def _layout(count: int) -> _Layout:
+    cosines, sines = unit_circle(count)
+    stride = _volume_stride(count)
+    row = (stride * 2.0 * math.pi / count) * _AREA_NODE_WEIGHTS
+    layout = _Layout(np.concatenate((cosines, np.repeat(cosines[::stride], RADIAL_NODES))),
+                     np.concatenate((sines, np.repeat(sines[::stride], RADIAL_NODES))),
+                     stride, row)
+    for array in (layout.cosines, layout.sines, layout.row):
+        array.flags.writeable = False
+    return layout
+
+
+class OutlineGrid(NamedTuple):
+    """An outline's points and volume weights, prepared once and shared by the lenses cut to it.
+
+    ``x`` / ``y``: mm about the box centre, the right lens's view, of the
+    outline points, then of the volume's quadrature nodes; ``weights``: each
+    node's share of ∬ · dA; ``area``: the sector area ½ Σ r² Δθ over every
+    radius; ``radii``: the outline. Read-only arrays.
+    """
+
+    radii: np.ndarray
+    layout: _Layout
+    x: np.ndarray
+    y: np.ndarray
+    weights: np.ndarray
+    area: float
+
+
+def outline_grid(radii_mm: Sequence[float]) -> OutlineGrid:
+    """The points and volume weights of an outline, for :func:`edged_lenses` (a frame's may be kept and reused).
+
+    Parameters
+    ----------
+    radii_mm : sequence of float
+        The outline of the right lens seen from the front, radii about the box
+        centre at equal angle steps from 0° (the contract's form), mm.
+
+    Returns
+    -------
+    OutlineGrid
+        The outline points and the nodes of :func:`lens_volume_mm3`'s
+        quadrature (6 Gauss–Legendre nodes on every k-th radius, about 120
+        radii), with their area weights.
+
+    References
+    ----------
+    Gauss–Legendre quadrature and the trapezoidal rule, as in any
+    numerical-analysis text; the sector area ½ Σ r² Δθ.
+
+    Examples
+    --------
+    >>> grid = outline_grid([25.0] * 72)
+    >>> round(grid.area / (math.pi * 25.0 ** 2), 12), round(float(grid.weights.sum()) / grid.area, 12)
+    (1.0, 1.0)
+    """
+    radii = np.array(radii_mm, dtype=float)
+    layout = _layout(radii.size)
+    sampled = radii[::layout.stride, None]
+    along = np.concatenate((radii, (sampled * _RADIAL_NODES).ravel()))
+    weights = (sampled * sampled * layout.row).ravel()
+    area = math.pi / radii.size * float(np.dot(radii, radii))
+    grid = OutlineGrid(radii, layout, along * layout.cosines, along * layout.sines, weights, area)
+    for array in (grid.radii, grid.x, grid.y, grid.weights):
+        array.flags.writeable = False
+    return grid
+
+
+def _about_centre(grid: OutlineGrid, eye: str, centre_mm: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
+    """The grid's points about one lens's optical centre (the left lens is the mirror image of the right)."""
+    if eye == "right":
+        x = grid.x - centre_mm[0]
+    elif eye == "left":
+        x = np.subtract(-centre_mm[0], grid.x)  # −x − c, in one step
     else:
-        raise LensNotMakeable("the centre thickness does not converge for this lens")
-    if center < centre_floor:
-        return CentreThickness(centre_floor, "centre")
-    return CentreThickness(center, "edge")
+        raise ValueError(f"eye must be 'right' or 'left', not {eye!r}")
+    return x, grid.y - centre_mm[1]
+
+
+def _volume_from(relief_nodes: np.ndarray, grid: OutlineGrid, eye: str, centre_mm: tuple[float, float],
+                 shape: LensShape, center_thickness_mm: float, x_nodes: np.ndarray, y_nodes: np.ndarray) -> float:
+    """``∬ t dA`` from the relief (thickness less the centre thickness) at the nodes.
+
+    The centre thickness is a constant and the prism wedge a linear function:
+    both are integrated over every sector exactly (area ½ Σ r² Δθ, first
+    moments ⅓ Σ r³ (cos θ, sin θ) Δθ), in place of their share of the sampled
+    quadrature (which is exact for them already when every radius is used).
+    """
+    volume = float(np.dot(relief_nodes, grid.weights)) + center_thickness_mm * grid.area
+    if shape.prism_delta and grid.layout.stride > 1:
+        radii = grid.radii
+        cosines, sines = unit_circle(radii.size)
+        cubes = radii * radii * radii
+        third = 2.0 * math.pi / radii.size / 3.0
+        mirror = -1.0 if eye == "left" else 1.0
+        moment_x = mirror * third * float(np.dot(cosines, cubes)) - centre_mm[0] * grid.area
+        moment_y = third * float(np.dot(sines, cubes)) - centre_mm[1] * grid.area
+        base = math.radians(shape.prism_base_deg)
+        per_mm = shape.prism_delta / (100.0 * (shape.index - 1.0))
+        along_x, along_y = per_mm * math.cos(base), per_mm * math.sin(base)
+        sampled = float(np.dot(x_nodes * along_x + y_nodes * along_y, grid.weights))
+        volume += along_x * moment_x + along_y * moment_y - sampled
+    return volume
+
+
+class EdgedLens(NamedTuple):
+    """An edged lens worked out at once: the centre thickness and its binding minimum, the edges, the volume.
+
+    ``center_mm`` and ``binding`` as in :class:`CentreThickness`;
+    ``edge_min_mm`` / ``edge_max_mm`` the thinnest and thickest point of the
+    outline; ``volume_mm3`` as :func:`lens_volume_mm3`; ``farthest_mm`` the
+    distance of the farthest outline point from the optical centre.
+    """
+
+    center_mm: float
+    binding: str
+    edge_min_mm: float
+    edge_max_mm: float
+    volume_mm3: float
+    farthest_mm: float
+
+
+class LensRequest(NamedTuple):
+    """One lens for :func:`edged_lenses`: eye, optical centre (mm about the box centre), shape, minimums (mm)."""
+
+    eye: str
+    centre_mm: tuple[float, float]
+    shape: LensShape
+    min_center_mm: float
+    min_edge_mm: float
+
+
+def _edged(grid: OutlineGrid, lens: LensRequest) -> EdgedLens:
+    count = grid.radii.size
+    x, y = _about_centre(grid, lens.eye, lens.centre_mm)
+    cx, cy = lens.centre_mm
+    profile = _profile(x, y, lens.shape, strict=True, edge_count=count, box_centre_rho2=cx * cx + cy * cy)
+    solved = _solve(profile, count, lens.min_center_mm, lens.min_edge_mm)
+    center, relief = solved.center_mm, solved.relief_mm
+    edges = relief[:count]
+    volume = _volume_from(relief[count:], grid, lens.eye, lens.centre_mm, lens.shape, center, x[count:], y[count:])
+    return EdgedLens(center, solved.binding, solved.thinnest_mm, float(edges[edges.argmax()]) + center, volume,
+                     math.sqrt(profile.edge_rho2_max))
+
+
+def edged_lenses(outline: Sequence[float] | OutlineGrid,
+                 lenses: Sequence[LensRequest]) -> list[EdgedLens | LensNotMakeable]:
+    """Centre thickness, thinnest and thickest edge and volume of each lens cut to one outline.
+
+    Parameters
+    ----------
+    outline : sequence of float, or OutlineGrid
+        The outline of the right lens seen from the front, radii about the box
+        centre at equal angle steps from 0° (the contract's form), mm; or its
+        :func:`outline_grid`, prepared before.
+    lenses : sequence of LensRequest
+        Each lens: eye (the left lens is the mirror image of the right),
+        optical centre about the box centre (mm), shape and minimums as in
+        :func:`solve_center_thickness`.
+
+    Returns
+    -------
+    list of EdgedLens or LensNotMakeable
+        Per lens, in order: the same centre thickness and binding as
+        :func:`solve_center_thickness` on the outline about its optical
+        centre, the least and greatest of :func:`thickness_mm` there, and the
+        volume as :func:`lens_volume_mm3` — or, for a lens that cannot be made
+        (a surface does not reach the outline or the volume's nodes, or no
+        thickness converges), the :class:`LensNotMakeable` that says why.
+
+    Notes
+    -----
+    The outline's points and the volume's nodes share one set of arrays,
+    placed once for all the lenses; per lens, what does not depend on the
+    centre thickness (distances, front sag, wedge, the back's cylinder) is
+    computed once, and each trial thickness costs a handful of array
+    operations.
+
+    References
+    ----------
+    Jalie, *The Principles of Ophthalmic Lenses* (thickness from sags, minimum
+    substance, weight = volume × density); Euler's theorem for the toric back.
+
+    Examples
+    --------
+    >>> from plugins.optics.power import power_matrix
+    >>> right, left = edged_lenses([25.0] * 72, [
+    ...     LensRequest("right", (2.0, 0.0), LensShape(8.0, power_matrix(3.0), 1.5), 2.0, 1.0),
+    ...     LensRequest("left", (-2.0, 0.0), LensShape(8.0, power_matrix(3.0), 1.5), 2.0, 1.0)])
+    >>> right.binding, round(right.edge_min_mm, 9), round(right.center_mm - left.center_mm, 9)
+    ('edge', 1.0, 0.0)
+    """
+    grid = outline if isinstance(outline, OutlineGrid) else outline_grid(outline)
+    results: list[EdgedLens | LensNotMakeable] = []
+    for lens in lenses:
+        try:
+            results.append(_edged(grid, lens))
+        except LensNotMakeable as exc:
+            results.append(exc)
+    return results
+
+
+def edged_lens(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float, float], shape: LensShape,
+               min_center_mm: float, min_edge_mm: float) -> EdgedLens:
+    """Centre thickness, thinnest and thickest edge and volume of one edged lens (:func:`edged_lenses` for one).
+
+    Parameters
+    ----------
+    radii_mm : sequence of float
+        The outline of the right lens seen from the front, radii about the box
+        centre at equal angle steps from 0°.
+    eye : {"right", "left"}
+        The left lens is the mirror image of the right.
+    centre_mm : (float, float)
+        The optical centre about the box centre, mm.
+    shape : LensShape
+        Front curve, surfacing power, index and prism.
+    min_center_mm, min_edge_mm : float
+        The lab's minimums, as in :func:`solve_center_thickness`.
+
+    Returns
+    -------
+    EdgedLens
+
+    Raises
+    ------
+    LensNotMakeable
+        As :func:`solve_center_thickness`, or a surface does not reach the
+        volume's quadrature nodes.
+
+    References
+    ----------
+    Jalie, *The Principles of Ophthalmic Lenses* (thickness from sags, minimum
+    substance, weight = volume × density); Euler's theorem for the toric back.
+
+    Examples
+    --------
+    >>> from plugins.optics.power import power_matrix
+    >>> lens = edged_lens([25.0] * 72, "right", (0.0, 0.0), LensShape(8.0, power_matrix(3.0), 1.5), 2.0, 1.0)
+    >>> lens.binding, round(lens.edge_min_mm, 9), round(lens.farthest_mm, 9)
+    ('edge', 1.0, 25.0)
+    """
+    return _edged(outline_grid(radii_mm), LensRequest(eye, centre_mm, shape, min_center_mm, min_edge_mm))
 
 
 def lens_volume_mm3(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float, float],
@@ -284,21 +735,34 @@ def lens_volume_mm3(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float,
     Returns
     -------
     float
-        ``∬ t dA`` in mm³: in polar coordinates about the box centre, the
-        trapezoidal rule over the given angles (exact for a periodic smooth
-        integrand to far below a milligram) and 16-point Gauss–Legendre along
-        each radius.
+        ``∬ t dA`` in mm³, in polar coordinates about the box centre:
+        6-point Gauss–Legendre along the radii and the trapezoidal rule over
+        the angles, on every k-th radius so that about 120 remain (all of them
+        up to 239 radii); the centre thickness and the prism wedge, a constant
+        and a linear function, are integrated over all the given sectors
+        exactly (area ½ Σ r² Δθ, first moments ⅓ Σ r³ (cos θ, sin θ) Δθ).
+
+    Raises
+    ------
+    LensNotMakeable
+        A surface does not reach part of the outline.
 
     Notes
     -----
     Between two given radii the outline is taken as the arc of the sector each
     radius stands for (area ½ Σ r² Δθ), which differs from the polygon through
-    the points by under 0.2 % with 72 radii.
+    the points by under 0.2 % with 72 radii. Against 16 radial nodes on every
+    one of 360 radii, the sampled rule moves the weight by under 0.05 % for
+    powers to ±15 D (a milligram or less for usual lenses): sags vary
+    smoothly, and the sampled angles only miss the outline's fine detail in
+    the sag part; along a radius, 6 nodes leave a relative error of about
+    1e-10 for spectacle powers.
 
     References
     ----------
     Jalie, *The Principles of Ophthalmic Lenses* (weight = volume × density);
-    Gauss–Legendre quadrature as in any numerical-analysis text.
+    Gauss–Legendre quadrature and the trapezoidal rule as in any
+    numerical-analysis text.
 
     Examples
     --------
@@ -309,20 +773,12 @@ def lens_volume_mm3(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float,
     >>> round(volume / (math.pi * 25.0 ** 2 * 2.0), 9)
     1.0
     """
-    radii = np.asarray(radii_mm, dtype=float)
-    step = 2.0 * math.pi / radii.size
-    angles = np.arange(radii.size) * step
-    along = radii[:, None] * _RADIAL_NODES[None, :]
-    x = along * np.cos(angles)[:, None]
-    if eye == "left":
-        x = -x
-    y = along * np.sin(angles)[:, None]
-    points = np.column_stack((x.ravel() - centre_mm[0], y.ravel() - centre_mm[1]))
-    thickness = thickness_mm(points, shape, center_thickness_mm).reshape(along.shape)
-    if np.isnan(thickness).any():
-        raise LensNotMakeable("a surface of this lens does not reach the outline: its curve is steeper than the lens is wide")
-    area_weights = step * (radii ** 2)[:, None] * (_RADIAL_NODES * _RADIAL_WEIGHTS)[None, :]
-    return float(np.sum(thickness * area_weights))
+    grid = outline_grid(radii_mm)
+    count = grid.radii.size
+    x, y = _about_centre(grid, eye, centre_mm)
+    x_nodes, y_nodes = x[count:], y[count:]
+    relief = _relief_of(_profile(x_nodes, y_nodes, shape, strict=True), center_thickness_mm, strict=True)
+    return _volume_from(relief, grid, eye, centre_mm, shape, center_thickness_mm, x_nodes, y_nodes)
 
 
 def lens_weight_g(volume_mm3: float, density_g_cm3: float) -> float:

@@ -177,11 +177,11 @@ def principal_meridian_changes(before: PowerMatrix, after: PowerMatrix) -> tuple
     larger, smaller, direction = principal_powers(before)
     if larger - smaller < 1e-9:
         direction = principal_powers(after)[2]
-    changes = []
-    for phi in (direction, (direction + 90.0) % 180.0):
-        was, now = meridian_power(before, phi), meridian_power(after, phi)
-        changes.append(MeridianChange(phi, was, now, now - was, meridian_tolerance(was)))
-    return changes[0], changes[1]
+    other = (direction + 90.0) % 180.0
+    was, now = meridian_power(before, direction), meridian_power(after, direction)
+    first = MeridianChange(direction, was, now, now - was, meridian_tolerance(was))
+    was, now = meridian_power(before, other), meridian_power(after, other)
+    return first, MeridianChange(other, was, now, now - was, meridian_tolerance(was))
 
 
 def axis_shift_deg(before_axis: float, after_axis: float) -> float:
