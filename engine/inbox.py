@@ -43,7 +43,7 @@ from engine.audit import AUDIT_NAME, AuditError, AuditLog, canonical, iter_recor
 from engine.config import CONFIG_NAME, TEMPLATE, LabConfig
 from engine.fsio import (
     NotRegular, fsync_dir, claim_key, claim_tag, entry_kind, free_name, open_regular, printable, read_exactly,
-    remove_temp_leftovers, write_durably,
+    make_durable, remove_temp_leftovers, write_durably, write_unsynced,
 )
 from engine.host import Host
 from engine.intake import OrderRejected, read_order
@@ -244,6 +244,7 @@ class Lab:
         self._recorded: dict[str, _Recorded] = {}
         self._batch: list[_Pending] = []  # processed, waiting for commit()
         self._unsynced_folders: set[str] = set()
+        self._unpublished: list[tuple[str, str]] = []  # (temp, result) written, not yet durable and renamed
         self._watching: dict[str, _Seen] = {}
         self._fault = _fault_from_environment()
         self._fault_count = 0
@@ -486,7 +487,10 @@ class Lab:
             raise ValueError(f"order id {order_id!r} cannot name a file")
         data = orjson.dumps(result, option=_RESULT_JSON) + b"\n"
         target = f"{self._outbox}/{order_id}.json"
-        self._write("publish", target, data)
+        try:
+            self._unpublished.append((write_unsynced(target, data), target))  # made durable by commit()
+        except OSError as exc:
+            raise OutputBlocked("publish", target, exc, claimed=True) from exc
         destination = f"archive/{free_name(self.archive, name, claim_tag(claim))}"
         events = [received]
         events += [{"event": "change", "order_id": order_id, **change} for change in result["changes"]]
@@ -567,14 +571,17 @@ class Lab:
     def commit(self) -> list[Processed]:
         """Make the orders processed since the last commit final: group commit.
 
-        In this order: fsync the folders their output files were renamed into;
-        append all their audit records in one write and fsync it; then move
-        each input out of ``work/``. Until the audit fsync returns, every one
-        of these inputs is still in ``work/``, so a crash at any instant leaves
-        each order either recorded (only the move is left) or redone from its
-        input, deterministically, over the same output name. That is the same
-        guarantee as one order at a time, with one folder fsync and one audit
-        fsync per batch instead of per order.
+        In this order: make the batch's result files (written under temp
+        names) durable with one flush of the file system; rename each to its
+        ``outbox/<order_id>.json``; fsync the folders the output files were
+        renamed into; append all the batch's audit records in one write and
+        fsync it; then move each input out of ``work/``. A result is never
+        renamed before its bytes are on disk, and until the audit fsync returns
+        every input of the batch is still in ``work/``, so a crash at any
+        instant leaves each order either recorded (only the move is left) or
+        redone from its input, deterministically, over the same output name.
+        That is the guarantee of one order at a time, with one flush, one
+        folder fsync and one audit fsync per batch instead of per order.
 
         Returns the orders now final. Raises :class:`OutputBlocked` when a step
         fails; what is not final stays queued, and the next call resumes it.
@@ -582,6 +589,21 @@ class Lab:
         batch = self._batch
         if not batch:
             return []
+        if self._unpublished:
+            temps = [temp for temp, _ in self._unpublished]
+            try:
+                make_durable(self._outbox, temps)
+            except OSError as exc:
+                raise OutputBlocked("publish", self._outbox, exc, claimed=True) from exc
+            while self._unpublished:
+                temp, target = self._unpublished[0]
+                try:
+                    os.replace(temp, target)
+                except OSError as exc:
+                    raise OutputBlocked("publish", target, exc, claimed=True) from exc
+                self._unpublished.pop(0)
+                self._unsynced_folders.add(self._outbox)
+                self._reached("published")
         while self._unsynced_folders:
             folder = next(iter(self._unsynced_folders))
             try:
