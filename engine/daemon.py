@@ -21,6 +21,7 @@ one-line summary and exits.
 from __future__ import annotations
 
 import errno
+import gc
 import heapq
 import importlib
 import json
@@ -292,6 +293,9 @@ class Daemon:
     # -- start and stop ----------------------------------------------------------
 
     def run(self) -> int:
+        # What start-up made (the host, plugins, models) lives as long as the process: keep it out of
+        # the garbage collector's full passes, which otherwise rescan it over and over in a long backlog.
+        gc.freeze()
         # Bound once: a logger proxy would bind itself again on every line.
         self.log = configure_logging(sys.stderr if self.once else sys.stdout).bind()
         try:

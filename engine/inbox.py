@@ -53,8 +53,9 @@ from engine.pipeline import Pipeline, StageFailure
 FOLDERS = ("inbox", "outbox", "rejected", "archive", "work", "held")
 ERRORS_SUFFIX = ".errors.json"
 HELD_SUFFIX = ".held.json"
-#: Results are written indented for a person to read; orjson does that at a fraction of json's cost.
-_RESULT_JSON = orjson.OPT_INDENT_2 | orjson.OPT_SERIALIZE_NUMPY
+#: Results are written compact (a person reads them through `lenslane explain` or any JSON viewer):
+#: an order's result is some 20 kB, and every byte is written and flushed once per order.
+_RESULT_JSON = orjson.OPT_SERIALIZE_NUMPY
 FINAL_EVENTS = ("published", "rejected", "held", "skipped")
 
 #: Tests only: ``LENSLANE_FAULT_AFTER=<step>[:<n>]`` ends the process abruptly right after the

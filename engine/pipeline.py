@@ -143,7 +143,8 @@ class Pipeline:
             "reason": change.reason,
             "method": change.method,
             "source": change.source,
-            "inputs": present(inputs if type(inputs) is dict else dict(inputs)),
+            # Inputs are kept at full precision: they are what the method computed with.
+            "inputs": copy_value(inputs if type(inputs) is dict else dict(inputs)),
         }
 
 

@@ -260,46 +260,8 @@ def _eye_geometry(view, eye, params, outline, lens: _Prepared, solved):
     blank = 2.0 * solved.farthest_mm + params.blank_allowance_mm
     weight = lens_weight_g(volume, material.density)
 
-    field = f"lenses.{eye}.geometry"
     binding_text = (f"the minimum centre thickness {minimums.center_mm:.1f} mm" if solved.binding == "centre"
                     else f"the minimum edge thickness {min_edge:.1f} mm for a {frame.mount.replace('_', ' ')} mount")
-    yield Change(f"{field}.front_curve_d", front,
-                 "The front curve is the true surface power at the lens index.",
-                 choice.method, choice.source, choice.inputs)
-    yield Change(
-        f"{field}.center_thickness_mm", solved.center_mm,
-        f"The centre thickness is the least that meets {binding_text}; the back surface is solved from "
-        "the thick-lens back vertex power per principal meridian.",
-        f"least centre thickness meeting the binding minimum ({solved.binding}); "
-        "back surface F2 = Fv − F1/(1 − (t/n)F1) per principal meridian",
-        SURFACES_SOURCE,
-        {"binding": solved.binding, "min_center_mm": minimums.center_mm, "min_edge_mm": min_edge,
-         "mount": frame.mount, "index": index, "front_curve_d": front},
-    )
-    edge_inputs = {"outline_points": grid.radii.size, "optical_centre_mm": list(centre), "index": index,
-                   "prism_amount": shape.prism_delta, "prism_base_deg": shape.prism_base_deg}
-    edge_method = ("thickness along the outline: centre − exact front sag + exact back sag "
-                   "(toric back by Euler's theorem) + prism wedge")
-    yield Change(f"{field}.edge_min_mm", solved.edge_min_mm,
-                 "The thinnest edge along the outline.", edge_method, SURFACES_SOURCE, edge_inputs)
-    yield Change(f"{field}.edge_max_mm", solved.edge_max_mm,
-                 "The thickest edge along the outline.", edge_method, SURFACES_SOURCE, edge_inputs)
-    yield Change(
-        f"{field}.blank_min_diameter_mm", blank,
-        "The smallest blank that covers the outline about the decentred optical centre.",
-        f"twice the farthest outline point from the optical centre plus {params.blank_allowance_mm:.1f} mm",
-        "Dispensing texts, e.g. Brooks & Borish, System for Ophthalmic Dispensing",
-        {"farthest_mm": (blank - params.blank_allowance_mm) / 2.0, "allowance_mm": params.blank_allowance_mm,
-         "decentration_in_mm": offset.inward_mm, "decentration_up_mm": offset.upward_mm},
-    )
-    yield Change(
-        f"{field}.weight_g", weight,
-        "The weight of the edged lens.",
-        ("thickness integrated over the outline area (polar trapezoid over about 120 of the radii × 6-point "
-         "Gauss–Legendre; centre thickness and prism wedge over every sector exactly) × density"),
-        "Jalie, The Principles of Ophthalmic Lenses (weight = volume × density)",
-        {"volume_cm3": volume / 1000.0, "density_g_cm3": material.density},
-    )
     assumptions = [
         outline_note,
         "spherical front and toric back, exact sags, both vertices at the optical centre",
@@ -307,13 +269,52 @@ def _eye_geometry(view, eye, params, outline, lens: _Prepared, solved):
         "prescribed prism as a plane wedge through the optical centre, thicker toward the base",
         *DESIGN_ASSUMPTIONS.get(order.lens.design, ()),
     ]
-    yield Change(f"{field}.optical_centre_mm", list(centre),
-                 "Where the optical centre sits about the box centre, seen from the front (x to the observer's right).",
-                 "decentration (A + DBL)/2 − PD toward the nose, height − B/2 up", "ISO 8624 (boxing system)",
-                 {"pd_mm": fit.pd_mm, "height_mm": fit.height_mm})
-    yield Change(f"{field}.assumptions", assumptions,
-                 "What the geometry estimate assumes, for a person checking it.",
-                 "statement of the geometry model", COMMON_PRACTICE, {"design": order.lens.design})
+    geometry = {
+        "front_curve_d": front, "center_thickness_mm": solved.center_mm,
+        "edge_min_mm": solved.edge_min_mm, "edge_max_mm": solved.edge_max_mm,
+        "blank_min_diameter_mm": blank, "weight_g": weight,
+        "optical_centre_mm": list(centre), "assumptions": assumptions,
+    }
+    # One record for the eye's geometry: every value in it, each value's method and source, and the
+    # inputs each used — so an auditor reads the lens in one place, and the log stays small.
+    methods = {
+        "front_curve_d": (choice.method, choice.source, choice.inputs),
+        "center_thickness_mm": (
+            f"least centre thickness meeting the binding minimum ({solved.binding}); "
+            "back surface F2 = Fv − F1/(1 − (t/n)F1) per principal meridian", SURFACES_SOURCE,
+            {"binding": solved.binding, "min_center_mm": minimums.center_mm, "min_edge_mm": min_edge,
+             "mount": frame.mount, "index": index}),
+        "edge_min_mm, edge_max_mm": (
+            "thickness along the outline: centre − exact front sag + exact back sag "
+            "(toric back by Euler's theorem) + prism wedge", SURFACES_SOURCE,
+            {"outline_points": grid.radii.size, "prism_amount": shape.prism_delta,
+             "prism_base_deg": shape.prism_base_deg}),
+        "blank_min_diameter_mm": (
+            f"twice the farthest outline point from the optical centre plus {params.blank_allowance_mm:.1f} mm",
+            "Dispensing texts, e.g. Brooks & Borish, System for Ophthalmic Dispensing",
+            {"farthest_mm": (blank - params.blank_allowance_mm) / 2.0, "allowance_mm": params.blank_allowance_mm,
+             "decentration_in_mm": offset.inward_mm, "decentration_up_mm": offset.upward_mm}),
+        "weight_g": (
+            "thickness integrated over the outline area (polar trapezoid over about 120 of the radii × 6-point "
+            "Gauss–Legendre; centre thickness and prism wedge over every sector exactly) × density",
+            "Jalie, The Principles of Ophthalmic Lenses (weight = volume × density)",
+            {"volume_cm3": volume / 1000.0, "density_g_cm3": material.density}),
+        "optical_centre_mm": (
+            "decentration (A + DBL)/2 − PD toward the nose, height − B/2 up", "ISO 8624 (boxing system)",
+            {"pd_mm": fit.pd_mm, "height_mm": fit.height_mm}),
+        "assumptions": ("statement of the geometry model", COMMON_PRACTICE, {"design": order.lens.design}),
+    }
+    sources = list(dict.fromkeys(source for _, source, _ in methods.values()))
+    yield Change(
+        f"lenses.{eye}.geometry", geometry,
+        f"The lens for this frame: front curve {front:.2f} D, centre thickness {solved.center_mm:.1f} mm "
+        f"(the least that meets {binding_text}), edge {solved.edge_min_mm:.1f}–{solved.edge_max_mm:.1f} mm, "
+        f"blank at least {blank:.1f} mm, {weight:.1f} g.",
+        "; ".join(f"{names}: {method}" for names, (method, _, _) in methods.items()),
+        "; ".join(sources),
+        {"index": index, "material": material_key,
+         **{names: inputs for names, (_, _, inputs) in methods.items()}},
+    )
 
 
 def run(view, params: GeometryParams):
