@@ -40,6 +40,7 @@ from engine.inbox import (
     Interrupted, Lab, OrderTimeLimit, OutputBlocked, Processed, StageWontStop, Wait, is_order_name,
 )
 from engine.log import configure_logging
+from engine.prefetch import Prefetcher
 
 EXIT_OK = 0
 EXIT_OBSERVER_FAILED = 1
@@ -307,10 +308,16 @@ class Daemon:
         previous = {number: signal.signal(number, self._on_stop) for number in (signal.SIGTERM, signal.SIGINT)}
         previous[signal.SIGALRM] = signal.signal(signal.SIGALRM, self.clock.on_alarm)
         self.lab.time_limit = self.clock
+        if Prefetcher.wanted(self.lab):
+            # Forked now: before the observer's threads exist, and it closes its copy of the lock.
+            self.lab.prefetch = Prefetcher(self.lab, close_fds=(lock,))
         try:
             return self._run_locked()
         finally:
             self._stop_observer()
+            if self.lab.prefetch is not None:
+                self.lab.prefetch.close()
+                self.lab.prefetch = None
             signal.setitimer(signal.ITIMER_REAL, 0)
             for number, handler in previous.items():
                 signal.signal(number, handler)
@@ -352,7 +359,9 @@ class Daemon:
             self.log.info("stopping", signal=self.stop_signal, done=sum(self.counts.values()))
         if self.once:
             if self.stats:
-                print(json.dumps({"orders": sum(self.counts.values()), "stage_seconds": self.lab.stage_seconds}))
+                computed_ahead = self.lab.prefetch.hits if self.lab.prefetch is not None else 0
+                print(json.dumps({"orders": sum(self.counts.values()), "stage_seconds": self.lab.stage_seconds,
+                                  "computed_ahead": computed_ahead}))
             print(self._summary(), flush=True)
         return EXIT_OK
 
@@ -510,6 +519,8 @@ class Daemon:
         for name in names:
             if name not in self.left:
                 self._schedule(name, now)
+        if self.lab.prefetch is not None and len(names) > 1:
+            self.lab.prefetch.ahead([name for name in names if name not in self.left])
         self.lab.forget_missing(set(names))
 
     def _schedule(self, name: str, at: float) -> None:

@@ -184,9 +184,9 @@ def environment(extra: dict[str, str] | None = None) -> dict[str, str]:
     return env
 
 
-def run_once(lab: Path, env: dict[str, str] | None = None) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "engine.cli", "watch", str(lab), "--once"], capture_output=True,
-                          text=True, cwd=REPO, env=environment(env), timeout=WAIT_SECONDS)
+def run_once(lab: Path, env: dict[str, str] | None = None, extra_args: list[str] = ()) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "engine.cli", "watch", str(lab), "--once", *extra_args],
+                          capture_output=True, text=True, cwd=REPO, env=environment(env), timeout=WAIT_SECONDS)
 
 
 def temp_leftovers(lab: Path) -> list[str]:

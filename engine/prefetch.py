@@ -1,0 +1,185 @@
+"""Compute ahead on the second core while the engine does the file-system work of a backlog.
+
+A backlog is drained one order at a time, and each order costs the engine's
+process its chain (CPU) and its durable writes. A second process, forked from
+the engine after start-up (so it has the same plugins and config), reads the
+orders waiting in the inbox, in the order the engine will take them, runs the
+chain and hands back each result keyed by the sha256 of the input's bytes.
+When the engine reaches an order whose bytes have a result ready, it takes that
+result instead of running the chain again.
+
+Nothing about the promise changes: the helper writes no file and never claims
+an order; the engine validates, claims, checks for duplicates, publishes,
+records and archives exactly as without it. Processing is deterministic for the
+same bytes and config, so a result computed ahead is the result the engine
+would compute. Whatever the helper cannot do — a file that does not parse, a
+stage that fails or runs long, a helper that died — the engine simply does
+itself, with its own time limit and error handling.
+"""
+from __future__ import annotations
+
+import hashlib
+import multiprocessing
+import os
+import signal
+from collections import OrderedDict
+from typing import Any
+
+import orjson
+
+from engine.fsio import open_regular, read_exactly
+from engine.intake import OrderRejected, read_order
+
+#: Results kept waiting for the engine (bytes of ~20 kB each): bounds memory in any backlog.
+CACHE_LIMIT = 256
+#: Names sent to the helper in one message; it gets more when it is idle and the engine has caught up,
+#: so it never runs more than about CACHE_LIMIT orders ahead.
+CHUNK = 64
+#: Names already sent are remembered to be sent once; past this many the memory is started afresh.
+SENT_LIMIT = 8192
+_IDLE = b"idle"
+
+
+class _TimeUp(BaseException):
+    """A stage ran past the limit in the helper; the engine will run the order itself."""
+
+
+def _on_alarm(signum: int, frame: Any) -> None:
+    raise _TimeUp
+
+
+def _helper(conn, engine_end, inbox: str, max_bytes: int, limit_seconds: float, pipeline, materials,
+            close_fds: tuple[int, ...]) -> None:
+    """The helper process: compute what it is asked, send each result, exit when the engine is gone."""
+    # The engine's end of the pipe came with the fork: without closing it here, the helper would never
+    # see the engine go (a kill -9 included) and would outlive it.
+    engine_end.close()
+    for fd in close_fds:  # the lab's lock, above all: only the engine may hold it
+        try:
+            os.close(fd)
+        except OSError:
+            pass
+    signal.signal(signal.SIGINT, signal.SIG_IGN)  # the engine handles stops; SIGTERM ends the helper
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    signal.signal(signal.SIGALRM, _on_alarm)
+    while True:
+        try:
+            names = conn.recv()
+        except (EOFError, OSError):
+            return
+        for name in names:
+            try:
+                fd, opened = open_regular(f"{inbox}/{name}")
+            except Exception:  # taken by the engine meanwhile, or not a plain file: the engine judges it
+                continue
+            try:
+                if opened.st_size > max_bytes:
+                    continue
+                raw = read_exactly(fd, opened.st_size)
+            except OSError:
+                continue
+            finally:
+                os.close(fd)
+            try:
+                order, parsed = read_order(raw, materials)
+            except OrderRejected:
+                continue
+            signal.setitimer(signal.ITIMER_REAL, limit_seconds)
+            try:
+                outcome = pipeline.run(order, parsed)
+            except BaseException:  # a failing or hanging stage: the engine will meet it itself
+                continue
+            finally:
+                signal.setitimer(signal.ITIMER_REAL, 0)
+            try:
+                conn.send((hashlib.sha256(raw).hexdigest(), orjson.dumps(outcome.result), outcome.timings))
+            except (OSError, ValueError):
+                return  # the engine is gone
+        try:
+            conn.send(_IDLE)
+        except (OSError, ValueError):
+            return
+
+
+class Prefetcher:
+    """The engine's side: send names ahead, take results by the sha256 of an input's bytes."""
+
+    def __init__(self, lab, close_fds: tuple[int, ...] = ()):
+        context = multiprocessing.get_context("fork")
+        self.conn, child = context.Pipe()
+        watch = lab.config.watch
+        self.process = context.Process(
+            target=_helper, name="lenslane-prefetch", daemon=True,
+            args=(child, self.conn, os.fspath(lab.inbox), watch.max_order_bytes, watch.order_time_limit_seconds,
+                  lab.pipeline, lab.host.settings.materials, close_fds))
+        self.process.start()
+        child.close()
+        self.ready: OrderedDict[str, tuple[bytes, dict[str, float]]] = OrderedDict()
+        self.waiting: list[str] = []  # names not yet sent
+        self.sent: set[str] = set()
+        self.busy = False
+        self.hits = 0
+
+    @staticmethod
+    def wanted(lab) -> bool:
+        """Computing ahead is exact only when nothing observes the chain's calls in this process."""
+        host = lab.host
+        return (not host.hook.lenslane_result_ready.get_hookimpls()
+                and not host.config.engine.trace_hooks and (os.cpu_count() or 1) > 1)
+
+    def ahead(self, names: list[str]) -> None:
+        """The names the engine will take next, in its order; they replace any not yet sent."""
+        if len(self.sent) > SENT_LIMIT:
+            self.sent.clear()
+        self.waiting = [name for name in names if name not in self.sent]
+        self._feed()
+
+    def take(self, raw_sha256: str) -> tuple[dict[str, Any], dict[str, float]] | None:
+        """The result computed ahead for these bytes, or None (the engine then runs the chain)."""
+        self._collect()
+        found = self.ready.pop(raw_sha256, None)
+        if found is None:
+            return None
+        self.hits += 1
+        return orjson.loads(found[0]), found[1]
+
+    def _collect(self) -> None:
+        try:
+            while self.conn.poll():
+                message = self.conn.recv()
+                if message == _IDLE:
+                    self.busy = False
+                    continue
+                sha256, data, timings = message
+                self.ready[sha256] = (data, timings)
+                if len(self.ready) > CACHE_LIMIT:
+                    self.ready.popitem(last=False)
+        except (EOFError, OSError):
+            self.busy = True  # the helper is gone: send nothing more
+            self.waiting = []
+        self._feed()
+
+    def _feed(self) -> None:
+        # One message at a time, and only to an idle helper: neither side ever blocks on a full pipe.
+        if self.busy or not self.waiting or len(self.ready) > CACHE_LIMIT - 2 * CHUNK:
+            return
+        if not self.process.is_alive():
+            self.waiting = []
+            return
+        chunk, self.waiting = self.waiting[:CHUNK], self.waiting[CHUNK:]
+        self.sent.update(chunk)
+        try:
+            self.conn.send(chunk)
+            self.busy = True
+        except (OSError, ValueError):
+            self.waiting = []
+
+    def close(self) -> None:
+        try:
+            self.conn.close()
+        except OSError:
+            pass
+        self.process.join(timeout=1.0)
+        if self.process.is_alive():
+            self.process.terminate()
+            self.process.join(timeout=1.0)
