@@ -27,6 +27,7 @@ test: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python tests/benchmarks/bench_drain.py
+	$(BIN)/python tests/benchmarks/bench_latency.py
 
 clean:
 	rm -rf $(VENV) $(LAB) .pytest_cache
