@@ -29,7 +29,7 @@ from typing import Any, Iterable, Iterator
 
 import orjson
 
-from engine.fsio import fsync_dir
+from engine.fsio import fsync_dir, write_all
 
 AUDIT_NAME = "audit.jsonl"
 GENESIS = "0" * 64
@@ -269,9 +269,7 @@ class AuditLog:
         try:
             fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT | os.O_CLOEXEC, 0o644)
             try:
-                view = memoryview(data)
-                while view:
-                    view = view[os.write(fd, view):]
+                write_all(fd, data)
                 os.fsync(fd)
             finally:
                 os.close(fd)

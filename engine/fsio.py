@@ -60,6 +60,30 @@ def _load_syncfs():
 _syncfs = _load_syncfs()
 
 
+def write_all(fd: int, data: bytes) -> None:
+    """Write every byte of ``data`` to ``fd`` (``os.write`` may write less than it is given)."""
+    view = memoryview(data)
+    while view:
+        view = view[os.write(fd, view):]
+
+
+def _write_temp(path: str | Path, data: bytes, sync: bool) -> str:
+    folder, name = os.path.split(os.fspath(path))
+    temp = os.path.join(folder, f".{name}{TEMP_SUFFIX}")
+    try:
+        fd = os.open(temp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_CLOEXEC, 0o644)
+        try:
+            write_all(fd, data)
+            if sync:
+                os.fsync(fd)
+        finally:
+            os.close(fd)
+    except OSError:
+        _remove_quietly(temp)
+        raise
+    return temp
+
+
 def write_unsynced(path: str | Path, data: bytes) -> str:
     """Write ``data`` to ``.<name>.tmp`` beside ``path`` without fsync; returns the temp path.
 
@@ -67,20 +91,7 @@ def write_unsynced(path: str | Path, data: bytes) -> str:
     the temp file to ``path``: a temp name is never published, and is removed at
     the next start if a crash comes first.
     """
-    folder, name = os.path.split(os.fspath(path))
-    temp = os.path.join(folder, f".{name}{TEMP_SUFFIX}")
-    try:
-        fd = os.open(temp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_CLOEXEC, 0o644)
-        try:
-            view = memoryview(data)
-            while view:
-                view = view[os.write(fd, view):]
-        finally:
-            os.close(fd)
-    except OSError:
-        _remove_quietly(temp)
-        raise
-    return temp
+    return _write_temp(path, data, sync=False)
 
 
 def make_durable(folder: str | Path, paths: list[str]) -> None:
@@ -120,21 +131,13 @@ def write_durably(path: str | Path, data: bytes, sync_folder: bool = True) -> No
     ``path``, and the folder is fsynced so the rename itself survives power loss.
     A failed write (disk full, no permission) removes its temp file and raises.
     """
-    folder, name = os.path.split(os.fspath(path))
-    temp = os.path.join(folder, f".{name}{TEMP_SUFFIX}")
+    temp = _write_temp(path, data, sync=True)
     try:
-        fd = os.open(temp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_CLOEXEC, 0o644)
-        try:
-            view = memoryview(data)
-            while view:
-                view = view[os.write(fd, view):]
-            os.fsync(fd)
-        finally:
-            os.close(fd)
         os.replace(temp, path)
     except OSError:
         _remove_quietly(temp)
         raise
+    folder = os.path.dirname(os.fspath(path))
     if sync_folder:
         fsync_dir(folder or ".")
 
