@@ -130,6 +130,8 @@ def _label(key: str) -> str:
 
 
 def _item_text(key: str, value: Any) -> str:
+    if isinstance(value, dict) and not {"sphere", "amount"} & value.keys():
+        return f"{_label(key)} ({inputs_text(value)})"  # the inputs of one of several methods
     if isinstance(value, dict):
         return f"{_label(key)} {value_text(key, value)}"
     if isinstance(value, list):

@@ -277,6 +277,10 @@ def _eye_geometry(view, eye, params, outline, lens: _Prepared, solved):
     }
     # One record for the eye's geometry: every value in it, each value's method and source, and the
     # inputs each used — so an auditor reads the lens in one place, and the log stays small.
+    edges = ("thickness along the outline: centre − exact front sag + exact back sag "
+             "(toric back by Euler's theorem) + prism wedge", SURFACES_SOURCE,
+             {"outline_points": grid.radii.size, "prism_amount": shape.prism_delta,
+              "prism_base_deg": shape.prism_base_deg})
     methods = {
         "front_curve_d": (choice.method, choice.source, choice.inputs),
         "center_thickness_mm": (
@@ -284,11 +288,8 @@ def _eye_geometry(view, eye, params, outline, lens: _Prepared, solved):
             "back surface F2 = Fv − F1/(1 − (t/n)F1) per principal meridian", SURFACES_SOURCE,
             {"binding": solved.binding, "min_center_mm": minimums.center_mm, "min_edge_mm": min_edge,
              "mount": frame.mount, "index": index}),
-        "edge_min_mm, edge_max_mm": (
-            "thickness along the outline: centre − exact front sag + exact back sag "
-            "(toric back by Euler's theorem) + prism wedge", SURFACES_SOURCE,
-            {"outline_points": grid.radii.size, "prism_amount": shape.prism_delta,
-             "prism_base_deg": shape.prism_base_deg}),
+        "edge_min_mm": edges,
+        "edge_max_mm": edges,
         "blank_min_diameter_mm": (
             f"twice the farthest outline point from the optical centre plus {params.blank_allowance_mm:.1f} mm",
             "Dispensing texts, e.g. Brooks & Borish, System for Ophthalmic Dispensing",
@@ -310,10 +311,10 @@ def _eye_geometry(view, eye, params, outline, lens: _Prepared, solved):
         f"The lens for this frame: front curve {front:.2f} D, centre thickness {solved.center_mm:.1f} mm "
         f"(the least that meets {binding_text}), edge {solved.edge_min_mm:.1f}–{solved.edge_max_mm:.1f} mm, "
         f"blank at least {blank:.1f} mm, {weight:.1f} g.",
-        "; ".join(f"{names}: {method}" for names, (method, _, _) in methods.items()),
+        "; ".join(f"{name}: {method}" for name, (method, _, _) in methods.items()),
         "; ".join(sources),
         {"index": index, "material": material_key,
-         **{names: inputs for names, (_, _, inputs) in methods.items()}},
+         **{name: inputs for name, (_, _, inputs) in methods.items()}},
     )
 
 
