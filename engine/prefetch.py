@@ -35,6 +35,9 @@ CACHE_LIMIT = 256
 #: Names sent to the helper in one message; it gets more when it is idle and the engine has caught up,
 #: so it never runs more than about CACHE_LIMIT orders ahead.
 CHUNK = 64
+#: The first names of a backlog are left to the engine: the helper starts this far ahead of it, so the
+#: two never work on the same order in step (the helper, with no file-system work, then stays ahead).
+LEAD = 2
 #: Names already sent are remembered to be sent once; past this many the memory is started afresh.
 SENT_LIMIT = 8192
 _IDLE = b"idle"
@@ -131,7 +134,7 @@ class Prefetcher:
         """The names the engine will take next, in its order; they replace any not yet sent."""
         if len(self.sent) > SENT_LIMIT:
             self.sent.clear()
-        self.waiting = [name for name in names if name not in self.sent]
+        self.waiting = [name for name in names if name not in self.sent][LEAD:]
         self._feed()
 
     def take(self, raw_sha256: str) -> tuple[dict[str, Any], dict[str, float]] | None:
