@@ -27,8 +27,6 @@ class _Strict(BaseModel):
     model_config = ConfigDict(strict=True, extra="forbid", frozen=True, allow_inf_nan=False)
 
 
-Dioptre = float
-Millimetre = float
 
 
 class PrismComponent(_Strict):

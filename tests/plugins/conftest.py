@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import itertools
 import os
+from pathlib import Path
 
 import pytest
 from plugin_dists import write_distribution, write_example_distribution
