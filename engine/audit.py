@@ -45,6 +45,30 @@ PERIOD_PREFIX = {"day": 10, "month": 7}
 _CANONICAL = orjson.OPT_SORT_KEYS | orjson.OPT_SERIALIZE_NUMPY
 
 
+# Placeholders for the chain fields in a pre-encoded event; the random part is drawn once per engine
+# (a helper forked from it shares it), so no order's content can ever contain it.
+_MARK = os.urandom(12).hex()
+_SEQ_MARK, _TS_MARK, _PREV_MARK = (f"\x00{name}{_MARK}" for name in ("seq", "ts", "prev"))
+_SEQ_BYTES, _TS_BYTES, _PREV_BYTES = (orjson.dumps(mark) for mark in (_SEQ_MARK, _TS_MARK, _PREV_MARK))
+
+
+@dataclass(frozen=True)
+class EncodedEvent:
+    """An event already in canonical JSON, with placeholders where the chain fields go.
+
+    Made by :func:`encode_event` (in a helper process, for instance); appending
+    it writes exactly the bytes appending the event itself would.
+    """
+
+    template: bytes
+
+
+def encode_event(event: dict[str, Any]) -> EncodedEvent:
+    if not CHAIN_FIELDS.isdisjoint(event):
+        raise ValueError(f"an audit event may not set {sorted(CHAIN_FIELDS & set(event))}")
+    return EncodedEvent(canonical({**event, "seq": _SEQ_MARK, "ts": _TS_MARK, "prev": _PREV_MARK}))
+
+
 class AuditError(Exception):
     """The audit log cannot be written safely (the engine must not archive the input)."""
 
@@ -212,8 +236,10 @@ class AuditLog:
 
     # -- appending ---------------------------------------------------------------
 
-    def append(self, events: Iterable[dict[str, Any]]) -> list[dict[str, Any]]:
+    def append(self, events: Iterable[dict[str, Any] | EncodedEvent]) -> list[dict[str, Any]]:
         """Chain, write and fsync a batch of events; returns the records as written.
+
+        An :class:`EncodedEvent`'s record is returned with its chain fields only.
 
         Raises
         ------
@@ -230,12 +256,19 @@ class AuditLog:
         ts = _utc_now()
         seq, prev = self.seq, self.prev
         records, lines = [], []
+        ts_json = orjson.dumps(ts)
         for event in events:
-            if not CHAIN_FIELDS.isdisjoint(event):
-                raise ValueError(f"an audit event may not set {sorted(CHAIN_FIELDS & set(event))}")
             seq += 1
-            record = {"seq": seq, "ts": ts, "prev": prev, **event}
-            body = canonical(record)  # what record_hash() hashes: the record without its hash
+            if type(event) is EncodedEvent:
+                # The same bytes canonical() gives for the record: only the placeholders' values differ.
+                body = (event.template.replace(_SEQ_BYTES, b"%d" % seq, 1).replace(_TS_BYTES, ts_json, 1)
+                        .replace(_PREV_BYTES, b'"%s"' % prev.encode(), 1))
+                record = {"seq": seq, "ts": ts, "prev": prev}
+            else:
+                if not CHAIN_FIELDS.isdisjoint(event):
+                    raise ValueError(f"an audit event may not set {sorted(CHAIN_FIELDS & set(event))}")
+                record = {"seq": seq, "ts": ts, "prev": prev, **event}
+                body = canonical(record)  # what record_hash() hashes: the record without its hash
             prev = record["hash"] = hashlib.sha256(body).hexdigest()
             records.append(record)
             # The hash goes last on the line; readers parse the line, so key order there is free.

@@ -39,7 +39,7 @@ from typing import Any, Callable, ContextManager
 import orjson
 
 from engine import __version__
-from engine.audit import AUDIT_NAME, AuditError, AuditLog, canonical, iter_records
+from engine.audit import AUDIT_NAME, AuditError, AuditLog, EncodedEvent, canonical, iter_records
 from engine.config import CONFIG_NAME, TEMPLATE, LabConfig
 from engine.fsio import (
     NotRegular, fsync_dir, claim_key, claim_tag, entry_kind, free_name, open_regular, printable, read_exactly,
@@ -48,7 +48,7 @@ from engine.fsio import (
 from engine.host import Host
 from engine.intake import OrderRejected, read_order
 from engine.models import ORDER_ID_RE, LensOrder
-from engine.pipeline import Outcome, Pipeline, StageFailure
+from engine.pipeline import Pipeline, StageFailure
 
 FOLDERS = ("inbox", "outbox", "rejected", "archive", "work", "held")
 ERRORS_SUFFIX = ".errors.json"
@@ -163,6 +163,8 @@ class _Examined:
     problems: list[dict[str, str]] | None = None
     maybe_incomplete: bool = False
     kind: str | None = None  # what a non-regular entry is
+    order_id: str | None = None
+    ahead: Any = None  # an engine.prefetch.Ahead: the result computed ahead for exactly these bytes
 
 
 @dataclass
@@ -192,6 +194,19 @@ class _Pending:
     recorded: _Recorded
     processed: Processed
     recorded_in_log: bool = False
+
+
+def result_bytes(result: dict[str, Any]) -> bytes:
+    """The bytes of a published result."""
+    return orjson.dumps(result, option=_RESULT_JSON) + b"\n"
+
+
+def order_events(result: dict[str, Any]) -> list[dict[str, Any]]:
+    """The audit events of a result's changes and flags, in order."""
+    order_id = result["order_id"]
+    events = [{"event": "change", "order_id": order_id, **change} for change in result["changes"]]
+    events += [{"event": "flag", "order_id": order_id, **flag} for flag in result["flags"]]
+    return events
 
 
 def _content_key(content_sha256: str | None) -> bytes | None:
@@ -397,12 +412,16 @@ class Lab:
     def examine(self, raw: bytes) -> _Examined:
         """Parse and validate the bytes of one order (no file is touched)."""
         sha256 = hashlib.sha256(raw).hexdigest()
+        ahead = self.prefetch.take(sha256) if self.prefetch is not None else None
+        if ahead is not None:  # these bytes were validated and run through this chain on the other core
+            return _Examined(len(raw), sha256, content_sha256=ahead.content_sha256,
+                             order_id=ahead.summary["order_id"], ahead=ahead)
         try:
             order, parsed = read_order(raw, self.host.settings.materials)
         except OrderRejected as exc:
             return _Examined(len(raw), sha256, problems=exc.problems, maybe_incomplete=exc.maybe_incomplete)
         content = hashlib.sha256(canonical(parsed)).hexdigest()
-        return _Examined(len(raw), sha256, order, parsed, content)
+        return _Examined(len(raw), sha256, order, parsed, content, order_id=order.order_id)
 
     def _examine_claimed(self, path: str, info: os.stat_result) -> _Examined:
         if not stat.S_ISREG(info.st_mode):
@@ -460,47 +479,55 @@ class Lab:
             received["kind"] = examined.kind
         if examined.problems is not None:
             return self._reject(name, claim, received, examined.problems, redo=redo)
-        order = examined.order
-        received["order_id"] = order.order_id
-        if order.order_id in self.published:
-            if self.published[order.order_id] == _content_key(examined.content_sha256):
+        order_id = examined.order_id
+        received["order_id"] = order_id
+        if order_id in self.published:
+            if self.published[order_id] == _content_key(examined.content_sha256):
                 return self._skip(name, claim, received, examined, redo)
             return self._hold(name, claim, received, examined, redo)
-        ahead = self.prefetch.take(examined.sha256) if self.prefetch is not None and examined.sha256 else None
+        if examined.ahead is not None:
+            ahead = examined.ahead
+            for stage, seconds in ahead.timings.items():
+                self.stage_seconds[stage] = self.stage_seconds.get(stage, 0.0) + seconds
+            return self._publish(name, claim, received, ahead.summary, examined, redo, ahead.data, ahead.events)
         try:
-            if ahead is not None:
-                outcome = Outcome(*ahead)  # the same bytes through the same chain, computed on the other core
-            else:
-                with self.time_limit():
-                    outcome = self.pipeline.run(order, examined.parsed)
+            with self.time_limit():
+                outcome = self.pipeline.run(examined.order, examined.parsed)
         except StageFailure as exc:
             problems = [{"field": f"(stage {exc.stage})", "message": exc.message}]
-            return self._reject(name, claim, received, problems, order.order_id, redo)
+            return self._reject(name, claim, received, problems, order_id, redo)
         except (OrderTimeLimit, StageWontStop) as exc:
             problems = [{"field": "(stage unknown)", "message": str(exc)}]
-            return self._reject(name, claim, received, problems, order.order_id, redo)
+            return self._reject(name, claim, received, problems, order_id, redo)
         except Exception as exc:  # e.g. a result_ready hook that raised: the order fails, the engine goes on
             problems = [{"field": "(engine)", "message": f"{type(exc).__name__}: {exc}"}]
-            return self._reject(name, claim, received, problems, order.order_id, redo)
+            return self._reject(name, claim, received, problems, order_id, redo)
         for stage, seconds in outcome.timings.items():
             self.stage_seconds[stage] = self.stage_seconds.get(stage, 0.0) + seconds
         return self._publish(name, claim, received, outcome.result, examined, redo)
 
     def _publish(self, name: str, claim: str, received: dict[str, Any], result: dict[str, Any],
-                 examined: _Examined, redo: bool) -> Processed:
+                 examined: _Examined, redo: bool, data: bytes | None = None,
+                 encoded: list[EncodedEvent] | None = None) -> Processed:
+        """Write the result under a temp name and queue the order's records for :meth:`commit`.
+
+        ``data`` and ``encoded`` are the result's bytes and its change and flag
+        events, already encoded where the result was computed ahead; ``result``
+        then needs only its ``order_id``, ``status`` and ``lenses``.
+        """
         order_id = result["order_id"]
         if not ORDER_ID_RE.match(order_id):  # validated by the contract already; never a path
             raise ValueError(f"order id {order_id!r} cannot name a file")
-        data = orjson.dumps(result, option=_RESULT_JSON) + b"\n"
+        if data is None:
+            data = result_bytes(result)
         target = f"{self._outbox}/{order_id}.json"
         try:
             self._unpublished.append((write_unsynced(target, data), target))  # made durable by commit()
         except OSError as exc:
             raise OutputBlocked("publish", target, exc, claimed=True) from exc
         destination = f"archive/{free_name(self.archive, name, claim_tag(claim))}"
-        events = [received]
-        events += [{"event": "change", "order_id": order_id, **change} for change in result["changes"]]
-        events += [{"event": "flag", "order_id": order_id, **flag} for flag in result["flags"]]
+        events: list[Any] = [received]
+        events += encoded if encoded is not None else order_events(result)
         events.append({"event": "published", "order_id": order_id, "file": printable(name),
                        "status": result["status"], "result": f"outbox/{order_id}.json",
                        "result_sha256": hashlib.sha256(data).hexdigest(), "lenses": result["lenses"],
@@ -523,7 +550,7 @@ class Lab:
                            Processed(printable(name), "rejected", order_id, reasons=problems, redo=redo))
 
     def _hold(self, name: str, claim: str, received: dict[str, Any], examined: _Examined, redo: bool) -> Processed:
-        order_id = examined.order.order_id
+        order_id = examined.order_id
         target = free_name(self.held, name, claim_tag(claim), HELD_SUFFIX)
         destination = f"held/{target}"
         reasons = [{"field": "order_id", "message": (
@@ -540,7 +567,7 @@ class Lab:
                            Processed(printable(name), "held", order_id, reasons=reasons, redo=redo))
 
     def _skip(self, name: str, claim: str, received: dict[str, Any], examined: _Examined, redo: bool) -> Processed:
-        order_id = examined.order.order_id
+        order_id = examined.order_id
         destination = f"archive/{free_name(self.archive, name, claim_tag(claim))}"
         return self._defer(name, claim, [received, {
             "event": "skipped", "order_id": order_id, "file": printable(name),

@@ -15,6 +15,11 @@ same bytes and config, so a result computed ahead is the result the engine
 would compute. Whatever the helper cannot do — a file that does not parse, a
 stage that fails or runs long, a helper that died — the engine simply does
 itself, with its own time limit and error handling.
+
+The helper also validates the order, encodes the result and encodes its
+change and flag events for the audit log (:class:`engine.audit.EncodedEvent`,
+the very bytes the engine would write): the engine is left with the chaining,
+the hashing and the file-system work.
 """
 from __future__ import annotations
 
@@ -23,11 +28,12 @@ import multiprocessing
 import os
 import signal
 from collections import OrderedDict
+from dataclasses import dataclass
 from typing import Any
 
-import orjson
-
+from engine.audit import EncodedEvent, canonical, encode_event
 from engine.fsio import open_regular, read_exactly
+from engine.inbox import order_events, result_bytes
 from engine.intake import OrderRejected, read_order
 
 #: Results kept waiting for the engine (bytes of ~20 kB each): bounds memory in any backlog.
@@ -41,6 +47,17 @@ LEAD = 2
 #: Names already sent are remembered to be sent once; past this many the memory is started afresh.
 SENT_LIMIT = 8192
 _IDLE = b"idle"
+
+
+@dataclass(frozen=True)
+class Ahead:
+    """What the helper hands over for one input: all the engine still needs to publish and record it."""
+
+    data: bytes  # the result, exactly as published
+    summary: dict[str, Any]  # its order_id, status and lenses
+    timings: dict[str, float]
+    content_sha256: str  # of the parsed order, as the engine's duplicate check takes it
+    events: list[EncodedEvent]  # its change and flag events, encoded for the audit log
 
 
 class _TimeUp(BaseException):
@@ -94,8 +111,13 @@ def _helper(conn, engine_end, inbox: str, max_bytes: int, limit_seconds: float, 
                 continue
             finally:
                 signal.setitimer(signal.ITIMER_REAL, 0)
+            result = outcome.result
+            ahead = Ahead(result_bytes(result),
+                          {"order_id": result["order_id"], "status": result["status"], "lenses": result["lenses"]},
+                          outcome.timings, hashlib.sha256(canonical(parsed)).hexdigest(),
+                          [encode_event(event) for event in order_events(result)])
             try:
-                conn.send((hashlib.sha256(raw).hexdigest(), orjson.dumps(outcome.result), outcome.timings))
+                conn.send((hashlib.sha256(raw).hexdigest(), ahead))
             except (OSError, ValueError):
                 return  # the engine is gone
         try:
@@ -117,7 +139,7 @@ class Prefetcher:
                   lab.pipeline, lab.host.settings.materials, close_fds))
         self.process.start()
         child.close()
-        self.ready: OrderedDict[str, tuple[bytes, dict[str, float]]] = OrderedDict()
+        self.ready: OrderedDict[str, Ahead] = OrderedDict()
         self.waiting: list[str] = []  # names not yet sent
         self.sent: set[str] = set()
         self.busy = False
@@ -137,14 +159,13 @@ class Prefetcher:
         self.waiting = [name for name in names if name not in self.sent][LEAD:]
         self._feed()
 
-    def take(self, raw_sha256: str) -> tuple[dict[str, Any], dict[str, float]] | None:
-        """The result computed ahead for these bytes, or None (the engine then runs the chain)."""
+    def take(self, raw_sha256: str) -> Ahead | None:
+        """What was computed ahead for these bytes, or None (the engine then validates and runs the chain)."""
         self._collect()
         found = self.ready.pop(raw_sha256, None)
-        if found is None:
-            return None
-        self.hits += 1
-        return orjson.loads(found[0]), found[1]
+        if found is not None:
+            self.hits += 1
+        return found
 
     def _collect(self) -> None:
         try:
@@ -153,8 +174,8 @@ class Prefetcher:
                 if message == _IDLE:
                     self.busy = False
                     continue
-                sha256, data, timings = message
-                self.ready[sha256] = (data, timings)
+                sha256, ahead = message
+                self.ready[sha256] = ahead
                 if len(self.ready) > CACHE_LIMIT:
                     self.ready.popitem(last=False)
         except (EOFError, OSError):
