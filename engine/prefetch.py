@@ -44,6 +44,9 @@ CHUNK = 64
 #: The first names of a backlog are left to the engine: the helper starts this far ahead of it, so the
 #: two never work on the same order in step (the helper, with no file-system work, then stays ahead).
 LEAD = 2
+#: One order in this many is left to the engine itself: with the helper validating, running the chain
+#: and encoding, the two processes then carry about equal shares of a backlog's work.
+ENGINE_SHARE = 5
 #: Names already sent are remembered to be sent once; past this many the memory is started afresh.
 SENT_LIMIT = 8192
 _IDLE = b"idle"
@@ -156,7 +159,8 @@ class Prefetcher:
         """The names the engine will take next, in its order; they replace any not yet sent."""
         if len(self.sent) > SENT_LIMIT:
             self.sent.clear()
-        self.waiting = [name for name in names if name not in self.sent][LEAD:]
+        unsent = [name for name in names if name not in self.sent][LEAD:]
+        self.waiting = [name for index, name in enumerate(unsent) if index % ENGINE_SHARE != ENGINE_SHARE - 1]
         self._feed()
 
     def take(self, raw_sha256: str) -> Ahead | None:
