@@ -83,4 +83,6 @@ def resultant_prism(components: Iterable[tuple[float, str | float]], eye: str) -
     amount = math.hypot(horizontal, vertical)
     if amount < 1e-12:
         return Prism(0.0, 0.0)
-    return Prism(amount, math.degrees(math.atan2(vertical, horizontal)) % 360.0)
+    base = math.degrees(math.atan2(vertical, horizontal)) % 360.0
+    # A direction a hair below 0° wraps to 360.0 in floating point: that is 0°.
+    return Prism(amount, base if base < 360.0 else 0.0)
