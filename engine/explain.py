@@ -49,8 +49,11 @@ def number(value: float, decimals: int = 2, sign: bool = False) -> str:
     return "+" + text if sign else text
 
 
-def power_text(power: dict[str, Any]) -> str:
+def power_text(power: dict[str, Any], add: bool = True) -> str:
     """A sphero-cylinder as written on a prescription: ``−4.25 −1.25 × 170 add +2.25``.
+
+    Full-precision values are written as the result publishes them: 0.01 D and
+    a whole degree 1–180. ``add=False`` leaves out the add.
 
     Examples
     --------
@@ -58,15 +61,18 @@ def power_text(power: dict[str, Any]) -> str:
     '−4.20 −1.12 × 173'
     >>> power_text({"sphere": 0.0, "cylinder": -0.5, "axis": 90, "add": 2.0})
     'plano −0.50 × 90 add +2.00'
+    >>> power_text({"sphere": -4.2013, "cylinder": -1.1249, "axis": 179.6, "add": 2.0}, add=False)
+    '−4.20 −1.12 × 180'
     """
     sphere = power.get("sphere", 0.0)
     cylinder = power.get("cylinder") or 0.0
     text = "plano" if round(sphere, 2) == 0 else number(sphere, sign=True)
     if round(cylinder, 2) != 0:
-        text += f" {number(cylinder, sign=True)} × {power.get('axis')}"
+        axis = round(power.get("axis") or 180) % 180 or 180
+        text += f" {number(cylinder, sign=True)} × {axis}"
     elif text != "plano":
         text += " DS"
-    if power.get("add") is not None:
+    if add and power.get("add") is not None:
         text += f" add {number(power['add'], sign=True)}"
     return text
 

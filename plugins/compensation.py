@@ -13,6 +13,7 @@ from typing import Annotated, Any, Literal, Mapping, NamedTuple
 from pydantic import BaseModel, ConfigDict, Field
 
 from engine import Change, Flag
+from engine.explain import number, power_text
 from plugins.optics.power import PowerMatrix, power_matrix, sphero_cylinder
 from plugins.optics.tolerance import MeridianChange, axis_shift_deg, axis_tolerance, principal_meridian_changes
 
@@ -60,25 +61,9 @@ def power_dict(matrix: PowerMatrix, before: Mapping[str, Any], form: str) -> dic
     return power
 
 
-def dioptres(value: float) -> str:
-    """``−4.25``, ``+0.50``: two decimals, a true minus sign, no negative zero."""
-    rounded = round(value, 2) + 0.0
-    return f"{rounded:+.2f}".replace("-", "−")
-
-
 def trade_notation(power: Mapping[str, Any]) -> str:
-    """A power as written on an order: ``−4.25 −1.25 × 170``, ``+2.00 DS``, ``plano −0.50 × 90``.
-
-    Rounded as the result publishes it: 0.01 D and a whole degree 1–180.
-    """
-    sphere = round(power["sphere"], 2) + 0.0
-    cylinder = round(power.get("cylinder", 0.0), 2) + 0.0
-    # As dioptres() writes them: the values are rounded already.
-    written = "plano" if sphere == 0.0 else f"{sphere:+.2f}".replace("-", "−")
-    if cylinder == 0.0:
-        return written if sphere == 0.0 else f"{written} DS"
-    axis = round(power["axis"]) % 180 or 180
-    return f"{written} {cylinder:+.2f} × {axis}".replace("-", "−")
+    """A surfacing power as written on an order, without its add: ``−4.25 −1.25 × 170``."""
+    return power_text(power, add=False)
 
 
 # --------------------------------------------------------------------------
@@ -136,8 +121,8 @@ def assessment_values(assessment: Assessment, params: CompensationParams) -> dic
 
 def _describe(assessment: Assessment, params: CompensationParams) -> str:
     first, second = assessment.meridians
-    text = (f"the {first.direction_deg:.0f}° meridian by {dioptres(first.change)} D and the "
-            f"{second.direction_deg:.0f}° meridian by {dioptres(second.change)} D "
+    text = (f"the {first.direction_deg:.0f}° meridian by {number(first.change, sign=True)} D and the "
+            f"{second.direction_deg:.0f}° meridian by {number(second.change, sign=True)} D "
             f"(tolerance ±{params.tolerance_scale * first.tolerance:.2f} / "
             f"±{params.tolerance_scale * second.tolerance:.2f} D)")
     if assessment.axis_shift_deg is not None and round(assessment.axis_shift_deg, 1) != 0.0:
