@@ -51,6 +51,12 @@ _UNKNOWN = object()
 _ATOMS = frozenset((str, int, bool, type(None)))
 
 
+def _table(key: str) -> dict[float, Any] | None:
+    """The rounding table of a key name (None: its numbers are kept), learnt on first sight."""
+    table = _BY_KEY.get(key, _UNKNOWN)
+    return _table_for(key) if table is _UNKNOWN else table
+
+
 def _table_for(key: str) -> dict[float, Any] | None:
     rule = _rule_for(key)
     table = None if rule is _KEEP else _TABLES.setdefault(rule, {})
@@ -68,9 +74,7 @@ def _round_into(table: dict[float, Any], key: str, value: float) -> Any:
 
 
 def _round_key(key: str, value: float) -> Any:
-    table = _BY_KEY.get(key, _UNKNOWN)
-    if table is _UNKNOWN:
-        table = _table_for(key)
+    table = _table(key)
     if table is None:
         return value
     shown = table.get(value)
@@ -124,9 +128,7 @@ def _present_dict(value: dict) -> dict:
 
 
 def _present_list(value: list, key: str) -> list:
-    table = _BY_KEY.get(key, _UNKNOWN)
-    if table is _UNKNOWN:
-        table = _table_for(key)
+    table = _table(key)
     if table is None:
         return [v if type(v) is float or type(v) is str else present(v, key) for v in value]
     return [_round_key(key, v) if type(v) is float else present(v, key) for v in value]
