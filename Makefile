@@ -7,25 +7,31 @@ BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 LAB    ?= lab
 
-.PHONY: run test bench install clean
+.PHONY: run test bench install bytecode clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
 	$(BIN)/python -m pip install --quiet -e '.[test]'
+	$(MAKE) --no-print-directory bytecode
 	touch $(STAMP)
+
+# Compiled once here, so a start-up never compiles the engine's modules again,
+# even where PYTHONDONTWRITEBYTECODE keeps Python from writing them itself.
+bytecode:
+	$(BIN)/python -m compileall -q engine plugins
 
 install: $(STAMP)
 
-run: $(STAMP)
+run: $(STAMP) bytecode
 	$(BIN)/lenslane init $(LAB)
 	cp -n inbox_samples/*.json $(LAB)/inbox/ 2>/dev/null || true
 	$(BIN)/lenslane watch $(LAB)
 
-test: $(STAMP)
+test: $(STAMP) bytecode
 	$(BIN)/python -m pytest -q
 
-bench: $(STAMP)
+bench: $(STAMP) bytecode
 	$(BIN)/python tests/benchmarks/bench_drain.py
 	$(BIN)/python tests/benchmarks/bench_latency.py
 
