@@ -60,7 +60,10 @@ class Pipeline:
         result unchanged.
         """
         eyes = [e for e in ("right", "left") if getattr(order.rx, e) is not None]
+        # ``state`` holds the lenses at full precision, ``shown`` the same tree rounded (present()), kept in
+        # step by _apply: each value is rounded once, when it is set, for its record and for the result.
         state: dict[str, Any] = {"lenses": {eye: {} for eye in eyes}}
+        shown: dict[str, Any] = {eye: {} for eye in eyes}
         changes: list[dict[str, Any]] = []
         flags: list[dict[str, Any]] = []
         timings: dict[str, float] = {}
@@ -80,7 +83,7 @@ class Pipeline:
                 raise StageFailure(stage.name, f"{type(exc).__name__}: {exc}") from exc
             for proposal in proposals or ():
                 if type(proposal) is Change or isinstance(proposal, Change):
-                    changes.append(self._apply(stage, proposal, state, eyes, writable))
+                    changes.append(self._apply(stage, proposal, state, shown, eyes, writable))
                 elif isinstance(proposal, Flag):
                     flags.append(_flag_record(stage.name, proposal, eyes))
                 else:
@@ -93,7 +96,7 @@ class Pipeline:
             "order_id": order.order_id,
             "status": status,
             "order": received,
-            "lenses": present(state["lenses"]),
+            "lenses": shown,
             "flags": flags,
             "changes": changes,
             "engine": self.engine_info,
@@ -104,9 +107,9 @@ class Pipeline:
         return Outcome(result, timings)
 
     @staticmethod
-    def _apply(stage, change: Change, state: dict[str, Any], eyes: list[str],
+    def _apply(stage, change: Change, state: dict[str, Any], shown: dict[str, Any], eyes: list[str],
                writable: dict[str, tuple[str, ...] | None] | None = None) -> dict[str, Any]:
-        """Apply one change to ``state`` and return its record.
+        """Apply one change to ``state`` and its rounded twin ``shown``; return its record.
 
         ``writable`` remembers, for this stage, each field it wrote as its split
         path (None: it may not write it).
@@ -124,22 +127,26 @@ class Pipeline:
         if parts[0] != "lenses" or len(parts) < 3 or parts[1] not in eyes:
             raise StageFailure(stage.name, f"{path!r} is not a field of an eye being made ({', '.join(eyes)})")
         node = state["lenses"][parts[1]]  # made for every eye at the start; no change can replace it
+        shown = shown[parts[1]]
         for part in parts[2:-1]:
             node = node.setdefault(part, {})
             if type(node) is not dict and not isinstance(node, dict):
                 raise StageFailure(stage.name, f"{path!r} goes through a value that is not an object")
+            # A rounded object may be an earlier record's "after": replaced by a copy, never changed.
+            shown[part] = shown = dict(shown.get(part, {}))
         key = parts[-1]
-        before = node.get(key)
         value = change.value
         if type(value) not in _ATOMS:
             value = copy_value(value)
         node[key] = value
+        before = shown.get(key)
+        shown[key] = after = present(value, key)
         inputs = change.inputs
         return {
             "stage": stage.name,
             "field": path,
-            "before": present(before, key),
-            "after": present(value, key),
+            "before": before,
+            "after": after,
             "reason": change.reason,
             "method": change.method,
             "source": change.source,

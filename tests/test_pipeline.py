@@ -61,6 +61,26 @@ def test_a_change_records_the_value_before_and_after(order_dict):
     assert last["after"] == "checked"
 
 
+def test_a_later_write_inside_an_object_leaves_the_earlier_record_as_it_was(order_dict):
+    # Each record's "after" is the value as set then, even when a later stage sets one key inside it;
+    # the result's lenses hold both, rounded to the contract's precision (lengths to 0.1 mm).
+    class Whole(NoteStage):
+        def run(self, view, params):
+            yield Change("lenses.right.lab", {"seal_mm": 1.04, "tag": "a"}, "Sets the lab object.", "test",
+                         "Common practice")
+
+    class Inner(NoteStage):
+        def run(self, view, params):
+            yield Change("lenses.right.lab.seal_mm", 2.26, "Sets one key in it.", "test", "Common practice")
+
+    host = host_with(chain_with("whole", "inner"), whole=Whole(name="whole"), inner=Inner(name="inner"))
+    result = run_order(host, order_dict)
+    whole, inner = [c for c in result["changes"] if c["field"].startswith("lenses.right.lab")]
+    assert whole["after"] == {"seal_mm": 1.0, "tag": "a"}
+    assert inner["before"] == 1.0 and inner["after"] == 2.3
+    assert result["lenses"]["right"]["lab"] == {"seal_mm": 2.3, "tag": "a"}
+
+
 def test_a_stage_that_raises_fails_the_order_with_its_name(order_dict):
     class Broken:
         @hookimpl
