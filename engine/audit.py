@@ -25,7 +25,7 @@ import re
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Iterable, Iterator
+from typing import Any, Iterable, Iterator, NamedTuple
 
 import orjson
 
@@ -52,21 +52,30 @@ _SEQ_MARK, _TS_MARK, _PREV_MARK = (f"\x00{name}{_MARK}" for name in ("seq", "ts"
 _SEQ_BYTES, _TS_BYTES, _PREV_BYTES = (orjson.dumps(mark) for mark in (_SEQ_MARK, _TS_MARK, _PREV_MARK))
 
 
-@dataclass(frozen=True)
-class EncodedEvent:
-    """An event already in canonical JSON, with placeholders where the chain fields go.
+class EncodedEvent(NamedTuple):
+    """An event already in canonical JSON, cut where the values of the chain fields go.
 
     Made by :func:`encode_event` (in a helper process, for instance); appending
-    it writes exactly the bytes appending the event itself would.
+    it writes exactly the bytes appending the event itself would. The keys are
+    sorted, so the three values always come in the order ``prev``, ``seq``,
+    ``ts``: the record is ``head + prev + after_prev + seq + after_seq + ts +
+    tail``, one join.
     """
 
-    template: bytes
+    head: bytes
+    after_prev: bytes
+    after_seq: bytes
+    tail: bytes
 
 
 def encode_event(event: dict[str, Any]) -> EncodedEvent:
     if not CHAIN_FIELDS.isdisjoint(event):
         raise ValueError(f"an audit event may not set {sorted(CHAIN_FIELDS & set(event))}")
-    return EncodedEvent(canonical({**event, "seq": _SEQ_MARK, "ts": _TS_MARK, "prev": _PREV_MARK}))
+    template = canonical({**event, "seq": _SEQ_MARK, "ts": _TS_MARK, "prev": _PREV_MARK})
+    head, _, rest = template.partition(_PREV_BYTES)
+    after_prev, _, rest = rest.partition(_SEQ_BYTES)
+    after_seq, _, tail = rest.partition(_TS_BYTES)
+    return EncodedEvent(head, after_prev, after_seq, tail)
 
 
 class AuditError(Exception):
@@ -255,27 +264,31 @@ class AuditLog:
             return []
         ts = _utc_now()
         seq, prev = self.seq, self.prev
-        records, lines = [], []
+        records, pieces = [], [prefix]
         ts_json = orjson.dumps(ts)
+        prev_json = b'"%s"' % prev.encode()
+        join, sha256 = b"".join, hashlib.sha256
         for event in events:
             seq += 1
             if type(event) is EncodedEvent:
-                # The same bytes canonical() gives for the record: only the placeholders' values differ.
-                body = (event.template.replace(_SEQ_BYTES, b"%d" % seq, 1).replace(_TS_BYTES, ts_json, 1)
-                        .replace(_PREV_BYTES, b'"%s"' % prev.encode(), 1))
+                # The same bytes canonical() gives for the record, chain fields and all.
+                head, after_prev, after_seq, tail = event
+                body = join((head, prev_json, after_prev, b"%d" % seq, after_seq, ts_json, tail))
                 record = {"seq": seq, "ts": ts, "prev": prev}
             else:
                 if not CHAIN_FIELDS.isdisjoint(event):
                     raise ValueError(f"an audit event may not set {sorted(CHAIN_FIELDS & set(event))}")
                 record = {"seq": seq, "ts": ts, "prev": prev, **event}
                 body = canonical(record)  # what record_hash() hashes: the record without its hash
-            prev = record["hash"] = hashlib.sha256(body).hexdigest()
+            prev = record["hash"] = sha256(body).hexdigest()
+            prev_json = b'"%s"' % prev.encode()
             records.append(record)
             # The hash goes last on the line; readers parse the line, so key order there is free.
-            lines.append(b"%s,\"hash\":\"%s\"}" % (body[:-1], prev.encode()))
+            pieces.append(body[:-1])
+            pieces.append(b',"hash":%s}\n' % prev_json)
         if not prefix and self._rotation_due(ts):
             self._rotate()
-        self._write(prefix + b"\n".join(lines) + b"\n")
+        self._write(join(pieces))
         self.seq, self.prev = seq, prev
         if self.first_seq is None:
             self.first_seq, self.first_ts = records[0]["seq"], ts
