@@ -3,10 +3,13 @@
 A backlog is drained one order at a time, and each order costs the engine's
 process its chain (CPU) and its durable writes. A second process, forked from
 the engine after start-up (so it has the same plugins and config), reads the
-orders waiting in the inbox, in the order the engine will take them, runs the
-chain and hands back each result keyed by the sha256 of the input's bytes.
-When the engine reaches an order whose bytes have a result ready, it takes that
-result instead of running the chain again.
+orders waiting in the inbox, runs the chain and hands back each result keyed by
+the sha256 of the input's bytes. When the engine reaches an order whose bytes
+have a result ready, it takes that result; otherwise it runs the chain itself.
+The helper is given the backlog a chunk at a time and works through each chunk
+from its last order back while the engine works on from its first, so the two
+meet wherever their speeds put them: the work is shared fairly however fast the
+disk and the chain are, with no ratio to tune.
 
 Nothing about the promise changes: the helper writes no file and never claims
 an order; the engine validates, claims, checks for duplicates, publishes,
@@ -38,15 +41,9 @@ from engine.intake import OrderRejected, read_order
 
 #: Results kept waiting for the engine (bytes of ~20 kB each): bounds memory in any backlog.
 CACHE_LIMIT = 256
-#: Names sent to the helper in one message; it gets more when it is idle and the engine has caught up,
-#: so it never runs more than about CACHE_LIMIT orders ahead.
+#: Names sent to the helper in one message; it gets the next when it is idle, so it never runs more than
+#: about CACHE_LIMIT orders ahead.
 CHUNK = 64
-#: The first names of a backlog are left to the engine: the helper starts this far ahead of it, so the
-#: two never work on the same order in step (the helper, with no file-system work, then stays ahead).
-LEAD = 2
-#: One order in this many is left to the engine itself: with the helper validating, running the chain
-#: and encoding, the two processes then carry about equal shares of a backlog's work.
-ENGINE_SHARE = 5
 #: Names already sent are remembered to be sent once; past this many the memory is started afresh.
 SENT_LIMIT = 8192
 _IDLE = b"idle"
@@ -145,6 +142,7 @@ class Prefetcher:
         self.ready: OrderedDict[str, Ahead] = OrderedDict()
         self.waiting: list[str] = []  # names not yet sent
         self.sent: set[str] = set()
+        self.missed: set[str] = set()  # digests the engine looked for before their result came
         self.busy = False
         self.hits = 0
 
@@ -159,8 +157,7 @@ class Prefetcher:
         """The names the engine will take next, in its order; they replace any not yet sent."""
         if len(self.sent) > SENT_LIMIT:
             self.sent.clear()
-        unsent = [name for name in names if name not in self.sent][LEAD:]
-        self.waiting = [name for index, name in enumerate(unsent) if index % ENGINE_SHARE != ENGINE_SHARE - 1]
+        self.waiting = [name for name in names if name not in self.sent]
         self._feed()
 
     def take(self, raw_sha256: str) -> Ahead | None:
@@ -169,6 +166,8 @@ class Prefetcher:
         found = self.ready.pop(raw_sha256, None)
         if found is not None:
             self.hits += 1
+        elif len(self.missed) < SENT_LIMIT:
+            self.missed.add(raw_sha256)  # the engine computes it itself: a late result is dropped on arrival
         return found
 
     def _collect(self) -> None:
@@ -179,6 +178,9 @@ class Prefetcher:
                     self.busy = False
                     continue
                 sha256, ahead = message
+                if sha256 in self.missed:
+                    self.missed.discard(sha256)
+                    continue
                 self.ready[sha256] = ahead
                 if len(self.ready) > CACHE_LIMIT:
                     self.ready.popitem(last=False)
@@ -197,7 +199,12 @@ class Prefetcher:
         chunk, self.waiting = self.waiting[:CHUNK], self.waiting[CHUNK:]
         self.sent.update(chunk)
         try:
-            self.conn.send(chunk)
+            # Last name first: the helper works back from the end of the chunk while the engine works on from
+            # its start, computing what is not ready yet. They meet wherever their speeds put them, so the two
+            # cores share a backlog's work in whatever proportion the disk and the chain make fair, and an
+            # order is computed twice at most once a chunk (where they meet). The helper skips orders the
+            # engine has taken (gone from the inbox).
+            self.conn.send(chunk[::-1])
             self.busy = True
         except (OSError, ValueError):
             self.waiting = []
