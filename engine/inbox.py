@@ -594,7 +594,7 @@ class Lab:
         return processed
 
     def is_pending(self, processed: Processed) -> bool:
-        return any(pending.processed is processed for pending in self._batch)
+        return any(pending.processed is processed for pending in reversed(self._batch))  # most often the last
 
     @property
     def uncommitted(self) -> int:
