@@ -22,7 +22,7 @@ from plugins.optics.front_curve import (
 from plugins.optics.outline import DEFAULT_EXPONENT, decentration, modelled_outline, optical_centre
 from plugins.optics.power import power_matrix, spherical_equivalent
 from plugins.optics.thickness import (
-    LensNotMakeable, LensRequest, LensShape, edged_lenses, lens_weight_g, outline_grid,
+    EdgedLens, LensNotMakeable, LensRequest, LensShape, OutlineGrid, edged_lenses, lens_weight_g, outline_grid,
 )
 
 SURFACES_SOURCE = ("Jalie, The Principles of Ophthalmic Lenses: surface power, exact sag, thick-lens back vertex "
@@ -132,6 +132,60 @@ DESIGN_ASSUMPTIONS: dict[str, tuple[str, ...]] = {
 }
 
 
+#: The geometry model's assumptions, between the outline's own sentence and the design's.
+GEOMETRY_ASSUMPTIONS: tuple[str, ...] = (
+    "spherical front and toric back, exact sags, both vertices at the optical centre",
+    "optical centre at the monocular PD and the fitting height (half the box height when none is given)",
+    "prescribed prism as a plane wedge through the optical centre, thicker toward the base",
+)
+
+# How each geometry value is worked out, and from which source, for the geometry change's record.
+_CENTRE_THICKNESS_METHOD = ("least centre thickness meeting the binding minimum ({binding}); "
+                            "back surface F2 = Fv − F1/(1 − (t/n)F1) per principal meridian")
+_EDGES_METHOD = ("thickness along the outline: centre − exact front sag + exact back sag "
+                 "(toric back by Euler's theorem) + prism wedge")
+_WEIGHT_METHOD = ("thickness integrated over the outline area (polar trapezoid over about 120 of the radii × 6-point "
+                  "Gauss–Legendre; centre thickness and prism wedge over every sector exactly) × density")
+_OPTICAL_CENTRE_METHOD = "decentration (A + DBL)/2 − PD toward the nose, height − B/2 up"
+_ASSUMPTIONS_METHOD = "statement of the geometry model"
+#: The sources of the values after the front curve, in the order of the values.
+_VALUE_SOURCES = (
+    SURFACES_SOURCE,  # centre thickness
+    SURFACES_SOURCE,  # thinnest edge
+    SURFACES_SOURCE,  # thickest edge
+    "Dispensing texts, e.g. Brooks & Borish, System for Ophthalmic Dispensing",  # blank
+    "Jalie, The Principles of Ophthalmic Lenses (weight = volume × density)",  # weight
+    "ISO 8624 (boxing system)",  # optical centre
+    COMMON_PRACTICE,  # assumptions
+)
+
+
+@lru_cache(maxsize=64)
+def _methods_text(front_curve_method: str, binding: str, blank_method: str) -> str:
+    """The geometry change's ``method``: ``"<value>: <method>; …"`` for every value.
+
+    Only the front curve's method, the binding minimum and the blank's allowance
+    vary, over a handful of values, so the text is kept once made.
+    """
+    methods = {
+        "front_curve_d": front_curve_method,
+        "center_thickness_mm": _CENTRE_THICKNESS_METHOD.format(binding=binding),
+        "edge_min_mm": _EDGES_METHOD,
+        "edge_max_mm": _EDGES_METHOD,
+        "blank_min_diameter_mm": blank_method,
+        "weight_g": _WEIGHT_METHOD,
+        "optical_centre_mm": _OPTICAL_CENTRE_METHOD,
+        "assumptions": _ASSUMPTIONS_METHOD,
+    }
+    return "; ".join(f"{name}: {method}" for name, method in methods.items())
+
+
+@lru_cache(maxsize=16)
+def _sources_text(front_curve_source: str) -> str:
+    """The geometry change's ``source``: every value's source once, in the order of the values."""
+    return "; ".join(dict.fromkeys((front_curve_source, *_VALUE_SOURCES)))
+
+
 class FrontCurveChoice(NamedTuple):
     """The chosen front curve (D), how and from what it was chosen, and any flags it raised."""
 
@@ -142,8 +196,38 @@ class FrontCurveChoice(NamedTuple):
     flags: list
 
 
-def _choose_front_curve(view, eye, sphere, cylinder, material_key, index, params) -> FrontCurveChoice:
-    stocked = params.base_curves_d.get(material_key, params.other_base_curves_d)
+class _Shared(NamedTuple):
+    """What both lenses of an order share: the outline, the material, its minimums and stock, the fixed texts.
+
+    Worked out once per order, so that each eye's lens only adds what is its own.
+    """
+
+    grid: OutlineGrid
+    material_key: str
+    material: object
+    minimums: ThicknessMinimums
+    min_edge: float
+    stocked: list[float]
+    assumptions: tuple[str, ...]
+    blank_method: str
+
+
+def _shared(view, params, outline: tuple[OutlineGrid, str]) -> _Shared:
+    order = view.order
+    frame = order.frame
+    grid, outline_note = outline
+    material_key = order.lens.material
+    minimums = params.minimum_thickness.get(material_key, params.other_minimum_thickness)
+    return _Shared(
+        grid, material_key, view.material(), minimums, minimums.edge_for(frame.mount),
+        params.base_curves_d.get(material_key, params.other_base_curves_d),
+        (outline_note, *GEOMETRY_ASSUMPTIONS, *DESIGN_ASSUMPTIONS.get(order.lens.design, ())),
+        f"twice the farthest outline point from the optical centre plus {params.blank_allowance_mm:.1f} mm",
+    )
+
+
+def _choose_front_curve(view, eye, sphere, cylinder, shared: _Shared, params) -> FrontCurveChoice:
+    stocked, material_key, index = shared.stocked, shared.material_key, shared.material.index
     requested = view.order.lens.front_curve_d
     inputs = {"material": material_key, "stocked_d": list(stocked)}
     flags = []
@@ -170,9 +254,11 @@ def _choose_front_curve(view, eye, sphere, cylinder, material_key, index, params
         ))
         method = FRONT_CURVE_METHODS["vogel"]
         wanted = front_curve(method.name, sphere, cylinder, index, params.rotation_distance_mm)
-    inputs.update({"spherical_equivalent_d": spherical_equivalent(sphere, cylinder), "computed_d": wanted})
+    inputs["spherical_equivalent_d"] = spherical_equivalent(sphere, cylinder)
+    inputs["computed_d"] = wanted
     if method.name == "tscherning":
-        inputs.update({"index": index, "rotation_distance_mm": params.rotation_distance_mm})
+        inputs["index"] = index
+        inputs["rotation_distance_mm"] = params.rotation_distance_mm
     return FrontCurveChoice(nearest_stocked_base(wanted, stocked),
                             f"{method.title}, snapped to the nearest stocked base", method.source, inputs, flags)
 
@@ -206,125 +292,101 @@ class _Prepared(NamedTuple):
     sphere: float
     cylinder: float
     axis: float
-    material: object
     choice: FrontCurveChoice
     offset: object
     centre: tuple[float, float]
     shape: LensShape
-    minimums: ThicknessMinimums
-    min_edge: float
 
 
-def _prepare(view, eye, params) -> _Prepared | None:
-    """The eye's front curve, optical centre, shape and minimums; None when no surfacing power reached the stage."""
+def _prepare(view, eye, surfacing: dict, shared: _Shared, params) -> _Prepared:
+    """The eye's front curve, optical centre and shape, for its surfacing power."""
     order = view.order
-    surfacing = view.get(f"lenses.{eye}.surfacing")
-    if surfacing is None:
-        return None
     sphere, cylinder, axis = surfacing["sphere"], surfacing.get("cylinder", 0.0), surfacing.get("axis", 180)
-    matrix = power_matrix(sphere, cylinder, axis)
-    material_key = order.lens.material
-    material = view.material()
-    index = material.index
-    choice = _choose_front_curve(view, eye, sphere, cylinder, material_key, index, params)
+    choice = _choose_front_curve(view, eye, sphere, cylinder, shared, params)
     frame = order.frame
     fit = getattr(order.fit, eye)
     offset = decentration(frame.box_width_mm, frame.bridge_mm, frame.box_height_mm, fit.pd_mm, fit.height_mm)
-    centre = optical_centre(eye, offset)
     prism = view.get(f"lenses.{eye}.prism") or {}
-    shape = LensShape(choice.curve_d, matrix, index, float(prism.get("amount", 0.0)), float(prism.get("base_deg", 0.0)))
-    minimums = params.minimum_thickness.get(material_key, params.other_minimum_thickness)
-    return _Prepared(sphere, cylinder, axis, material, choice, offset, centre, shape, minimums,
-                     minimums.edge_for(frame.mount))
+    shape = LensShape(choice.curve_d, power_matrix(sphere, cylinder, axis), shared.material.index,
+                      float(prism.get("amount", 0.0)), float(prism.get("base_deg", 0.0)))
+    return _Prepared(sphere, cylinder, axis, choice, offset, optical_centre(eye, offset), shape)
 
 
-def _eye_geometry(view, eye, params, outline, lens: _Prepared, solved):
+def _not_makeable(eye, lens: _Prepared, shared: _Shared, reason: LensNotMakeable) -> Flag:
+    front = lens.choice.curve_d
+    return Flag(
+        "lens-not-makeable", "review",
+        f"The lens cannot be made as ordered: {reason} (front {front:.2f} D, surfacing {lens.sphere:+.2f} "
+        f"{lens.cylinder:+.2f} × {lens.axis:.0f}, {shared.material_key}). Choose another front curve, material, "
+        "frame or design with the practice.",
+        eye, {"front_curve_d": front, "sphere": lens.sphere, "cylinder": lens.cylinder, "axis": lens.axis},
+    )
+
+
+def _eye_geometry(view, eye, params, shared: _Shared, lens: _Prepared, solved: EdgedLens) -> Change:
+    """The change that records one eye's geometry, each value with its method, source and inputs."""
     order = view.order
-    grid, outline_note = outline
     frame = order.frame
     fit = getattr(order.fit, eye)
-    material_key = order.lens.material
-    material, choice, offset, centre, shape = lens.material, lens.choice, lens.offset, lens.centre, lens.shape
-    minimums, min_edge, index, front = lens.minimums, lens.min_edge, shape.index, choice.curve_d
-    if isinstance(solved, LensNotMakeable):
-        yield Flag(
-            "lens-not-makeable", "review",
-            f"The lens cannot be made as ordered: {solved} (front {front:.2f} D, surfacing {lens.sphere:+.2f} "
-            f"{lens.cylinder:+.2f} × {lens.axis:.0f}, {material_key}). Choose another front curve, material, frame or "
-            "design with the practice.",
-            eye, {"front_curve_d": front, "sphere": lens.sphere, "cylinder": lens.cylinder, "axis": lens.axis},
-        )
-        return
+    choice, offset, shape = lens.choice, lens.offset, lens.shape
+    minimums, min_edge, index, front = shared.minimums, shared.min_edge, shape.index, choice.curve_d
+    allowance = params.blank_allowance_mm
     volume = solved.volume_mm3
     # The rule of blank_diameter_mm, from the distances the solution has already worked out.
-    blank = 2.0 * solved.farthest_mm + params.blank_allowance_mm
-    weight = lens_weight_g(volume, material.density)
+    blank = 2.0 * solved.farthest_mm + allowance
+    weight = lens_weight_g(volume, shared.material.density)
 
-    binding_text = (f"the minimum centre thickness {minimums.center_mm:.1f} mm" if solved.binding == "centre"
+    binding = solved.binding
+    binding_text = (f"the minimum centre thickness {minimums.center_mm:.1f} mm" if binding == "centre"
                     else f"the minimum edge thickness {min_edge:.1f} mm for a {frame.mount.replace('_', ' ')} mount")
-    assumptions = [
-        outline_note,
-        "spherical front and toric back, exact sags, both vertices at the optical centre",
-        "optical centre at the monocular PD and the fitting height (half the box height when none is given)",
-        "prescribed prism as a plane wedge through the optical centre, thicker toward the base",
-        *DESIGN_ASSUMPTIONS.get(order.lens.design, ()),
-    ]
     geometry = {
         "front_curve_d": front, "center_thickness_mm": solved.center_mm,
         "edge_min_mm": solved.edge_min_mm, "edge_max_mm": solved.edge_max_mm,
         "blank_min_diameter_mm": blank, "weight_g": weight,
-        "optical_centre_mm": list(centre), "assumptions": assumptions,
+        "optical_centre_mm": list(lens.centre), "assumptions": list(shared.assumptions),
     }
     # One record for the eye's geometry: every value in it, each value's method and source, and the
-    # inputs each used — so an auditor reads the lens in one place, and the log stays small.
-    edges = ("thickness along the outline: centre − exact front sag + exact back sag "
-             "(toric back by Euler's theorem) + prism wedge", SURFACES_SOURCE,
-             {"outline_points": grid.radii.size, "prism_amount": shape.prism_delta,
-              "prism_base_deg": shape.prism_base_deg})
-    methods = {
-        "front_curve_d": (choice.method, choice.source, choice.inputs),
-        "center_thickness_mm": (
-            f"least centre thickness meeting the binding minimum ({solved.binding}); "
-            "back surface F2 = Fv − F1/(1 − (t/n)F1) per principal meridian", SURFACES_SOURCE,
-            {"binding": solved.binding, "min_center_mm": minimums.center_mm, "min_edge_mm": min_edge,
-             "mount": frame.mount, "index": index}),
-        "edge_min_mm": edges,
-        "edge_max_mm": edges,
-        "blank_min_diameter_mm": (
-            f"twice the farthest outline point from the optical centre plus {params.blank_allowance_mm:.1f} mm",
-            "Dispensing texts, e.g. Brooks & Borish, System for Ophthalmic Dispensing",
-            {"farthest_mm": (blank - params.blank_allowance_mm) / 2.0, "allowance_mm": params.blank_allowance_mm,
-             "decentration_in_mm": offset.inward_mm, "decentration_up_mm": offset.upward_mm}),
-        "weight_g": (
-            "thickness integrated over the outline area (polar trapezoid over about 120 of the radii × 6-point "
-            "Gauss–Legendre; centre thickness and prism wedge over every sector exactly) × density",
-            "Jalie, The Principles of Ophthalmic Lenses (weight = volume × density)",
-            {"volume_cm3": volume / 1000.0, "density_g_cm3": material.density}),
-        "optical_centre_mm": (
-            "decentration (A + DBL)/2 − PD toward the nose, height − B/2 up", "ISO 8624 (boxing system)",
-            {"pd_mm": fit.pd_mm, "height_mm": fit.height_mm}),
-        "assumptions": ("statement of the geometry model", COMMON_PRACTICE, {"design": order.lens.design}),
+    # inputs each used — so an auditor reads the lens in one place, and the log stays small. The
+    # methods and sources of the values the order does not vary are the module's constants.
+    edges_inputs = {"outline_points": shared.grid.radii.size, "prism_amount": shape.prism_delta,
+                    "prism_base_deg": shape.prism_base_deg}
+    inputs = {
+        "index": index, "material": shared.material_key,
+        "front_curve_d": choice.inputs,
+        "center_thickness_mm": {"binding": binding, "min_center_mm": minimums.center_mm, "min_edge_mm": min_edge,
+                                "mount": frame.mount, "index": index},
+        "edge_min_mm": edges_inputs,
+        "edge_max_mm": edges_inputs,
+        "blank_min_diameter_mm": {"farthest_mm": (blank - allowance) / 2.0, "allowance_mm": allowance,
+                                  "decentration_in_mm": offset.inward_mm, "decentration_up_mm": offset.upward_mm},
+        "weight_g": {"volume_cm3": volume / 1000.0, "density_g_cm3": shared.material.density},
+        "optical_centre_mm": {"pd_mm": fit.pd_mm, "height_mm": fit.height_mm},
+        "assumptions": {"design": order.lens.design},
     }
-    sources = list(dict.fromkeys(source for _, source, _ in methods.values()))
-    yield Change(
+    return Change(
         f"lenses.{eye}.geometry", geometry,
         f"The lens for this frame: front curve {front:.2f} D, centre thickness {solved.center_mm:.1f} mm "
         f"(the least that meets {binding_text}), edge {solved.edge_min_mm:.1f}–{solved.edge_max_mm:.1f} mm, "
         f"blank at least {blank:.1f} mm, {weight:.1f} g.",
-        "; ".join(f"{name}: {method}" for name, (method, _, _) in methods.items()),
-        "; ".join(sources),
-        {"index": index, "material": material_key,
-         **{name: inputs for name, (_, _, inputs) in methods.items()}},
+        _methods_text(choice.method, binding, shared.blank_method),
+        _sources_text(choice.source),
+        inputs,
     )
 
 
 def run(view, params: GeometryParams):
     outline = _outline(view, params)
-    prepared = [_prepare(view, eye, params) for eye in view.eyes]
+    surfacings = [view.get(f"lenses.{eye}.surfacing") for eye in view.eyes]
+    if all(surfacing is None for surfacing in surfacings):
+        shared = None  # no lens to make, only flags to raise: the material is not looked up
+    else:
+        shared = _shared(view, params, outline)
+    prepared = [None if surfacing is None else _prepare(view, eye, surfacing, shared, params)
+                for eye, surfacing in zip(view.eyes, surfacings)]
     # Both lenses of the pair share the outline: their thicknesses are solved together, in one set of arrays.
-    requests = [LensRequest(eye, lens.centre, lens.shape, lens.minimums.center_mm, lens.min_edge)
+    requests = [LensRequest(eye, lens.centre, lens.shape, shared.minimums.center_mm, shared.min_edge)
                 for eye, lens in zip(view.eyes, prepared) if lens is not None]
-    solutions = iter(edged_lenses(outline[0], requests) if requests else ())
+    solutions = iter(edged_lenses(shared.grid, requests) if requests else ())
     for eye, lens in zip(view.eyes, prepared):
         if lens is None:
             yield Flag("geometry-no-power", "review",
@@ -332,7 +394,11 @@ def run(view, params: GeometryParams):
                        "the lens geometry was not worked out; check the lab's chain.", eye)
             continue
         yield from lens.choice.flags
-        yield from _eye_geometry(view, eye, params, outline, lens, next(solutions))
+        solved = next(solutions)
+        if isinstance(solved, LensNotMakeable):
+            yield _not_makeable(eye, lens, shared, solved)
+        else:
+            yield _eye_geometry(view, eye, params, shared, lens, solved)
 
 
 @hookimpl

@@ -205,11 +205,15 @@ def _impact_checks(view, params: SafetyParams):
 
 
 def _geometry_checks(view, params: SafetyParams, eye: str):
-    geometry = view.get(f"lenses.{eye}.geometry")
-    if not geometry:
-        return
+    field = f"lenses.{eye}.geometry"
+    # The checks read two numbers of the geometry: fetched alone, not in a copy of the whole record.
+    edge, blank = view.get(f"{field}.edge_max_mm"), view.get(f"{field}.blank_min_diameter_mm")
+    if edge is None or blank is None:  # no geometry, or an incomplete one: as the whole record says
+        geometry = view.get(field)
+        if not geometry:
+            return
+        edge, blank = geometry["edge_max_mm"], geometry["blank_min_diameter_mm"]
     mount = view.order.frame.mount
-    edge = geometry["edge_max_mm"]
     mount_limit = params.max_edge_mm.get(mount)
     if mount_limit is not None and edge > mount_limit:
         yield Flag(
@@ -225,7 +229,6 @@ def _geometry_checks(view, params: SafetyParams, eye: str):
             "the practice may offer a higher index or edge polishing.",
             eye, {"edge_max_mm": edge, "limit_mm": params.cosmetic_edge_mm},
         )
-    blank = geometry["blank_min_diameter_mm"]
     if blank > params.max_blank_diameter_mm:
         yield Flag(
             "blank-too-large", "review",

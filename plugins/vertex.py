@@ -93,13 +93,15 @@ def run(view, params: VertexParams):
         "assumptions": [assumption] if assumption else [],
     }
     form = view.settings.cylinder_form
+    described = f"Vertex compensation from {refraction:.1f} mm ({origin}) to {fitting:.1f} mm"
     for eye in view.eyes:
         before = view.get(f"lenses.{eye}.surfacing")
         if before is None:
             yield no_surfacing("vertex", eye)
             continue
         try:
-            moved = vertex_move(matrix_of(before), refraction, fitting)
+            before_matrix = matrix_of(before)
+            moved = vertex_move(before_matrix, refraction, fitting)
         except ValueError as exc:
             yield not_applied("vertex", f"Vertex compensation is impossible: {exc}; check the prescription and "
                                         "the vertex distances.", eye, level="review")
@@ -112,8 +114,7 @@ def run(view, params: VertexParams):
         )
         yield from propose(
             "vertex", eye, before, after, params, reason=reason, method=METHOD, source=SOURCE,
-            inputs={**inputs, "eye": eye},
-            described=f"Vertex compensation from {refraction:.1f} mm ({origin}) to {fitting:.1f} mm",
+            inputs={**inputs, "eye": eye}, described=described, before_matrix=before_matrix,
         )
 
 
