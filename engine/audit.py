@@ -245,10 +245,12 @@ class AuditLog:
 
     # -- appending ---------------------------------------------------------------
 
-    def append(self, events: Iterable[dict[str, Any] | EncodedEvent]) -> list[dict[str, Any]]:
+    def append(self, events: Iterable[dict[str, Any] | tuple[bytes, bytes, bytes, bytes]]) -> list[dict[str, Any]]:
         """Chain, write and fsync a batch of events; returns the records as written.
 
-        An :class:`EncodedEvent`'s record is returned with its chain fields only.
+        An event is a dict, or an :class:`EncodedEvent` (its four parts as a
+        plain tuple will do); an encoded event's record is returned with its
+        chain fields only.
 
         Raises
         ------
@@ -270,8 +272,9 @@ class AuditLog:
         join, sha256 = b"".join, hashlib.sha256
         for event in events:
             seq += 1
-            if type(event) is EncodedEvent:
-                # The same bytes canonical() gives for the record, chain fields and all.
+            if isinstance(event, tuple):
+                # An EncodedEvent, or its four parts as a plain tuple (as the helper process sends them):
+                # the same bytes canonical() gives for the record, chain fields and all.
                 head, after_prev, after_seq, tail = event
                 body = join((head, prev_json, after_prev, b"%d" % seq, after_seq, ts_json, tail))
                 record = {"seq": seq, "ts": ts, "prev": prev}

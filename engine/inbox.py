@@ -39,7 +39,7 @@ from typing import Any, Callable, ContextManager
 import orjson
 
 from engine import __version__
-from engine.audit import AUDIT_NAME, AuditError, AuditLog, EncodedEvent, canonical, iter_records
+from engine.audit import AUDIT_NAME, AuditError, AuditLog, canonical, iter_records
 from engine.config import CONFIG_NAME, TEMPLATE, LabConfig
 from engine.fsio import (
     NotRegular, fsync_dir, claim_key, claim_tag, entry_kind, free_name, open_regular, printable, read_exactly,
@@ -508,7 +508,7 @@ class Lab:
 
     def _publish(self, name: str, claim: str, received: dict[str, Any], result: dict[str, Any],
                  examined: _Examined, redo: bool, data: bytes | None = None,
-                 encoded: list[EncodedEvent] | None = None) -> Processed:
+                 encoded: list[tuple[bytes, bytes, bytes, bytes]] | None = None) -> Processed:
         """Write the result under a temp name and queue the order's records for :meth:`commit`.
 
         ``data`` and ``encoded`` are the result's bytes and its change and flag

@@ -29,12 +29,13 @@ from __future__ import annotations
 import hashlib
 import multiprocessing
 import os
+import pickle
 import signal
 from collections import OrderedDict
 from dataclasses import dataclass
 from typing import Any
 
-from engine.audit import EncodedEvent, canonical, encode_event
+from engine.audit import canonical, encode_event
 from engine.fsio import open_regular, read_exactly
 from engine.inbox import order_events, result_bytes
 from engine.intake import OrderRejected, read_order
@@ -57,7 +58,7 @@ class Ahead:
     summary: dict[str, Any]  # its order_id, status and lenses
     timings: dict[str, float]
     content_sha256: str  # of the parsed order, as the engine's duplicate check takes it
-    events: list[EncodedEvent]  # its change and flag events, encoded for the audit log
+    events: list[tuple[bytes, bytes, bytes, bytes]]  # its change and flag events: EncodedEvent's four parts
 
 
 class _TimeUp(BaseException):
@@ -112,16 +113,17 @@ def _helper(conn, engine_end, inbox: str, max_bytes: int, limit_seconds: float, 
             finally:
                 signal.setitimer(signal.ITIMER_REAL, 0)
             result = outcome.result
-            ahead = Ahead(result_bytes(result),
-                          {"order_id": result["order_id"], "status": result["status"], "lenses": result["lenses"]},
-                          outcome.timings, hashlib.sha256(canonical(parsed)).hexdigest(),
-                          [encode_event(event) for event in order_events(result)])
+            # Plain tuples, bytes and dicts: pickled by the C pickler alone, several times faster than objects.
+            message = (hashlib.sha256(raw).hexdigest(), result_bytes(result),
+                       {"order_id": result["order_id"], "status": result["status"], "lenses": result["lenses"]},
+                       outcome.timings, hashlib.sha256(canonical(parsed)).hexdigest(),
+                       [tuple(encode_event(event)) for event in order_events(result)])
             try:
-                conn.send((hashlib.sha256(raw).hexdigest(), ahead))
+                conn.send_bytes(pickle.dumps(message, pickle.HIGHEST_PROTOCOL))
             except (OSError, ValueError):
                 return  # the engine is gone
         try:
-            conn.send(_IDLE)
+            conn.send_bytes(_IDLE)
         except (OSError, ValueError):
             return
 
@@ -173,11 +175,12 @@ class Prefetcher:
     def _collect(self) -> None:
         try:
             while self.conn.poll():
-                message = self.conn.recv()
-                if message == _IDLE:
+                message = self.conn.recv_bytes()
+                if message == _IDLE:  # never a pickle, which starts with its protocol byte
                     self.busy = False
                     continue
-                sha256, ahead = message
+                sha256, data, summary, timings, content_sha256, events = pickle.loads(message)
+                ahead = Ahead(data, summary, timings, content_sha256, events)
                 if sha256 in self.missed:
                     self.missed.discard(sha256)
                     continue
