@@ -3,11 +3,18 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 from pathlib import Path
 
-from engine import __version__
-from engine.models import CAUTION
+# Before numpy is first imported (by the plugins): the stages' arrays are a few hundred numbers, and a
+# BLAS thread pool would only spin on the cores the engine and its helper process are using. A lab may
+# still set its own value.
+for _variable in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_variable, "1")
+
+from engine import __version__  # noqa: E402
+from engine.models import CAUTION  # noqa: E402
 
 
 def _host(lab: Path | None, trace: bool = False):
