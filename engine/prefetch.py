@@ -26,6 +26,7 @@ the hashing and the file-system work.
 """
 from __future__ import annotations
 
+import fcntl
 import hashlib
 import multiprocessing
 import os
@@ -45,6 +46,8 @@ CACHE_LIMIT = 256
 #: Names sent to the helper in one message; it gets the next when it is idle, so it never runs more than
 #: about CACHE_LIMIT orders ahead.
 CHUNK = 64
+#: What the results pipe is asked to hold (see _widen).
+PIPE_BYTES = 1 << 20
 #: Names already sent are remembered to be sent once; past this many the memory is started afresh.
 SENT_LIMIT = 8192
 _IDLE = b"idle"
@@ -69,12 +72,13 @@ def _on_alarm(signum: int, frame: Any) -> None:
     raise _TimeUp
 
 
-def _helper(conn, engine_end, inbox: str, max_bytes: int, limit_seconds: float, pipeline, materials,
-            close_fds: tuple[int, ...]) -> None:
+def _helper(names_in, results_out, engine_ends, inbox: str, max_bytes: int, limit_seconds: float, pipeline,
+            materials, close_fds: tuple[int, ...]) -> None:
     """The helper process: compute what it is asked, send each result, exit when the engine is gone."""
-    # The engine's end of the pipe came with the fork: without closing it here, the helper would never
+    # The engine's ends of the pipes came with the fork: without closing them here, the helper would never
     # see the engine go (a kill -9 included) and would outlive it.
-    engine_end.close()
+    for end in engine_ends:
+        end.close()
     for fd in close_fds:  # the lab's lock, above all: only the engine may hold it
         try:
             os.close(fd)
@@ -85,7 +89,7 @@ def _helper(conn, engine_end, inbox: str, max_bytes: int, limit_seconds: float, 
     signal.signal(signal.SIGALRM, _on_alarm)
     while True:
         try:
-            names = conn.recv()
+            names = names_in.recv()
         except (EOFError, OSError):
             return
         for name in names:
@@ -119,13 +123,26 @@ def _helper(conn, engine_end, inbox: str, max_bytes: int, limit_seconds: float, 
                        outcome.timings, hashlib.sha256(canonical(parsed)).hexdigest(),
                        [tuple(encode_event(event)) for event in order_events(result)])
             try:
-                conn.send_bytes(pickle.dumps(message, pickle.HIGHEST_PROTOCOL))
+                results_out.send_bytes(pickle.dumps(message, pickle.HIGHEST_PROTOCOL))
             except (OSError, ValueError):
                 return  # the engine is gone
         try:
-            conn.send_bytes(_IDLE)
+            results_out.send_bytes(_IDLE)
         except (OSError, ValueError):
             return
+
+
+def _widen(connection) -> None:
+    """Let the results pipe hold some thirty results (1 MiB, the usual most a user may ask for).
+
+    The engine reads results between orders; with the default 64 KiB (two or
+    three results) the helper would wait on a full pipe whenever the engine
+    spends a while on an order of its own, and the second core would idle.
+    """
+    try:
+        fcntl.fcntl(connection.fileno(), fcntl.F_SETPIPE_SZ, PIPE_BYTES)
+    except (AttributeError, OSError):  # not Linux, or a lower limit for this user: the default will do
+        pass
 
 
 class Prefetcher:
@@ -133,14 +150,17 @@ class Prefetcher:
 
     def __init__(self, lab, close_fds: tuple[int, ...] = ()):
         context = multiprocessing.get_context("fork")
-        self.conn, child = context.Pipe()
+        names_in, self.names_out = context.Pipe(duplex=False)
+        self.results_in, results_out = context.Pipe(duplex=False)
+        _widen(results_out)
         watch = lab.config.watch
         self.process = context.Process(
             target=_helper, name="lenslane-prefetch", daemon=True,
-            args=(child, self.conn, os.fspath(lab.inbox), watch.max_order_bytes, watch.order_time_limit_seconds,
-                  lab.pipeline, lab.host.settings.materials, close_fds))
+            args=(names_in, results_out, (self.names_out, self.results_in), os.fspath(lab.inbox), watch.max_order_bytes,
+                  watch.order_time_limit_seconds, lab.pipeline, lab.host.settings.materials, close_fds))
         self.process.start()
-        child.close()
+        names_in.close()
+        results_out.close()
         self.ready: OrderedDict[str, Ahead] = OrderedDict()
         self.waiting: list[str] = []  # names not yet sent
         self.sent: set[str] = set()
@@ -174,8 +194,8 @@ class Prefetcher:
 
     def _collect(self) -> None:
         try:
-            while self.conn.poll():
-                message = self.conn.recv_bytes()
+            while self.results_in.poll():
+                message = self.results_in.recv_bytes()
                 if message == _IDLE:  # never a pickle, which starts with its protocol byte
                     self.busy = False
                     continue
@@ -207,16 +227,17 @@ class Prefetcher:
             # cores share a backlog's work in whatever proportion the disk and the chain make fair, and an
             # order is computed twice at most once a chunk (where they meet). The helper skips orders the
             # engine has taken (gone from the inbox).
-            self.conn.send(chunk[::-1])
+            self.names_out.send(chunk[::-1])
             self.busy = True
         except (OSError, ValueError):
             self.waiting = []
 
     def close(self) -> None:
-        try:
-            self.conn.close()
-        except OSError:
-            pass
+        for end in (self.names_out, self.results_in):
+            try:
+                end.close()
+            except OSError:
+                pass
         self.process.join(timeout=1.0)
         if self.process.is_alive():
             self.process.terminate()
