@@ -167,7 +167,8 @@ class LensOrder(_Strict):
 
 
 class _Out(BaseModel):
-    model_config = ConfigDict(extra="forbid")
+    # The result models are for the published JSON Schema and tests: built when first used, not at start-up.
+    model_config = ConfigDict(extra="forbid", defer_build=True)
 
 
 class Power(_Out):
