@@ -337,7 +337,7 @@ class Daemon:
         for name in claimed:
             if self.stopping or self._handle(name, lambda n=name: lab.process_claimed(n, redo=True)) is _STOPPED:
                 return self._finish()
-            if lab.uncommitted >= BATCH_MAX and self._commit() is _STOPPED:
+            if lab.batched >= BATCH_MAX and self._commit(wait=False) is _STOPPED:
                 return self._finish()
         if self._commit() is _STOPPED:
             return self._finish()
@@ -398,7 +398,10 @@ class Daemon:
             if name is not None:
                 if self._look_at(name) is _STOPPED:
                     break
-                if self._batch_full_or_idle() and self._commit() is _STOPPED:
+                if self.lab.batched >= BATCH_MAX:
+                    if self._commit(wait=False) is _STOPPED:
+                        break
+                elif self._idle() and self._commit() is _STOPPED:
                     break
                 continue
             upcoming = self._next_due()
@@ -459,12 +462,16 @@ class Daemon:
                 self._log_order(result, started)
         return result
 
-    def _commit(self) -> Any:
-        """Group commit of the orders processed so far; retry with backoff while output is blocked."""
+    def _commit(self, wait: bool = True) -> Any:
+        """Group commit of the orders processed so far; retry with backoff while output is blocked.
+
+        ``wait=False`` (a full batch in a backlog) leaves the batch's flush to run
+        while the next batch is processed; it is finished by the next commit.
+        """
         delay = FIRST_RETRY_SECONDS
-        while self.lab.uncommitted:
+        while self.lab.uncommitted if wait else self.lab.batched:
             try:
-                done = self.lab.commit()
+                done = self.lab.commit(wait=wait)
             except OutputBlocked as exc:
                 error = exc.error
                 self.log.error("output blocked", step=exc.step, path=str(exc.path),
@@ -480,10 +487,8 @@ class Daemon:
                 self._log_order(processed, self.started.pop(id(processed), now))
         return None
 
-    def _batch_full_or_idle(self) -> bool:
-        """Commit when the batch is full or nothing else is due now (so a lone order is never kept waiting)."""
-        if self.lab.uncommitted >= BATCH_MAX:
-            return True
+    def _idle(self) -> bool:
+        """Nothing else is due now: commit at once, so a lone order is never kept waiting."""
         now = time.monotonic()
         self._take_hints(now)
         return self._next_due() > now

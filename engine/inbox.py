@@ -31,6 +31,7 @@ import hashlib
 import json
 import os
 import stat
+import threading
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -196,6 +197,40 @@ class _Pending:
     recorded_in_log: bool = False
 
 
+class _Commit:
+    """One batch on its way through :meth:`Lab.commit`: what is left of each step."""
+
+    def __init__(self, batch: list[_Pending], unpublished: list[tuple[str, str]], folders: set[str]):
+        self.batch = batch
+        self.unpublished = unpublished  # (temp, result) still to rename
+        self.folders = folders  # still to fsync
+        self.durable = False  # the temp files' bytes are on disk
+        self._thread: threading.Thread | None = None
+        self._error: OSError | None = None
+
+    def flush_aside(self, outbox: str) -> None:
+        """Make the temp files durable on a thread (syncfs, or fsync each, releases the GIL while it waits)."""
+        temps = [temp for temp, _ in self.unpublished]
+
+        def flush() -> None:
+            try:
+                make_durable(outbox, temps)
+                self.durable = True
+            except OSError as exc:
+                self._error = exc
+
+        self._thread = threading.Thread(target=flush, name="lenslane-flush", daemon=True)
+        self._thread.start()
+
+    def flushed(self) -> OSError | None:
+        """Wait for a flush done aside; its error, if it failed (the next attempt flushes again)."""
+        if self._thread is not None:
+            self._thread.join()
+            self._thread = None
+        error, self._error = self._error, None
+        return error
+
+
 def result_bytes(result: dict[str, Any]) -> bytes:
     """The bytes of a published result."""
     return orjson.dumps(result, option=_RESULT_JSON) + b"\n"
@@ -261,6 +296,7 @@ class Lab:
         self._batch: list[_Pending] = []  # processed, waiting for commit()
         self._unsynced_folders: set[str] = set()
         self._unpublished: list[tuple[str, str]] = []  # (temp, result) written, not yet durable and renamed
+        self._flushing: _Commit | None = None  # the batch commit() began and has not finished
         self._watching: dict[str, _Seen] = {}
         self.prefetch = None  # an engine.prefetch.Prefetcher, set by the daemon for a backlog
         self._fault = _fault_from_environment()
@@ -594,14 +630,21 @@ class Lab:
         return processed
 
     def is_pending(self, processed: Processed) -> bool:
-        return any(pending.processed is processed for pending in reversed(self._batch))  # most often the last
+        batches = [self._batch] if self._flushing is None else [self._batch, self._flushing.batch]
+        # Most often the last order of the current batch.
+        return any(pending.processed is processed for batch in batches for pending in reversed(batch))
 
     @property
     def uncommitted(self) -> int:
         """Orders processed whose audit records and archiving wait for :meth:`commit`."""
+        return len(self._batch) + (len(self._flushing.batch) if self._flushing is not None else 0)
+
+    @property
+    def batched(self) -> int:
+        """Orders processed since the last call of :meth:`commit` (the batch it will take next)."""
         return len(self._batch)
 
-    def commit(self) -> list[Processed]:
+    def commit(self, wait: bool = True) -> list[Processed]:
         """Make the orders processed since the last commit final: group commit.
 
         In this order: make the batch's result files (written under temp
@@ -616,34 +659,60 @@ class Lab:
         That is the guarantee of one order at a time, with one flush, one
         folder fsync and one audit fsync per batch instead of per order.
 
+        With ``wait=False`` the flush of this batch runs on a thread while the
+        caller goes on processing orders into the next batch, and the batch is
+        finished (renames, audit, moves) by the next call; batches are finished
+        strictly in turn, so the audit log keeps the order of processing. The
+        flush is the only step that waits on the disk for long, and the only
+        one done aside: it touches no state of the engine.
+
         Returns the orders now final. Raises :class:`OutputBlocked` when a step
         fails; what is not final stays queued, and the next call resumes it.
         """
-        batch = self._batch
-        if not batch:
-            return []
-        if self._unpublished:
-            temps = [temp for temp, _ in self._unpublished]
+        done = []
+        if self._flushing is not None:
+            done += self._finish(self._flushing)
+            self._flushing = None
+        if not self._batch:
+            return done
+        unit = _Commit(self._batch, self._unpublished, self._unsynced_folders)
+        self._batch, self._unpublished, self._unsynced_folders = [], [], set()
+        self._flushing = unit  # queued first: a failure below leaves it to be resumed, in turn
+        if wait or not unit.unpublished:
+            done += self._finish(unit)
+            self._flushing = None
+        else:
+            unit.flush_aside(self._outbox)
+        return done
+
+    def _finish(self, unit: "_Commit") -> list[Processed]:
+        """The steps of :meth:`commit` for one batch, resuming after the last one that succeeded."""
+        error = unit.flushed()  # waits for a flush done aside
+        if error is not None:
+            raise OutputBlocked("publish", self._outbox, error, claimed=True) from error
+        if unit.unpublished and not unit.durable:
             try:
-                make_durable(self._outbox, temps)
+                make_durable(self._outbox, [temp for temp, _ in unit.unpublished])
             except OSError as exc:
                 raise OutputBlocked("publish", self._outbox, exc, claimed=True) from exc
-            while self._unpublished:
-                temp, target = self._unpublished[0]
-                try:
-                    os.replace(temp, target)
-                except OSError as exc:
-                    raise OutputBlocked("publish", target, exc, claimed=True) from exc
-                self._unpublished.pop(0)
-                self._unsynced_folders.add(self._outbox)
-                self._reached("published")
-        while self._unsynced_folders:
-            folder = next(iter(self._unsynced_folders))
+            unit.durable = True
+        while unit.unpublished:
+            temp, target = unit.unpublished[0]
+            try:
+                os.replace(temp, target)
+            except OSError as exc:
+                raise OutputBlocked("publish", target, exc, claimed=True) from exc
+            unit.unpublished.pop(0)
+            unit.folders.add(self._outbox)
+            self._reached("published")
+        while unit.folders:
+            folder = next(iter(unit.folders))
             try:
                 fsync_dir(folder)
             except OSError as exc:
                 raise OutputBlocked("publish", folder, exc, claimed=True) from exc
-            self._unsynced_folders.discard(folder)
+            unit.folders.discard(folder)
+        batch = unit.batch
         unrecorded = [pending for pending in batch if not pending.recorded_in_log]
         if unrecorded:
             if self.audit is None:

@@ -75,6 +75,43 @@ def lab(tmp_path, default_host):
     return lab
 
 
+def _process(lab, *order_ids):
+    for order_id in order_ids:
+        (lab.inbox / f"{order_id}.json").write_bytes(json.dumps(order(order_id)).encode())
+        assert lab.consider(f"{order_id}.json", moved=True).outcome == "published"
+
+
+def test_a_batch_flushed_aside_is_final_only_when_the_next_commit_finishes_it(lab):
+    _process(lab, "ASIDE-1", "ASIDE-2")
+    assert lab.commit(wait=False) == []  # flushing on a thread; nothing renamed, recorded or moved yet
+    assert not (lab.outbox / "ASIDE-1.json").exists() and len(os.listdir(lab.work)) == 2
+    _process(lab, "ASIDE-3")  # the next batch is processed meanwhile
+    assert lab.batched == 1 and lab.uncommitted == 3
+    done = lab.commit()
+    assert [p.order_id for p in done] == ["ASIDE-1", "ASIDE-2", "ASIDE-3"]  # in turn
+    assert sorted(os.listdir(lab.outbox)) == ["ASIDE-1.json", "ASIDE-2.json", "ASIDE-3.json"]
+    assert os.listdir(lab.work) == [] and lab.uncommitted == 0
+    published = [r["order_id"] for r in map(json.loads, (lab.root / "audit.jsonl").read_text().splitlines())
+                 if r["event"] == "published"]
+    assert published == ["ASIDE-1", "ASIDE-2", "ASIDE-3"]
+
+
+def test_a_failed_flush_aside_keeps_the_batch_for_the_retry(lab, monkeypatch):
+    import engine.inbox
+
+    _process(lab, "FLUSH-1")
+    failing = OSError(errno.EIO, "Input/output error")
+    monkeypatch.setattr(engine.inbox, "make_durable", lambda folder, paths: (_ for _ in ()).throw(failing))
+    lab.commit(wait=False)
+    with pytest.raises(engine.inbox.OutputBlocked) as blocked:
+        lab.commit()
+    assert blocked.value.error is failing and blocked.value.step == "publish"
+    assert os.listdir(lab.work) == ["FLUSH-1.json"] and not (lab.outbox / "FLUSH-1.json").exists()
+    monkeypatch.undo()
+    assert [p.order_id for p in lab.commit()] == ["FLUSH-1"]
+    assert (lab.outbox / "FLUSH-1.json").exists() and os.listdir(lab.work) == []
+
+
 def test_a_fresh_file_written_in_place_waits_for_its_quiet_time(lab):
     (lab.inbox / "fresh.json").write_bytes(NON_ASCII_ORDER)
     outcome = lab.consider("fresh.json")
