@@ -107,19 +107,24 @@ def assess(before: Mapping[str, Any], after: Mapping[str, Any], params: Compensa
     return Assessment(meridians, shift, tolerance, largest, beyond, largest > params.review_above_d)
 
 
+def _shown(value: float, decimals: int) -> float:
+    return round(value, decimals) + 0.0  # no negative zero: a change of −0.00001 D reads 0.0, not −0.0
+
+
 def assessment_values(assessment: Assessment, params: CompensationParams) -> dict[str, Any]:
     """The numbers of an assessment for a flag's ``values`` (rounded for reading only)."""
     values: dict[str, Any] = {
         "meridians": [
-            {"meridian_deg": round(m.direction_deg, 1), "before_d": round(m.before, 4), "after_d": round(m.after, 4),
-             "change_d": round(m.change, 4), "tolerance_d": round(params.tolerance_scale * m.tolerance, 4)}
+            {"meridian_deg": _shown(m.direction_deg, 1), "before_d": _shown(m.before, 4),
+             "after_d": _shown(m.after, 4), "change_d": _shown(m.change, 4),
+             "tolerance_d": _shown(params.tolerance_scale * m.tolerance, 4)}
             for m in assessment.meridians
         ],
         "review_above_d": params.review_above_d,
     }
     if assessment.axis_shift_deg is not None:
-        values["axis_shift_deg"] = round(assessment.axis_shift_deg, 2)
-        values["axis_tolerance_deg"] = round(params.tolerance_scale * assessment.axis_tolerance_deg, 2)
+        values["axis_shift_deg"] = _shown(assessment.axis_shift_deg, 2)
+        values["axis_tolerance_deg"] = _shown(params.tolerance_scale * assessment.axis_tolerance_deg, 2)
     return values
 
 

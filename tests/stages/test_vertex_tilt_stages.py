@@ -355,3 +355,17 @@ def test_left_eye_only_order(default_host):
     result = run_order(default_host, data)
     assert set(result["lenses"]) == {"left"}
     assert {c["field"] for c in result["changes"] if c["stage"] == "tilt"} == {"lenses.left.surfacing"}
+
+
+def test_a_flag_never_shows_a_negative_zero(default_host):
+    # A plano meridian stays plano under vertex compensation (F(1 − dF)⁻¹ with F = 0 is 0, from the
+    # contract's formula); the flag shows its change as 0.0, never as −0.0.
+    order = copy.deepcopy(BASE_ORDER)
+    order["rx"]["left"] = {"sphere": 0.0, "cylinder": -1.0, "axis": 169}
+    order["fit"]["vertex_mm"] = 13.5
+    order["rx"]["vertex_mm"] = 12.0
+    result = run_order(default_host, order)
+    flag = [f for f in result["flags"] if f["stage"] == "vertex" and f["eye"] == "left"][0]
+    plano = [m for m in flag["values"]["meridians"] if m["before_d"] == 0.0][0]
+    assert plano["change_d"] == 0.0 and math.copysign(1.0, plano["change_d"]) == 1.0
+    assert math.copysign(1.0, plano["after_d"]) == 1.0
