@@ -91,10 +91,11 @@ def main() -> int:
                   f"ratio {row['ratio']:.2f}, engine peak RSS {row['engine_peak_rss_mb']:.0f} MB "
                   f"(floor {row['floor_peak_rss_mb']:.0f} MB), published {row['published']}")
             stage_seconds = row["stats"].get("stage_seconds", {})
-            total = row["engine_s"]
-            if stage_seconds:
-                shares = ", ".join(f"{name} {100 * s / total:.1f}%" for name, s in stage_seconds.items())
-                print(f"  share of engine wall time: {shares}")
+            chain = sum(stage_seconds.values())
+            if chain:
+                shares = ", ".join(f"{name} {100 * s / chain:.0f}%" for name, s in stage_seconds.items())
+                print(f"  the chain took {chain:.1f} s over both processes ({row['stats'].get('computed_ahead', 0)} "
+                      f"orders computed ahead by the helper); per stage: {shares}")
     finally:
         if not args.keep:
             shutil.rmtree(workdir, ignore_errors=True)
