@@ -82,19 +82,15 @@ class Assessment(NamedTuple):
     large: bool
 
 
-def assess(before: Mapping[str, Any], after: Mapping[str, Any], params: CompensationParams, *,
-           before_matrix: PowerMatrix | None = None) -> Assessment:
+def assess(before: Mapping[str, Any], after: Mapping[str, Any], params: CompensationParams) -> Assessment:
     """Compare the power after a compensation with the power before it.
 
     The principal meridians of the lens before are compared with the scaled
     sphere-meridian tolerance; the axis, when both lenses have a cylinder the
     table covers, with the axis tolerance of the cylinder before. A meridian
     change alone misses a turned axis, which a lensmeter sees.
-    ``before_matrix``, when the caller has it already, is ``matrix_of(before)``.
     """
-    if before_matrix is None:
-        before_matrix = matrix_of(before)
-    meridians = principal_meridian_changes(before_matrix, matrix_of(after))
+    meridians = principal_meridian_changes(matrix_of(before), matrix_of(after))
     first, second = meridians
     scale = params.tolerance_scale
     beyond = abs(first.change) > scale * first.tolerance or abs(second.change) > scale * second.tolerance
@@ -179,14 +175,13 @@ def no_surfacing(stage: str, eye: str) -> Flag:
 
 def propose(stage: str, eye: str, before: Mapping[str, Any], after: Mapping[str, Any],
             params: CompensationParams, *, reason: str, method: str, source: str,
-            inputs: Mapping[str, Any], described: str, before_matrix: PowerMatrix | None = None):
+            inputs: Mapping[str, Any], described: str):
     """The change and its tolerance flag — or, when the lab's policy skips it, the flag that says why.
 
     ``described`` names the compensation with its numbers, e.g. "Vertex
-    compensation from 12.0 mm to 13.5 mm"; ``before_matrix``, when the caller
-    has it already, is ``matrix_of(before)``.
+    compensation from 12.0 mm to 13.5 mm".
     """
-    assessment = assess(before, after, params, before_matrix=before_matrix)
+    assessment = assess(before, after, params)
     if params.policy == "above_tolerance" and not assessment.beyond:
         yield not_applied(
             stage,

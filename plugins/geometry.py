@@ -148,42 +148,31 @@ _WEIGHT_METHOD = ("thickness integrated over the outline area (polar trapezoid o
                   "Gauss–Legendre; centre thickness and prism wedge over every sector exactly) × density")
 _OPTICAL_CENTRE_METHOD = "decentration (A + DBL)/2 − PD toward the nose, height − B/2 up"
 _ASSUMPTIONS_METHOD = "statement of the geometry model"
-#: The sources of the values after the front curve, in the order of the values.
-_VALUE_SOURCES = (
-    SURFACES_SOURCE,  # centre thickness
-    SURFACES_SOURCE,  # thinnest edge
-    SURFACES_SOURCE,  # thickest edge
-    "Dispensing texts, e.g. Brooks & Borish, System for Ophthalmic Dispensing",  # blank
-    "Jalie, The Principles of Ophthalmic Lenses (weight = volume × density)",  # weight
-    "ISO 8624 (boxing system)",  # optical centre
-    COMMON_PRACTICE,  # assumptions
-)
+_BLANK_SOURCE = "Dispensing texts, e.g. Brooks & Borish, System for Ophthalmic Dispensing"
+_WEIGHT_SOURCE = "Jalie, The Principles of Ophthalmic Lenses (weight = volume × density)"
+_OPTICAL_CENTRE_SOURCE = "ISO 8624 (boxing system)"
 
 
 @lru_cache(maxsize=64)
-def _methods_text(front_curve_method: str, binding: str, blank_method: str) -> str:
-    """The geometry change's ``method``: ``"<value>: <method>; …"`` for every value.
+def _record_texts(front_method: str, front_source: str, binding: str, blank_method: str) -> tuple[str, str]:
+    """The geometry change's ``method`` (``"<value>: <method>; …"``) and ``source`` (each source once).
 
-    Only the front curve's method, the binding minimum and the blank's allowance
-    vary, over a handful of values, so the text is kept once made.
+    Only the front curve's method and source, the binding minimum and the
+    blank's allowance vary, over a handful of values, so the texts are kept
+    once made.
     """
-    methods = {
-        "front_curve_d": front_curve_method,
-        "center_thickness_mm": _CENTRE_THICKNESS_METHOD.format(binding=binding),
-        "edge_min_mm": _EDGES_METHOD,
-        "edge_max_mm": _EDGES_METHOD,
-        "blank_min_diameter_mm": blank_method,
-        "weight_g": _WEIGHT_METHOD,
-        "optical_centre_mm": _OPTICAL_CENTRE_METHOD,
-        "assumptions": _ASSUMPTIONS_METHOD,
-    }
-    return "; ".join(f"{name}: {method}" for name, method in methods.items())
-
-
-@lru_cache(maxsize=16)
-def _sources_text(front_curve_source: str) -> str:
-    """The geometry change's ``source``: every value's source once, in the order of the values."""
-    return "; ".join(dict.fromkeys((front_curve_source, *_VALUE_SOURCES)))
+    values = (  # each value: its method, its source
+        ("front_curve_d", front_method, front_source),
+        ("center_thickness_mm", _CENTRE_THICKNESS_METHOD.format(binding=binding), SURFACES_SOURCE),
+        ("edge_min_mm", _EDGES_METHOD, SURFACES_SOURCE),
+        ("edge_max_mm", _EDGES_METHOD, SURFACES_SOURCE),
+        ("blank_min_diameter_mm", blank_method, _BLANK_SOURCE),
+        ("weight_g", _WEIGHT_METHOD, _WEIGHT_SOURCE),
+        ("optical_centre_mm", _OPTICAL_CENTRE_METHOD, _OPTICAL_CENTRE_SOURCE),
+        ("assumptions", _ASSUMPTIONS_METHOD, COMMON_PRACTICE),
+    )
+    return ("; ".join(f"{name}: {method}" for name, method, _ in values),
+            "; ".join(dict.fromkeys(source for _, _, source in values)))
 
 
 class FrontCurveChoice(NamedTuple):
@@ -368,8 +357,7 @@ def _eye_geometry(view, eye, params, shared: _Shared, lens: _Prepared, solved: E
         f"The lens for this frame: front curve {front:.2f} D, centre thickness {solved.center_mm:.1f} mm "
         f"(the least that meets {binding_text}), edge {solved.edge_min_mm:.1f}–{solved.edge_max_mm:.1f} mm, "
         f"blank at least {blank:.1f} mm, {weight:.1f} g.",
-        _methods_text(choice.method, binding, shared.blank_method),
-        _sources_text(choice.source),
+        *_record_texts(choice.method, choice.source, binding, shared.blank_method),
         inputs,
     )
 

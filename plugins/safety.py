@@ -205,14 +205,10 @@ def _impact_checks(view, params: SafetyParams):
 
 
 def _geometry_checks(view, params: SafetyParams, eye: str):
-    field = f"lenses.{eye}.geometry"
-    # The checks read two numbers of the geometry: fetched alone, not in a copy of the whole record.
-    edge, blank = view.get(f"{field}.edge_max_mm"), view.get(f"{field}.blank_min_diameter_mm")
-    if edge is None or blank is None:  # no geometry, or an incomplete one: as the whole record says
-        geometry = view.get(field)
-        if not geometry:
-            return
-        edge, blank = geometry["edge_max_mm"], geometry["blank_min_diameter_mm"]
+    geometry = view.get(f"lenses.{eye}.geometry")
+    if not geometry:
+        return
+    edge, blank = geometry["edge_max_mm"], geometry["blank_min_diameter_mm"]
     mount = view.order.frame.mount
     mount_limit = params.max_edge_mm.get(mount)
     if mount_limit is not None and edge > mount_limit:

@@ -98,8 +98,7 @@ def run(view, params: TiltParams):
             yield no_surfacing("tilt", eye)
             continue
         theta, tangential = tilt_obliquity(pantoscopic, face_form, eye)
-        before_matrix = matrix_of(before)
-        after = power_dict(compensate_tilt(before_matrix, theta, tangential, index), before, form)
+        after = power_dict(compensate_tilt(matrix_of(before), theta, tangential, index), before, form)
         obliquity_deg = math.degrees(theta)
         meridian = tangential_meridian_deg(tangential)
         inputs = {
@@ -122,7 +121,7 @@ def run(view, params: TiltParams):
         )
         yield from propose(
             "tilt", eye, before, after, params, reason=reason, method=METHOD, source=SOURCE, inputs=inputs,
-            described=f"Tilt compensation for {angles} (obliquity {obliquity_deg:.1f}°)", before_matrix=before_matrix,
+            described=f"Tilt compensation for {angles} (obliquity {obliquity_deg:.1f}°)",
         )
 
 

@@ -100,8 +100,7 @@ def run(view, params: VertexParams):
             yield no_surfacing("vertex", eye)
             continue
         try:
-            before_matrix = matrix_of(before)
-            moved = vertex_move(before_matrix, refraction, fitting)
+            moved = vertex_move(matrix_of(before), refraction, fitting)
         except ValueError as exc:
             yield not_applied("vertex", f"Vertex compensation is impossible: {exc}; check the prescription and "
                                         "the vertex distances.", eye, level="review")
@@ -114,7 +113,7 @@ def run(view, params: VertexParams):
         )
         yield from propose(
             "vertex", eye, before, after, params, reason=reason, method=METHOD, source=SOURCE,
-            inputs={**inputs, "eye": eye}, described=described, before_matrix=before_matrix,
+            inputs={**inputs, "eye": eye}, described=described,
         )
 
 
