@@ -297,6 +297,7 @@ class Lab:
         self._unsynced_folders: set[str] = set()
         self._unpublished: list[tuple[str, str]] = []  # (temp, result) written, not yet durable and renamed
         self._flushing: _Commit | None = None  # the batch commit() began and has not finished
+        self._final: list[Processed] = []  # made final, not yet returned by commit()
         self._watching: dict[str, _Seen] = {}
         self.prefetch = None  # an engine.prefetch.Prefetcher, set by the daemon for a backlog
         self._fault = _fault_from_environment()
@@ -669,24 +670,27 @@ class Lab:
         Returns the orders now final. Raises :class:`OutputBlocked` when a step
         fails; what is not final stays queued, and the next call resumes it.
         """
-        done = []
         if self._flushing is not None:
-            done += self._finish(self._flushing)
+            self._finish(self._flushing)
             self._flushing = None
-        if not self._batch:
-            return done
-        unit = _Commit(self._batch, self._unpublished, self._unsynced_folders)
-        self._batch, self._unpublished, self._unsynced_folders = [], [], set()
-        self._flushing = unit  # queued first: a failure below leaves it to be resumed, in turn
-        if wait or not unit.unpublished:
-            done += self._finish(unit)
-            self._flushing = None
-        else:
-            unit.flush_aside(self._outbox)
+        if self._batch:
+            unit = _Commit(self._batch, self._unpublished, self._unsynced_folders)
+            self._batch, self._unpublished, self._unsynced_folders = [], [], set()
+            self._flushing = unit  # queued first: a failure below leaves it to be resumed, in turn
+            if wait or not unit.unpublished:
+                self._finish(unit)
+                self._flushing = None
+            else:
+                unit.flush_aside(self._outbox)
+        done, self._final = self._final, []
         return done
 
-    def _finish(self, unit: "_Commit") -> list[Processed]:
-        """The steps of :meth:`commit` for one batch, resuming after the last one that succeeded."""
+    def _finish(self, unit: "_Commit") -> None:
+        """The steps of :meth:`commit` for one batch, resuming after the last one that succeeded.
+
+        Each order made final goes to ``_final`` at once, so one that a later
+        failure in the same call would hide is still returned by the next call.
+        """
         error = unit.flushed()  # waits for a flush done aside
         if error is not None:
             raise OutputBlocked("publish", self._outbox, error, claimed=True) from error
@@ -725,12 +729,10 @@ class Lab:
                 pending.recorded_in_log = True
                 self._recorded[pending.claim] = pending.recorded
             self._reached("audited")
-        done = []
         while batch:
             pending = batch[0]
             self._move_input(pending.name, pending.recorded.input, pending.claim)
-            done.append(batch.pop(0).processed)
-        return done
+            self._final.append(batch.pop(0).processed)
 
     def _move_input(self, name: str, destination: str, claim: str) -> None:
         target = f"{self._root}/{destination}"

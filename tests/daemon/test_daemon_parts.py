@@ -112,6 +112,22 @@ def test_a_failed_flush_aside_keeps_the_batch_for_the_retry(lab, monkeypatch):
     assert (lab.outbox / "FLUSH-1.json").exists() and os.listdir(lab.work) == []
 
 
+def test_orders_made_final_before_a_failure_are_returned_by_the_next_commit(lab, monkeypatch):
+    import engine.inbox
+
+    _process(lab, "FINAL-1")
+    lab.commit(wait=False)
+    lab._flushing.flushed()  # let the flush aside end before the next batch's flush is made to fail
+    _process(lab, "FINAL-2")
+    monkeypatch.setattr(engine.inbox, "make_durable",
+                        lambda folder, paths: (_ for _ in ()).throw(OSError(errno.ENOSPC, "No space left")))
+    with pytest.raises(engine.inbox.OutputBlocked):
+        lab.commit()  # FINAL-1 is finished (archived); FINAL-2's flush fails
+    assert (lab.outbox / "FINAL-1.json").exists() and os.listdir(lab.work) == ["FINAL-2.json"]
+    monkeypatch.undo()
+    assert [p.order_id for p in lab.commit()] == ["FINAL-1", "FINAL-2"]  # neither is lost to the log
+
+
 def test_a_fresh_file_written_in_place_waits_for_its_quiet_time(lab):
     (lab.inbox / "fresh.json").write_bytes(NON_ASCII_ORDER)
     outcome = lab.consider("fresh.json")
