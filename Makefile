@@ -19,7 +19,7 @@ $(STAMP): pyproject.toml
 # Compiled once here, so a start-up never compiles the engine's modules again,
 # even where PYTHONDONTWRITEBYTECODE keeps Python from writing them itself.
 bytecode:
-	$(BIN)/python -m compileall -q engine plugins
+	$(BIN)/python -m compileall -q engine plugins config
 
 install: $(STAMP)
 

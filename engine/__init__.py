@@ -2,10 +2,10 @@
 
 Nothing optical lives here. A plugin author needs only::
 
-    from engine import hookimpl, Stage, Change, Flag
+    from lenslane import hookimpl, Stage, Change, Flag
 """
-from engine.hookspecs import hookimpl, hookspec
-from engine.stage import Change, Flag, OrderView, Stage
+from lenslane.chain.hookspecs import hookimpl, hookspec
+from lenslane.chain.stage import Change, Flag, OrderView, Stage
 
 __version__ = "0.1.0"
 

@@ -3,29 +3,22 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import sys
 from pathlib import Path
 
-# Before numpy is first imported (by the plugins): the stages' arrays are a few hundred numbers, and a
-# BLAS thread pool would only spin on the cores the engine and its helper process are using. A lab may
-# still set its own value.
-for _variable in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
-    os.environ.setdefault(_variable, "1")
-
-from engine import __version__  # noqa: E402
-from engine.models import CAUTION  # noqa: E402
+from lenslane import __version__
+from lenslane.contract.models import CAUTION
 
 
 def _host(lab: Path | None, trace: bool = False):
-    from engine.config import load_config
-    from engine.host import start_host
+    from lenslane.config import load_config
+    from lenslane.chain.host import start_host
 
     return start_host(load_config(lab), trace=trace or None)
 
 
 def cmd_init(args) -> int:
-    from engine.inbox import init_lab
+    from lenslane.lab.folder import init_lab
 
     created = init_lab(Path(args.lab))
     print(f"lab folder {args.lab}: " + (("created " + ", ".join(created)) if created else "already set up, nothing changed"))
@@ -33,7 +26,7 @@ def cmd_init(args) -> int:
 
 
 def cmd_schema(args) -> int:
-    from engine.models import LensOrder, LensOrderResult
+    from lenslane.contract.models import LensOrder, LensOrderResult
 
     model = LensOrderResult if args.result else LensOrder
     print(json.dumps(model.model_json_schema(), indent=2, ensure_ascii=False))
@@ -41,7 +34,7 @@ def cmd_schema(args) -> int:
 
 
 def cmd_audit_verify(args) -> int:
-    from engine.audit import verify
+    from lenslane.audit.log import verify
 
     report = verify(Path(args.lab))
     print(report.summary())
@@ -53,7 +46,7 @@ def cmd_audit_verify(args) -> int:
 
 
 def cmd_explain(args) -> int:
-    from engine.explain import order_story, render
+    from lenslane.report.explain import order_story, render
 
     story = order_story(Path(args.lab), args.order_id)
     if args.json:
@@ -66,8 +59,8 @@ def cmd_explain(args) -> int:
 
 
 def cmd_preview(args) -> int:
-    from engine.intake import OrderRejected, read_order
-    from engine.pipeline import Pipeline, StageFailure
+    from lenslane.contract.intake import OrderRejected, read_order
+    from lenslane.chain.pipeline import Pipeline, StageFailure
 
     host = _host(Path(args.lab) if args.lab else None, args.trace_hooks)
     raw = Path(args.file).read_bytes()
@@ -109,10 +102,10 @@ def cmd_plugins(args) -> int:
 
 
 def cmd_watch(args) -> int:
-    from engine.inbox import Lab
+    from lenslane.lab.folder import Lab
 
     lab = Lab(Path(args.lab), _host(Path(args.lab), args.trace_hooks))
-    from engine.daemon import run_daemon, run_once
+    from lenslane.watch.daemon import run_daemon, run_once
 
     return run_once(lab, stats=args.stats) if args.once else run_daemon(lab)
 
@@ -180,7 +173,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    from engine.config import ConfigError
+    from lenslane.config import ConfigError
 
     args = build_parser().parse_args(argv)
     try:

@@ -9,6 +9,7 @@ from __future__ import annotations
 import hashlib
 import json
 import tomllib
+from importlib import resources
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Annotated, Any, Literal, Mapping
@@ -16,7 +17,11 @@ from typing import Annotated, Any, Literal, Mapping
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 CONFIG_NAME = "lenslane.toml"
-TEMPLATE = Path(__file__).resolve().parent.parent / "config" / CONFIG_NAME
+
+
+def template_text() -> str:
+    """The default lab config, shipped inside the package (``lenslane.defaults``)."""
+    return resources.files("lenslane.defaults").joinpath(CONFIG_NAME).read_text(encoding="utf-8")
 
 DEFAULT_CHAIN = ["validate", "normalize", "prism", "vertex", "tilt", "geometry", "safety"]
 

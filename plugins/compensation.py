@@ -12,10 +12,10 @@ from typing import Annotated, Any, Literal, Mapping, NamedTuple
 
 from pydantic import BaseModel, ConfigDict, Field
 
-from engine import Change, Flag
-from engine.explain import number, power_text
-from plugins.optics.power import PowerMatrix, power_matrix, sphero_cylinder
-from plugins.optics.tolerance import MeridianChange, axis_shift_deg, axis_tolerance, principal_meridian_changes
+from lenslane import Change, Flag
+from lenslane.report.explain import number, power_text
+from lenslane.plugins.optics.power import PowerMatrix, power_matrix, sphero_cylinder
+from lenslane.plugins.optics.tolerance import MeridianChange, axis_shift_deg, axis_tolerance, principal_meridian_changes
 
 Policy = Literal["always", "above_tolerance", "never"]
 Design = Literal["single_vision", "progressive", "bifocal"]

@@ -2,7 +2,7 @@
 
 Works on ``lenses.<eye>.surfacing`` as the stages before it left it, so the
 lens is shaped for the power that will be produced. The model is the
-contract's straightforward one (see :mod:`plugins.optics.thickness`): a
+contract's straightforward one (see :mod:`lenslane.plugins.optics.thickness`): a
 spherical front of true power at the lens index, a toric back solved from the
 thick-lens back vertex power per principal meridian, exact sags, the optical
 centre at the monocular PD and fitting height, prescribed prism as a wedge.
@@ -15,13 +15,13 @@ from typing import Annotated, NamedTuple
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
-from engine import Change, Flag, Stage, hookimpl
-from plugins.optics.front_curve import (
+from lenslane import Change, Flag, Stage, hookimpl
+from lenslane.plugins.optics.front_curve import (
     FRONT_CURVE_METHODS, ROTATION_DISTANCE_MM, NoBestForm, front_curve, front_curve_method, nearest_stocked_base,
 )
-from plugins.optics.outline import DEFAULT_EXPONENT, decentration, modelled_outline, optical_centre
-from plugins.optics.power import power_matrix, spherical_equivalent
-from plugins.optics.thickness import (
+from lenslane.plugins.optics.outline import DEFAULT_EXPONENT, decentration, modelled_outline, optical_centre
+from lenslane.plugins.optics.power import power_matrix, spherical_equivalent
+from lenslane.plugins.optics.thickness import (
     EdgedLens, LensNotMakeable, LensRequest, LensShape, OutlineGrid, edged_lenses, lens_weight_g, outline_grid,
 )
 

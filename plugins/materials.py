@@ -5,7 +5,7 @@ the ``[materials]`` table of its ``lenslane.toml``.
 """
 from __future__ import annotations
 
-from engine import hookimpl
+from lenslane import hookimpl
 
 DEFAULT_MATERIALS: dict[str, dict[str, float]] = {
     "resin-1.50": {"index": 1.498, "abbe": 58, "density": 1.32},

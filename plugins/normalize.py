@@ -6,8 +6,8 @@ compensation stages then change.
 """
 from __future__ import annotations
 
-from engine import Change, Stage, hookimpl
-from plugins.optics.power import in_form
+from lenslane import Change, Stage, hookimpl
+from lenslane.plugins.optics.power import in_form
 
 SOURCE = "Transposition rule, (S, C, α) → (S + C, −C, α ± 90°); e.g. Jalie, The Principles of Ophthalmic Lenses"
 

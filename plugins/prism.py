@@ -1,8 +1,8 @@
 """Stage ``prism``: the resultant prescribed prism per eye, base direction 0–360°."""
 from __future__ import annotations
 
-from engine import Change, Stage, hookimpl
-from plugins.optics.prism import resultant_prism
+from lenslane import Change, Stage, hookimpl
+from lenslane.plugins.optics.prism import resultant_prism
 
 SOURCE = "Vector resultant P = √(H² + V²), base atan2(V, H) in the ISO 8429 notation"
 

@@ -19,9 +19,9 @@ from typing import Annotated, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
-from engine import Flag, Stage, hookimpl
-from plugins.optics.power import power_matrix, principal_powers, spherical_equivalent
-from plugins.optics.prentice import (
+from lenslane import Flag, Stage, hookimpl
+from lenslane.plugins.optics.power import power_matrix, principal_powers, spherical_equivalent
+from lenslane.plugins.optics.prentice import (
     READING_DEPTH_MM, prentice_prism, transverse_chromatic_aberration, vertical_imbalance,
 )
 

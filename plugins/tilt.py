@@ -15,11 +15,11 @@ import math
 
 from pydantic import Field
 
-from engine import Flag, Stage, hookimpl
-from plugins.compensation import (
+from lenslane import Flag, Stage, hookimpl
+from lenslane.plugins.compensation import (
     CompensationParams, Design, matrix_of, no_surfacing, not_applied, power_dict, propose, trade_notation,
 )
-from plugins.optics.tilt import compensate_tilt, martin_factor, tangential_meridian_deg, tilt_obliquity
+from lenslane.plugins.optics.tilt import compensate_tilt, martin_factor, tangential_meridian_deg, tilt_obliquity
 
 METHOD = ("exact inverse of Martin's tilt formula on the power matrix, F = S⁻ᵀ F_w S⁻¹ / k, "
           "k = 1 + sin²θ/(2n), S = I + (sec θ − 1) t tᵀ, cos θ = cos p · cos w")

@@ -9,8 +9,8 @@ from typing import Annotated
 
 from pydantic import BaseModel, ConfigDict, Field
 
-from engine import Flag, Stage, hookimpl
-from plugins.optics.outline import outline_extent
+from lenslane import Flag, Stage, hookimpl
+from lenslane.plugins.optics.outline import outline_extent
 
 
 class ValidateParams(BaseModel):

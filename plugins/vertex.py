@@ -13,12 +13,12 @@ from typing import Annotated
 
 from pydantic import Field
 
-from engine import Flag, Stage, hookimpl
-from plugins.compensation import (
+from lenslane import Flag, Stage, hookimpl
+from lenslane.plugins.compensation import (
     CompensationParams, matrix_of, no_surfacing, not_applied, power_dict, propose, trade_notation,
 )
-from plugins.optics.power import principal_powers
-from plugins.optics.vertex import vertex_change_m, vertex_move
+from lenslane.plugins.optics.power import principal_powers
+from lenslane.plugins.optics.vertex import vertex_change_m, vertex_move
 
 METHOD = "vertex distance compensation on the power matrix, F_w = F (I − d F)⁻¹"
 SOURCE = ("Vergence transfer F' = F / (1 − d F), e.g. Jalie, The Principles of Ophthalmic Lenses; "

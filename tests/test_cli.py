@@ -9,7 +9,7 @@ import sys
 
 import pytest
 
-from engine.models import LensOrderResult
+from lenslane.contract.models import LensOrderResult
 from tests.conftest import SAMPLES
 
 SAMPLE_FILES = sorted(SAMPLES.glob("*.json"))
@@ -18,7 +18,7 @@ GOOD_SAMPLES = [p for p in SAMPLE_FILES if not p.name.startswith("rejected-")]
 
 
 def lenslane(*args, check=True):
-    done = subprocess.run([sys.executable, "-m", "engine.cli", *map(str, args)],
+    done = subprocess.run([sys.executable, "-m", "lenslane.cli", *map(str, args)],
                           capture_output=True, text=True, timeout=120)
     if check and done.returncode != 0:
         raise AssertionError(f"lenslane {args} exited {done.returncode}:\n{done.stdout}\n{done.stderr}")

@@ -7,13 +7,13 @@ import pkgutil
 
 import pytest
 
-import plugins
-import plugins.optics
+import lenslane.plugins
+import lenslane.plugins.optics
 
 MODULES = sorted(
-    [f"plugins.optics.{m.name}" for m in pkgutil.iter_modules(plugins.optics.__path__)]
-    + [f"plugins.{m.name}" for m in pkgutil.iter_modules(plugins.__path__) if not m.ispkg]
-    + ["engine.precision", "engine.stage"]
+    [f"lenslane.plugins.optics.{m.name}" for m in pkgutil.iter_modules(lenslane.plugins.optics.__path__)]
+    + [f"lenslane.plugins.{m.name}" for m in pkgutil.iter_modules(lenslane.plugins.__path__) if not m.ispkg]
+    + ["lenslane.contract.precision", "lenslane.chain.stage"]
 )
 
 
@@ -26,6 +26,6 @@ def test_docstring_examples(name):
 
 def test_the_optics_library_has_examples():
     finder = doctest.DocTestFinder()
-    examples = sum(len(t.examples) for name in MODULES if name.startswith("plugins.optics.")
+    examples = sum(len(t.examples) for name in MODULES if name.startswith("lenslane.plugins.optics.")
                    for t in finder.find(importlib.import_module(name)))
     assert examples > 40

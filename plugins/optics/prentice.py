@@ -16,8 +16,8 @@ from __future__ import annotations
 
 import math
 
-from plugins.optics.power import PowerMatrix
-from plugins.optics.prism import Prism
+from lenslane.plugins.optics.power import PowerMatrix
+from lenslane.plugins.optics.prism import Prism
 
 #: Depth of the usual reading point below the distance optical centre, mm (common practice).
 READING_DEPTH_MM = 10.0
@@ -53,7 +53,7 @@ def prentice_prism_vector(matrix: PowerMatrix, x_mm: float, y_mm: float) -> tupl
     --------
     A −4.00 D lens, 5 mm below its centre: 2Δ base down.
 
-    >>> from plugins.optics.power import power_matrix
+    >>> from lenslane.plugins.optics.power import power_matrix
     >>> [round(v, 6) + 0.0 for v in prentice_prism_vector(power_matrix(-4.0), 0.0, -5.0)]
     [0.0, -2.0]
     """
@@ -84,7 +84,7 @@ def prentice_prism(matrix: PowerMatrix, x_mm: float, y_mm: float) -> Prism:
     --------
     −4.00 −2.00 × 180, 5 mm below the optical centre: 3.0Δ base down (270°).
 
-    >>> from plugins.optics.power import power_matrix
+    >>> from lenslane.plugins.optics.power import power_matrix
     >>> prism = prentice_prism(power_matrix(-4.0, -2.0, 180), 0.0, -5.0)
     >>> round(prism.amount, 6), round(prism.base_deg, 6)
     (3.0, 270.0)
@@ -128,7 +128,7 @@ def vertical_imbalance(right: PowerMatrix, left: PowerMatrix, depth_mm: float = 
     --------
     +1.00 right, +4.00 left, 10 mm down: 3.0Δ.
 
-    >>> from plugins.optics.power import power_matrix
+    >>> from lenslane.plugins.optics.power import power_matrix
     >>> round(vertical_imbalance(power_matrix(1.0), power_matrix(4.0)), 6)
     3.0
     """

@@ -21,7 +21,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from plugins.optics.power import PowerMatrix, principal_powers
+from lenslane.plugins.optics.power import PowerMatrix, principal_powers
 
 
 def surface_radius_mm(power_d: float, index: float, side: str = "front") -> float:
@@ -275,7 +275,7 @@ def toric_back_surface(front_d: float, surfacing: PowerMatrix, thickness_mm: flo
 
     Examples
     --------
-    >>> from plugins.optics.power import power_matrix
+    >>> from lenslane.plugins.optics.power import power_matrix
     >>> back = toric_back_surface(6.0, power_matrix(-2.0, -1.0, 90), 2.0, 1.5)
     >>> round(back.power_a_d, 3), round(back.power_b_d, 3), round(back.meridian_a_deg, 6)
     (-8.048, -9.048, 90.0)

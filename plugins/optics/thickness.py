@@ -28,9 +28,9 @@ from typing import NamedTuple, Sequence
 
 import numpy as np
 
-from plugins.optics.outline import unit_circle
-from plugins.optics.power import PowerMatrix, principal_powers
-from plugins.optics.surfaces import ToricBack, back_surface_power, surface_curvature_per_mm
+from lenslane.plugins.optics.outline import unit_circle
+from lenslane.plugins.optics.power import PowerMatrix, principal_powers
+from lenslane.plugins.optics.surfaces import ToricBack, back_surface_power, surface_curvature_per_mm
 
 
 class LensNotMakeable(ValueError):
@@ -269,7 +269,7 @@ def thickness_mm(points_mm, shape: LensShape, center_thickness_mm: float) -> np.
     --------
     A −4.00 D sphere on a +4.00 D front, n 1.5, 2 mm centre, 25 mm out:
 
-    >>> from plugins.optics.power import power_matrix
+    >>> from lenslane.plugins.optics.power import power_matrix
     >>> shape = LensShape(4.0, power_matrix(-4.0), 1.5)
     >>> round(float(thickness_mm([[25.0, 0.0]], shape, 2.0)[0]), 3)
     4.708
@@ -291,7 +291,7 @@ def centre_minimum_applies(surfacing: PowerMatrix) -> bool:
 
     Examples
     --------
-    >>> from plugins.optics.power import power_matrix
+    >>> from lenslane.plugins.optics.power import power_matrix
     >>> centre_minimum_applies(power_matrix(2.0, -1.0, 90)), centre_minimum_applies(power_matrix(2.0, -3.0, 90))
     (False, True)
     """
@@ -420,7 +420,7 @@ def solve_center_thickness(edge_points_mm, shape: LensShape, min_center_mm: floa
 
     Examples
     --------
-    >>> from plugins.optics.power import power_matrix
+    >>> from lenslane.plugins.optics.power import power_matrix
     >>> ring = [[25.0 * math.cos(a), 25.0 * math.sin(a)] for a in np.linspace(0, 2 * math.pi, 72, endpoint=False)]
     >>> shape = LensShape(8.0, power_matrix(3.0), 1.5)
     >>> solved = solve_center_thickness(ring, shape, 2.0, 1.0)
@@ -656,7 +656,7 @@ def edged_lenses(outline: Sequence[float] | OutlineGrid,
 
     Examples
     --------
-    >>> from plugins.optics.power import power_matrix
+    >>> from lenslane.plugins.optics.power import power_matrix
     >>> right, left = edged_lenses([25.0] * 72, [
     ...     LensRequest("right", (2.0, 0.0), LensShape(8.0, power_matrix(3.0), 1.5), 2.0, 1.0),
     ...     LensRequest("left", (-2.0, 0.0), LensShape(8.0, power_matrix(3.0), 1.5), 2.0, 1.0)])
@@ -708,7 +708,7 @@ def edged_lens(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float, floa
 
     Examples
     --------
-    >>> from plugins.optics.power import power_matrix
+    >>> from lenslane.plugins.optics.power import power_matrix
     >>> lens = edged_lens([25.0] * 72, "right", (0.0, 0.0), LensShape(8.0, power_matrix(3.0), 1.5), 2.0, 1.0)
     >>> lens.binding, round(lens.edge_min_mm, 9), round(lens.farthest_mm, 9)
     ('edge', 1.0, 25.0)
@@ -768,7 +768,7 @@ def lens_volume_mm3(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float,
     --------
     A plano parallel plate 2 mm thick, 25 mm in radius:
 
-    >>> from plugins.optics.power import power_matrix
+    >>> from lenslane.plugins.optics.power import power_matrix
     >>> volume = lens_volume_mm3([25.0] * 72, "right", (0.0, 0.0), LensShape(0.0, power_matrix(0.0), 1.5), 2.0)
     >>> round(volume / (math.pi * 25.0 ** 2 * 2.0), 9)
     1.0

@@ -25,7 +25,7 @@ from __future__ import annotations
 import math
 from typing import NamedTuple
 
-from plugins.optics.power import PowerMatrix
+from lenslane.plugins.optics.power import PowerMatrix
 
 #: The tangential direction reported when there is no tilt (any direction is correct then).
 NO_TILT_DIRECTION = (0.0, 1.0)
@@ -221,7 +221,7 @@ def tilted_power(matrix: PowerMatrix, theta: float, tangential: tuple[float, flo
 
     Examples
     --------
-    >>> from plugins.optics.power import power_matrix, sphero_cylinder
+    >>> from lenslane.plugins.optics.power import power_matrix, sphero_cylinder
     >>> tilted = tilted_power(power_matrix(15.0), math.radians(10.0), (0.0, 1.0), 1.5)
     >>> [round(v, 2) for v in sphero_cylinder(tilted, "plus")]
     [15.15, 0.47, 180.0]
@@ -263,7 +263,7 @@ def compensate_tilt(wanted: PowerMatrix, theta: float, tangential: tuple[float, 
 
     Examples
     --------
-    >>> from plugins.optics.power import power_matrix, sphero_cylinder
+    >>> from lenslane.plugins.optics.power import power_matrix, sphero_cylinder
     >>> lens = compensate_tilt(power_matrix(-5.0, -2.0, 30), math.radians(12.0), (0.0, 1.0), 1.523)
     >>> [round(v, 2) for v in sphero_cylinder(lens)]
     [-4.87, -1.81, 33.5]

@@ -13,7 +13,7 @@ from __future__ import annotations
 
 from typing import NamedTuple
 
-from plugins.optics.power import PowerMatrix, meridian_power, principal_powers
+from lenslane.plugins.optics.power import PowerMatrix, meridian_power, principal_powers
 
 
 def _nominal(power: float) -> float:
@@ -169,7 +169,7 @@ def principal_meridian_changes(before: PowerMatrix, after: PowerMatrix) -> tuple
 
     Examples
     --------
-    >>> from plugins.optics.power import power_matrix
+    >>> from lenslane.plugins.optics.power import power_matrix
     >>> first, second = principal_meridian_changes(power_matrix(-4.0, -1.0, 180), power_matrix(-4.1, -1.0, 180))
     >>> round(first.change, 6), first.tolerance
     (-0.1, 0.13)

@@ -13,7 +13,7 @@ References
 """
 from __future__ import annotations
 
-from plugins.optics.power import PowerMatrix
+from lenslane.plugins.optics.power import PowerMatrix
 
 #: Below this |1 − dF| (or |det(I − dF)|) the moved lens would need an infinite power.
 SINGULAR_LIMIT = 1e-12
@@ -124,7 +124,7 @@ def vertex_move(matrix: PowerMatrix, refraction_vertex_mm: float, fitting_vertex
 
     Examples
     --------
-    >>> from plugins.optics.power import power_matrix, sphero_cylinder
+    >>> from lenslane.plugins.optics.power import power_matrix, sphero_cylinder
     >>> moved = vertex_move(power_matrix(-10.0), 12.0, 0.0)
     >>> round(moved.xx, 2), round(moved.yy, 2)
     (-8.93, -8.93)

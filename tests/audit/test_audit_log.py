@@ -12,8 +12,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from engine import audit
-from engine.audit import AUDIT_NAME, TORN_EVENT, AuditError, AuditLog, iter_records, verify
+from lenslane.audit import log as audit
+from lenslane.audit.log import AUDIT_NAME, TORN_EVENT, AuditError, AuditLog, iter_records, verify
 
 
 def events(count: int, order_id: str = "TST-0001") -> list[dict]:

@@ -6,9 +6,9 @@ import hashlib
 import json
 import os
 
-from engine.audit import AUDIT_NAME, canonical, record_hash
-from engine.cli import main
-from engine.inbox import Lab
+from lenslane.audit.log import AUDIT_NAME, canonical, record_hash
+from lenslane.cli import main
+from lenslane.lab.folder import Lab
 
 
 def verify_cli(lab: Lab, capsys) -> tuple[int, list[str]]:

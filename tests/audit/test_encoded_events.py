@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import json
 
-from engine.audit import AuditLog, encode_event, record_hash, verify
+from lenslane.audit.log import AuditLog, encode_event, record_hash, verify
 
 EVENT = {"event": "change", "order_id": "TST-1", "stage": "tilt", "field": "lenses.right.surfacing",
          "before": {"sphere": -4.25, "cylinder": -1.25, "axis": 170},

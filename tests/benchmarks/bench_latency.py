@@ -30,8 +30,8 @@ def main() -> int:
     work = Path(tempfile.mkdtemp(prefix="lenslane-latency-", dir=os.environ.get("BENCH_DIR")))
     lab = work / "lab"
     try:
-        subprocess.run([sys.executable, "-m", "engine.cli", "init", str(lab)], check=True, stdout=subprocess.DEVNULL)
-        watch = subprocess.Popen([sys.executable, "-m", "engine.cli", "watch", str(lab)],
+        subprocess.run([sys.executable, "-m", "lenslane.cli", "init", str(lab)], check=True, stdout=subprocess.DEVNULL)
+        watch = subprocess.Popen([sys.executable, "-m", "lenslane.cli", "watch", str(lab)],
                                  stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
         for line in watch.stdout:  # wait until the observer is up
             if '"observer"' in line:

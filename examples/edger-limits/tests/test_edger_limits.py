@@ -10,11 +10,11 @@ import json
 
 import pytest
 
-from engine.config import ConfigError, LabConfig
-from engine.host import start_host
-from engine.intake import read_order
-from engine.models import validate_order
-from engine.pipeline import Pipeline
+from lenslane.config import ConfigError, LabConfig
+from lenslane.chain.host import start_host
+from lenslane.contract.intake import read_order
+from lenslane.contract.models import validate_order
+from lenslane.chain.pipeline import Pipeline
 from lenslane_edger_limits import effective_diameter_mm, estimated_blank_mm
 
 # An invented practice and wearer code.

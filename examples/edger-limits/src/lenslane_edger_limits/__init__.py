@@ -1,7 +1,7 @@
 """Stage ``edger_limits``: what this lab's edger can cut, and where each lens is edged.
 
 A lab-specific rule, written only against the engine's public API
-(``from engine import hookimpl, Stage, Change, Flag``). For each lens it writes
+(``from lenslane import hookimpl, Stage, Change, Flag``). For each lens it writes
 ``lenses.<eye>.lab.edging`` — the edger, the bevel, the blank the edger must
 take, and whether the lens is edged in house — and flags a frame the edger
 cannot handle. It changes no power and no geometry: it may write only the
@@ -17,7 +17,7 @@ from typing import Annotated
 
 from pydantic import BaseModel, ConfigDict, Field
 
-from engine import Change, Flag, Stage, hookimpl
+from lenslane import Change, Flag, Stage, hookimpl
 
 __version__ = "1.0.0"
 

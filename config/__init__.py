@@ -1,0 +1,1 @@
+"""The default lab configuration and service unit, shipped inside the package (``lenslane init`` copies the config)."""

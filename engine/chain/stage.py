@@ -1,0 +1,164 @@
+"""What a stage is, what it may propose, and the read-only view it works on.
+
+A stage never mutates the order and never writes files. It receives an
+:class:`OrderView` and returns (or yields) :class:`Change` and :class:`Flag`
+proposals; the pipeline applies the changes in order and records each one.
+"""
+from __future__ import annotations
+
+import copy
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Any, Callable, Iterable, Literal, Mapping
+
+if TYPE_CHECKING:  # pragma: no cover
+    from pydantic import BaseModel
+
+    from lenslane.config import LabSettings, Material
+    from lenslane.contract.models import LensOrder
+
+Level = Literal["info", "warning", "review"]
+LEVELS: tuple[str, ...] = ("info", "warning", "review")
+EYES: tuple[str, str] = ("right", "left")
+
+
+@dataclass(frozen=True, slots=True)
+class Change:
+    """A proposed value for one field of the result.
+
+    Parameters
+    ----------
+    field : str
+        Dotted path in the result, e.g. ``"lenses.right.surfacing"``.
+    value : Any
+        The new value (JSON-compatible). Powers may carry full precision; the
+        pipeline rounds them to the contract's precision at the very end.
+    reason : str
+        One sentence a person can read: why the value is set or changed.
+    method : str
+        The method or formula used, by name.
+    source : str
+        The published source of the method, or "Common practice".
+    inputs : dict
+        The inputs the method used (distances in mm, angles in degrees, index...).
+    """
+
+    field: str
+    value: Any
+    reason: str
+    method: str
+    source: str
+    inputs: Mapping[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True, slots=True)
+class Flag:
+    """A finding for a person: what was found, the numbers, what to decide.
+
+    ``level`` is ``info``, ``warning`` or ``review``; a ``review`` flag holds the
+    order (the result's status becomes ``review``). ``eye`` is ``"right"``,
+    ``"left"`` or ``None`` for the pair.
+    """
+
+    code: str
+    level: Level
+    message: str
+    eye: str | None = None
+    values: Mapping[str, Any] = field(default_factory=dict)
+
+
+Proposal = Change | Flag
+RunFunction = Callable[["OrderView", Any], Iterable[Proposal]]
+
+
+@dataclass(frozen=True)
+class Stage:
+    """A named step of the chain.
+
+    Parameters
+    ----------
+    name : str
+        The name the lab's config uses (``[stages.<name>]``, ``engine.chain``).
+    run : callable
+        ``run(view, params) -> iterable of Change | Flag``.
+    writes : tuple of str
+        Result fields the stage may write, as dotted patterns where ``*`` stands
+        for one segment (``"lenses.*.surfacing"``). A change outside them is
+        refused and fails the order.
+    params : pydantic model class, optional
+        The model of the stage's ``[stages.<name>]`` table; its defaults are the
+        stage's defaults. ``None`` means the stage takes no parameters.
+    description : str
+        One line for ``lenslane plugins``.
+    """
+
+    name: str
+    run: RunFunction
+    writes: tuple[str, ...] = ()
+    params: type["BaseModel"] | None = None
+    description: str = ""
+
+    def may_write(self, field_path: str) -> bool:
+        parts = field_path.split(".")
+        for pattern in self.writes:
+            want = pattern.split(".")
+            if len(parts) >= len(want) and all(w in ("*", p) for w, p in zip(want, parts)):
+                return True
+        return False
+
+
+_MISSING = object()
+_ATOMS = frozenset((str, int, float, bool, type(None)))
+
+
+def copy_value(value: Any) -> Any:
+    """A deep copy of a result value, cheap for the plain JSON it normally is.
+
+    Dicts and lists are rebuilt, str / int / float / bool / None (immutable) are
+    shared, and anything else goes through :func:`copy.deepcopy`, so no part of
+    the copy can change the original.
+    """
+    kind = type(value)
+    if kind in _ATOMS:
+        return value
+    if kind is dict:
+        return {k: v if type(v) in _ATOMS else copy_value(v) for k, v in value.items()}
+    if kind is list:
+        return [v if type(v) in _ATOMS else copy_value(v) for v in value]
+    return copy.deepcopy(value)
+
+
+class OrderView:
+    """What a stage sees: the validated order, the current result, the lab's settings.
+
+    Every value returned by :meth:`get` is a copy; changing it changes nothing.
+    """
+
+    __slots__ = ("order", "eyes", "settings", "_state", "_material")
+
+    def __init__(self, order: "LensOrder", state: dict[str, Any], settings: "LabSettings"):
+        self.order = order
+        self.eyes: tuple[str, ...] = tuple(e for e in EYES if getattr(order.rx, e) is not None)
+        self.settings = settings
+        self._state = state
+        self._material: "Material | None" = None
+
+    def get(self, field_path: str, default: Any = None) -> Any:
+        """The current value of a result field (a copy), or ``default``."""
+        node: Any = self._state
+        for part in field_path.split("."):
+            if type(node) is not dict and not isinstance(node, dict):
+                return default
+            node = node.get(part, _MISSING)
+            if node is _MISSING:
+                return default
+        return copy_value(node)
+
+    def material(self) -> "Material":
+        """The order's material from the lab's table, with the order's index override applied."""
+        # The order and the table are frozen, so the answer is worked out once per order.
+        if self._material is None:
+            material = self.settings.materials[self.order.lens.material]
+            if self.order.lens.index is not None:
+                material = material.model_copy(update={"index": self.order.lens.index})
+            self._material = material
+        return self._material

@@ -1,0 +1,1 @@
+"""Reporting: trade notation, the story of an order as data, and its renderings."""

@@ -1,0 +1,1 @@
+"""The unattended loop: schedule, observer, clock."""

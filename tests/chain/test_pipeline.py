@@ -1,0 +1,232 @@
+"""The plugin host and the pipeline: chain from the config, proposals applied and recorded, faults contained."""
+from __future__ import annotations
+
+import pytest
+
+from lenslane import Change, Flag, Stage, hookimpl
+from lenslane.config import ConfigError, parse_config
+from lenslane.chain.host import start_host
+from lenslane.chain.pipeline import StageFailure
+from tests.conftest import run_order
+
+
+def host_with(toml: str = "", **plugins):
+    return start_host(parse_config(toml), plugins=plugins)
+
+
+class NoteStage:
+    """An inline plugin providing a stage that writes one lab field and raises one flag."""
+
+    def __init__(self, name="note", writes=("lenses.*.lab",), level="info", field="lenses.{eye}.lab.note"):
+        self.name, self.writes, self.level, self.field = name, writes, level, field
+        self.calls = 0
+
+    def run(self, view, params):
+        self.calls += 1
+        for eye in view.eyes:
+            yield Change(self.field.format(eye=eye), "checked", "The lab notes the order was checked.",
+                         "test note", "Common practice", {"eye": eye})
+        yield Flag("note", self.level, "A note for the lab.")
+
+    @hookimpl
+    def lenslane_stages(self):
+        return [Stage(self.name, self.run, writes=self.writes)]
+
+
+def chain_with(*extra):
+    stages = ", ".join(f'"{s}"' for s in ("validate", "normalize", "prism", *extra))
+    return f"[engine]\nchain = [{stages}]\n"
+
+
+def test_every_changed_field_has_a_change_record(order_dict):
+    stage = NoteStage()
+    result = run_order(host_with(chain_with("note"), note=stage), order_dict)
+    recorded = {c["field"] for c in result["changes"]}
+    for eye, lens in result["lenses"].items():
+        for part, value in lens.items():
+            if isinstance(value, dict) and part == "lab":
+                assert all(f"lenses.{eye}.lab.{k}" in recorded for k in value)
+            else:
+                assert f"lenses.{eye}.{part}" in recorded
+    note = [c for c in result["changes"] if c["stage"] == "note"][0]
+    assert note["before"] is None and note["after"] == "checked"
+    assert note["reason"] and note["method"] and note["source"]
+
+
+def test_a_change_records_the_value_before_and_after(order_dict):
+    overwrite = NoteStage(name="overwrite", writes=("lenses.*.surfacing",), field="lenses.{eye}.surfacing")
+    result = run_order(host_with(chain_with("overwrite"), overwrite=overwrite), order_dict)
+    last = [c for c in result["changes"] if c["stage"] == "overwrite" and c["field"] == "lenses.right.surfacing"][0]
+    assert last["before"] == {"sphere": -1.0, "cylinder": -0.5, "axis": 90}
+    assert last["after"] == "checked"
+
+
+def test_a_later_write_inside_an_object_leaves_the_earlier_record_as_it_was(order_dict):
+    # Each record's "after" is the value as set then, even when a later stage sets one key inside it;
+    # the result's lenses hold both, rounded to the contract's precision (lengths to 0.1 mm).
+    class Whole(NoteStage):
+        def run(self, view, params):
+            yield Change("lenses.right.lab", {"seal_mm": 1.04, "tag": "a"}, "Sets the lab object.", "test",
+                         "Common practice")
+
+    class Inner(NoteStage):
+        def run(self, view, params):
+            yield Change("lenses.right.lab.seal_mm", 2.26, "Sets one key in it.", "test", "Common practice")
+
+    host = host_with(chain_with("whole", "inner"), whole=Whole(name="whole"), inner=Inner(name="inner"))
+    result = run_order(host, order_dict)
+    whole, inner = [c for c in result["changes"] if c["field"].startswith("lenses.right.lab")]
+    assert whole["after"] == {"seal_mm": 1.0, "tag": "a"}
+    assert inner["before"] == 1.0 and inner["after"] == 2.3
+    assert result["lenses"]["right"]["lab"] == {"seal_mm": 2.3, "tag": "a"}
+
+
+def test_a_stage_that_raises_fails_the_order_with_its_name(order_dict):
+    class Broken:
+        @hookimpl
+        def lenslane_stages(self):
+            def run(view, params):
+                raise ZeroDivisionError("no power")
+            return [Stage("broken", run)]
+
+    with pytest.raises(StageFailure) as caught:
+        run_order(host_with(chain_with("broken"), broken=Broken()), order_dict)
+    assert caught.value.stage == "broken"
+    assert "ZeroDivisionError: no power" in caught.value.message
+
+
+def test_a_disabled_stage_is_not_called(order_dict):
+    stage = NoteStage()
+    host = host_with(chain_with("note") + "[stages.note]\nenabled = false\n", note=stage)
+    result = run_order(host, order_dict)
+    assert stage.calls == 0
+    assert "note" not in result["engine"]["stages"]
+    assert host.disabled == ["note"]
+
+
+def test_a_stage_left_out_of_the_chain_is_not_called(order_dict):
+    stage = NoteStage()
+    run_order(host_with(chain_with(), note=stage), order_dict)
+    assert stage.calls == 0
+
+
+def test_a_blocked_plugin_is_not_loaded():
+    host = host_with('[engine]\nblocked = ["prism"]\nchain = ["validate", "normalize"]\n')
+    assert "prism" not in host.stages
+    assert host.plugin_manager.is_blocked("prism")
+
+
+def test_a_chained_blocked_stage_fails_at_start():
+    with pytest.raises(ConfigError, match=r"engine.chain\[2\].*blocked"):
+        host_with('[engine]\nblocked = ["prism"]\nchain = ["validate", "normalize", "prism"]\n')
+
+
+def test_a_write_outside_the_declared_fields_is_refused(order_dict):
+    sneaky = NoteStage(name="sneaky", writes=("lenses.*.lab",), field="lenses.{eye}.surfacing")
+    with pytest.raises(StageFailure, match="may not write 'lenses.right.surfacing'"):
+        run_order(host_with(chain_with("sneaky"), sneaky=sneaky), order_dict)
+
+
+def test_a_write_for_an_eye_not_made_is_refused(order_dict):
+    del order_dict["rx"]["left"]
+    del order_dict["fit"]["left"]
+    sneaky = NoteStage(name="sneaky", field="lenses.left.lab.note")
+    with pytest.raises(StageFailure, match="not a field of an eye being made"):
+        run_order(host_with(chain_with("sneaky"), sneaky=sneaky), order_dict)
+
+
+def test_a_review_flag_holds_the_order(order_dict):
+    result = run_order(host_with(chain_with("note"), note=NoteStage(level="review")), order_dict)
+    assert result["status"] == "review"
+    result = run_order(host_with(chain_with("note"), note=NoteStage(level="warning")), order_dict)
+    assert result["status"] == "ready"
+
+
+def test_a_flag_of_unknown_level_fails_the_order(order_dict):
+    with pytest.raises(StageFailure, match="level 'urgent'"):
+        run_order(host_with(chain_with("note"), note=NoteStage(level="urgent")), order_dict)
+
+
+def test_a_stage_sees_a_copy_not_the_result(order_dict):
+    class Meddler:
+        @hookimpl
+        def lenslane_stages(self):
+            def run(view, params):
+                view.get("lenses.right.surfacing")["sphere"] = 99.0
+                return []
+            return [Stage("meddler", run)]
+
+    result = run_order(host_with(chain_with("meddler"), meddler=Meddler()), order_dict)
+    assert result["lenses"]["right"]["surfacing"]["sphere"] == -1.0
+
+
+def test_the_order_model_is_frozen(order_dict):
+    class Meddler:
+        @hookimpl
+        def lenslane_stages(self):
+            def run(view, params):
+                view.order.rx.right.sphere = 99.0
+            return [Stage("meddler", run)]
+
+    with pytest.raises(StageFailure, match="frozen"):
+        run_order(host_with(chain_with("meddler"), meddler=Meddler()), order_dict)
+
+
+def test_stage_parameters_come_from_the_config_and_are_validated():
+    host = host_with("[stages.validate]\npd_asymmetry_mm = 2.5\n")
+    link = [l for l in host.chain if l.stage.name == "validate"][0]
+    assert link.params.pd_asymmetry_mm == 2.5
+    with pytest.raises(ConfigError, match=r"stages\.validate\.pd_asymmetry_mm"):
+        host_with("[stages.validate]\npd_asymmetry_mm = -1.0\n")
+    with pytest.raises(ConfigError, match=r"stages\.validate\.pd_asymetry_mm.*Extra inputs"):
+        host_with("[stages.validate]\npd_asymetry_mm = 2.0\n")
+
+
+@pytest.mark.parametrize("toml, where", [
+    ('[engine]\nchain = ["validate", "nosuch"]\n', r"engine\.chain\[1\]: no such stage 'nosuch'"),
+    ('[engine]\nchain = ["validate", "validate"]\n', r"engine\.chain\[1\]: stage 'validate' is listed twice"),
+    ('[engine]\ncylinder_form = "sideways"\n', r"engine\.cylinder_form"),
+    ('[engine]\nunknown = 1\n', r"engine\.unknown"),
+    ('[watch]\nrescan_seconds = 0\n', r"watch\.rescan_seconds"),
+    ('[materials."resin-x"]\nindex = 3.0\nabbe = 40\ndensity = 1.2\n', r"materials\.resin-x\.index"),
+    ('[stages.nosuch]\nx = 1\n', r"stages\.nosuch: no such stage"),
+    ('[stages.validate]\nenabled = "yes"\n', r"stages\.validate\.enabled"),
+    ("[engine\n", r"not valid TOML"),
+    ('[engine]\nblocked = ["core"]\n', r"engine\.blocked"),
+])
+def test_a_bad_config_fails_at_start_with_the_key_path(toml, where):
+    with pytest.raises(ConfigError, match=where):
+        host_with(toml)
+
+
+def test_the_config_fingerprint_follows_the_effective_values_not_the_comments():
+    a = host_with("# a comment\n[stages.validate]\npd_asymmetry_mm = 4.0\n")
+    b = host_with("")
+    c = host_with("[stages.validate]\npd_asymmetry_mm = 3.0\n")
+    assert a.config_sha256 == b.config_sha256 != c.config_sha256
+
+
+def test_a_lab_material_overrides_the_builtin_table():
+    host = host_with('[materials."resin-1.50"]\nindex = 1.500\nabbe = 58\ndensity = 1.31\n')
+    assert host.settings.materials["resin-1.50"].index == 1.500
+    assert host.settings.materials["resin-1.74"].index == 1.740
+
+
+def test_the_run_stage_hook_wraps_every_stage(order_dict):
+    seen = []
+
+    class Timer:
+        @hookimpl(wrapper=True)
+        def lenslane_run_stage(self, stage, view, params):
+            seen.append(stage.name)
+            return (yield)
+
+    result = run_order(host_with(timer=Timer()), order_dict)
+    assert seen == result["engine"]["stages"]
+
+
+def test_tracing_prints_each_hook_call(order_dict, capsys):
+    host = start_host(parse_config(""), trace=True)
+    run_order(host, order_dict)
+    err = capsys.readouterr().err
+    assert "[hook] lenslane_run_stage" in err and "normalize" in err

@@ -1,2 +1,0 @@
-"""Fixtures of the daemon tests; the helpers live in ``driver.py``."""
-from tests.daemon.driver import fault_plugin  # noqa: F401  (a fixture)
