@@ -34,25 +34,96 @@ def cmd_schema(args) -> int:
 
 
 def cmd_audit_verify(args) -> int:
-    from lenslane.audit.log import verify
+    from lenslane.audit.checkpoint import check_checkpoints, load_public_key, read_checkpoints
+    from lenslane.audit.index import Index
+    from lenslane.audit.verify import verify
 
-    report = verify(Path(args.lab))
-    print(report.summary())
-    for note in report.notes:
-        print(f"note: {note}")
-    for finding in (report.breaks + report.result_problems)[1:]:
-        print(f"also: {finding}")
-    return 0 if report.ok else 1
+    lab = Path(args.lab)
+    index = Index(lab)
+    try:
+        report = verify(lab, full=args.full, index=index)
+        print(report.summary())
+        for note in report.notes:
+            print(f"note: {note}")
+        for finding in (report.breaks + report.result_problems)[1:]:
+            print(f"also: {finding}")
+        ok = report.ok
+        if args.checkpoints:
+            checkpoints = read_checkpoints(Path(args.checkpoints))
+            key = load_public_key(Path(args.public_key)) if args.public_key else None
+            findings = check_checkpoints(index, checkpoints, key)
+            if not checkpoints:
+                print(f"checkpoints BROKEN: {args.checkpoints} holds no checkpoint line")
+                ok = False
+            elif findings:
+                print(f"checkpoints BROKEN at {findings[0]}")
+                for finding in findings[1:]:
+                    print(f"also: {finding}")
+                ok = False
+            else:
+                signed = " (signatures verified)" if key is not None else ""
+                print(f"checkpoints hold: {len(checkpoints)} checkpoint(s) in {args.checkpoints}, the last at seq "
+                      f"{max(c.fields['seq'] for c in checkpoints)}{signed}")
+        return 0 if ok else 1
+    finally:
+        index.close()
+
+
+def cmd_audit_reindex(args) -> int:
+    from lenslane.audit.index import Index
+
+    index = Index(Path(args.lab))
+    try:
+        count = index.rebuild()
+        print(f"audit index rebuilt from the log: {count} records indexed in {index.path}")
+    finally:
+        index.close()
+    return 0
+
+
+def cmd_audit_checkpoint(args) -> int:
+    from lenslane.audit.checkpoint import checkpoint_line, load_private_key, make_checkpoint
+    from lenslane.audit.index import Index
+    from lenslane.config import load_config
+
+    lab = Path(args.lab)
+    key_path = args.key or load_config(lab).audit.signing_key
+    key = load_private_key(lab / key_path) if key_path else None
+    index = Index(lab)
+    try:
+        index.catch_up()
+        print(checkpoint_line(make_checkpoint(index, key)))
+    finally:
+        index.close()
+    return 0
+
+
+def cmd_audit_keygen(args) -> int:
+    from lenslane.audit.checkpoint import make_key_pair
+
+    try:
+        public = make_key_pair(Path(args.key))
+    except FileExistsError:
+        print(f"lenslane: {args.key} already exists; it is never overwritten", file=sys.stderr)
+        return 1
+    print(f"private key {args.key} (keep it with the lab, readable by the engine only); public key {public} "
+          "(give it to whoever verifies)")
+    return 0
 
 
 def cmd_explain(args) -> int:
-    from lenslane.report.explain import order_story, render
+    from lenslane.report.explain import configurations, order_story, render, render_configurations
 
     story = order_story(Path(args.lab), args.order_id)
     if args.json:
+        if args.config and story["found"]:
+            story["configurations"] = configurations(Path(args.lab), story)
         print(json.dumps(story, indent=1, ensure_ascii=False))
     elif story["found"]:
         print(render(story))
+        if args.config:
+            print()
+            print(render_configurations(configurations(Path(args.lab), story)))
     else:
         print(f"lenslane: {render(story)}", file=sys.stderr)
     return 0 if story["found"] else 1
@@ -147,22 +218,47 @@ def build_parser() -> argparse.ArgumentParser:
     sub.add_argument("--lab", metavar="LAB", help="use this lab's config (default: the built-in defaults)")
     sub.set_defaults(func=cmd_plugins)
 
-    sub = commands.add_parser("audit", help="check the lab's audit log", description="Work with LAB/audit.jsonl.")
+    sub = commands.add_parser("audit", help="check, index and pin the lab's audit log",
+                              description="Work with LAB/audit.jsonl and its index LAB/audit.sqlite.")
     audit_commands = sub.add_subparsers(dest="audit_command", required=True, metavar="ACTION")
-    sub = audit_commands.add_parser("verify", help="walk the whole hash chain and check the outbox against it",
-                                    description="Walk the hash chain across every audit file; check each published "
-                                    "result in outbox/ still has the sha256 the log recorded. Exit 0 with a one-line "
-                                    "summary when intact; exit 1 naming the first broken record.")
+    sub = audit_commands.add_parser("verify", help="check the hash chain and the outbox against it",
+                                    description="Check the hash chain (from the last point found intact, or all of "
+                                    "it with --full), the define records, and that each published result in outbox/ "
+                                    "still has the sha256 the log recorded. Exit 0 with a one-line summary when "
+                                    "intact; exit 1 naming the first broken record or checkpoint.")
     sub.add_argument("lab", metavar="LAB")
+    sub.add_argument("--full", action="store_true", help="walk every record from seq 1")
+    sub.add_argument("--checkpoints", metavar="FILE",
+                     help="also check the log against every checkpoint line in FILE (printed by `audit checkpoint`, "
+                          "or the engine's own log)")
+    sub.add_argument("--public-key", metavar="FILE", help="with --checkpoints: every checkpoint must be signed by the "
+                     "private key of this Ed25519 public key")
     sub.set_defaults(func=cmd_audit_verify)
+    sub = audit_commands.add_parser("reindex", help="rebuild the audit index from the log",
+                                    description="Rebuild LAB/audit.sqlite from the audit log alone.")
+    sub.add_argument("lab", metavar="LAB")
+    sub.set_defaults(func=cmd_audit_reindex)
+    sub = audit_commands.add_parser("checkpoint", help="print one checkpoint line to keep elsewhere",
+                                    description="Print the log's last seq, its hash, the time and the counts as one "
+                                    "line (signed when [audit] signing_key or --key names a private key).")
+    sub.add_argument("lab", metavar="LAB")
+    sub.add_argument("--key", metavar="FILE", help="sign with this Ed25519 private key (PEM)")
+    sub.set_defaults(func=cmd_audit_checkpoint)
+    sub = audit_commands.add_parser("keygen", help="make an Ed25519 key pair for signing checkpoints",
+                                    description="Write a new Ed25519 private key to KEY (mode 0600) and its public "
+                                    "key to KEY.pub. Never overwrites.")
+    sub.add_argument("key", metavar="KEY")
+    sub.set_defaults(func=cmd_audit_keygen)
 
     sub = commands.add_parser("explain", help="tell the story of one order from the audit log",
-                              description="What arrived, what each stage changed and why, every flag, the final "
-                              "lens and the outcome of one order, read from the audit log (the outbox may be gone). "
-                              "Exit 1 when the log does not know the order.")
+                              description="What arrived and from whom, what each stage changed and why, every flag, "
+                              "the final lens and the outcome of one order, read from the audit log (the outbox may "
+                              "be gone). ORDER is an order id or an input file name. Exit 1 when the log does not "
+                              "know it.")
     sub.add_argument("lab", metavar="LAB")
-    sub.add_argument("order_id", metavar="ORDER_ID")
+    sub.add_argument("order_id", metavar="ORDER")
     sub.add_argument("--json", action="store_true", help="the same story as JSON data")
+    sub.add_argument("--config", action="store_true", help="also show the configuration in force")
     sub.set_defaults(func=cmd_explain)
 
     sub = commands.add_parser("schema", help="print the JSON Schema of the order (or of the result)",

@@ -54,6 +54,8 @@ class WatchSettings(_Section):
 class AuditSettings(_Section):
     rotate_bytes: Annotated[int, Field(ge=0)] = 64 << 20
     rotate_period: Literal["none", "day", "month"] = "none"
+    checkpoint_minutes: Annotated[float, Field(gt=0)] = 5.0
+    signing_key: str | None = None  # an Ed25519 private key (PEM), relative to the lab folder
 
 
 class Material(_Section):

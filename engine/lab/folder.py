@@ -39,14 +39,16 @@ from typing import Any, Callable, ContextManager
 import orjson
 
 from lenslane import __version__
-from lenslane.audit.log import AUDIT_NAME, AuditError, AuditLog, canonical, iter_records
+from lenslane.audit.history import History
+from lenslane.audit.log import AUDIT_NAME, AuditError, AuditLog, canonical
+from lenslane.audit.records import received as received_part, run_definition, utc_now
 from lenslane.config import CONFIG_NAME, LabConfig, template_text
 from lenslane.lab.files import (
     NotRegular, fsync_dir, claim_key, claim_tag, entry_kind, free_name, open_regular, printable, read_exactly,
     make_durable, remove_temp_leftovers, write_durably, write_unsynced,
 )
 from lenslane.chain.host import Host
-from lenslane.contract.intake import OrderRejected, read_order
+from lenslane.contract.intake import OrderRejected, parse_json, read_order
 from lenslane.contract.models import ORDER_ID_RE, LensOrder
 from lenslane.chain.pipeline import Pipeline, StageFailure
 
@@ -210,17 +212,13 @@ def result_bytes(result: dict[str, Any]) -> bytes:
     return orjson.dumps(result, option=_RESULT_JSON) + b"\n"
 
 
-def order_events(result: dict[str, Any]) -> list[dict[str, Any]]:
-    """The audit events of a result's changes and flags, in order."""
-    order_id = result["order_id"]
-    events = [{"event": "change", "order_id": order_id, **change} for change in result["changes"]]
-    events += [{"event": "flag", "order_id": order_id, **flag} for flag in result["flags"]]
-    return events
-
-
-def _content_key(content_sha256: str | None) -> bytes | None:
-    """What the index keeps of a content digest: 16 bytes are plenty to tell two orders apart."""
-    return bytes.fromhex(content_sha256)[:16] if content_sha256 else None
+def _readable(raw: bytes) -> dict[str, Any] | None:
+    """What can be read of a refused order (its id, who sent it), for the audit log; ``None`` when nothing."""
+    try:
+        data = parse_json(raw)
+    except Exception:
+        return None
+    return data if isinstance(data, dict) else None
 
 
 def _report_bytes(report: dict[str, Any]) -> bytes:
@@ -257,14 +255,16 @@ class Lab:
         self._inbox, self._work, self._outbox = (os.path.join(self._root, n) for n in ("inbox", "work", "outbox"))
         # Opened by recover(), under the lab's lock: opening may close a torn last line.
         self.audit: AuditLog | None = None
-        self.engine_fields = {"engine_version": __version__, "config_sha256": host.config_sha256,
-                              "stages": [link.stage.name for link in host.chain]}
+        chain = [link.stage.name for link in host.chain]
+        self.run = run_definition(__version__, host.config_sha256, host.effective_config, chain, {
+            name: {"plugin": info.plugin, "from": info.origin, "version": info.version}
+            for name, info in host.stages.items() if name in chain})
         watch = host.config.watch
         self.quiet_seconds = watch.quiet_seconds
         self.young_seconds = watch.young_seconds
         self.max_order_bytes = watch.max_order_bytes
         self.time_limit: Callable[[], ContextManager[Any]] = contextlib.nullcontext
-        self.published: dict[str, bytes | None] = {}  # order id → content key, from the audit log
+        self.history: History | None = None  # the audit history, once recover() has opened the log
         self.stage_seconds: dict[str, float] = {}  # time spent in each stage, summed over the run
         self._recorded: dict[str, _Recorded] = {}
         self._batch: list[_Pending] = []  # processed, waiting for commit()
@@ -279,6 +279,13 @@ class Lab:
     def _open_audit(self) -> AuditLog:
         audit = self.config.audit
         return AuditLog(self.root / AUDIT_NAME, audit.rotate_bytes, audit.rotate_period)
+
+    def _history(self) -> History:
+        if self.history is None:
+            if self.audit is None:
+                self.audit = self._open_audit()
+            self.history = History(self.audit.index)
+        return self.history
 
     # -- start -----------------------------------------------------------------
 
@@ -299,19 +306,14 @@ class Lab:
         for name in names:
             with contextlib.suppress(FileNotFoundError):
                 claims[claim_key(os.lstat(self.work / name))] = name
-        self._read_history(claims)
-        return names
-
-    def _read_history(self, claims: dict[str, str]) -> None:
-        self.published.clear()
+        self.history = History(self.audit.index)
         self._recorded.clear()
-        for record in iter_records(self.root):
-            event = record.get("event")
-            if event == "published" and isinstance(record.get("order_id"), str):
-                self.published[record["order_id"]] = _content_key(record.get("content_sha256"))
-            if event in FINAL_EVENTS and record.get("claim") in claims and isinstance(record.get("input"), str):
-                self._recorded[record["claim"]] = _Recorded(record["input"], event, record.get("order_id"),
-                                                            record.get("status"))
+        for claim in claims:
+            record = self.history.final_record(claim)
+            if record is not None and isinstance(record.get("input"), str):
+                self._recorded[claim] = _Recorded(record["input"], record["event"], record.get("order_id"),
+                                                  record.get("status"))
+        return names
 
     def pending(self) -> list[str]:
         """Order names in the inbox, oldest name first."""
@@ -425,7 +427,11 @@ class Lab:
         try:
             order, parsed = read_order(raw, self.host.settings.materials)
         except OrderRejected as exc:
-            return _Examined(len(raw), sha256, problems=exc.problems, maybe_incomplete=exc.maybe_incomplete)
+            readable = _readable(raw)
+            order_id = readable.get("order_id") if readable is not None else None
+            return _Examined(len(raw), sha256, parsed=readable, problems=exc.problems,
+                             maybe_incomplete=exc.maybe_incomplete,
+                             order_id=order_id if isinstance(order_id, str) and ORDER_ID_RE.match(order_id) else None)
         content = hashlib.sha256(canonical(parsed)).hexdigest()
         return _Examined(len(raw), sha256, order, parsed, content, order_id=order.order_id)
 
@@ -479,16 +485,14 @@ class Lab:
             return Processed(printable(name), done.outcome, done.order_id, done.status, redo=True)
         if examined is None:
             examined = self._examine_claimed(path, info)
-        received = {"event": "received", "file": printable(name), "size": examined.size,
-                    "sha256": examined.sha256, "claim": claim}
-        if examined.kind:
-            received["kind"] = examined.kind
-        if examined.problems is not None:
-            return self._reject(name, claim, received, examined.problems, redo=redo)
+        received = received_part(printable(name), examined.size, examined.sha256, utc_now(), claim,
+                                 examined.parsed, examined.kind)
         order_id = examined.order_id
-        received["order_id"] = order_id
-        if order_id in self.published:
-            if self.published[order_id] == _content_key(examined.content_sha256):
+        if examined.problems is not None:
+            return self._reject(name, claim, received, examined.problems, order_id, redo=redo)
+        history = self._history()
+        if history.is_published(order_id):
+            if history.published_content(order_id) == examined.content_sha256:
                 return self._skip(name, claim, received, examined, redo)
             return self._hold(name, claim, received, examined, redo)
         try:
@@ -520,15 +524,12 @@ class Lab:
         except OSError as exc:
             raise OutputBlocked("publish", target, exc, claimed=True) from exc
         destination = f"archive/{free_name(self.archive, name, claim_tag(claim))}"
-        events: list[Any] = [received]
-        events += order_events(result)
-        events.append({"event": "published", "order_id": order_id, "file": printable(name),
-                       "status": result["status"], "result": f"outbox/{order_id}.json",
-                       "result_sha256": hashlib.sha256(data).hexdigest(), "lenses": result["lenses"],
-                       "content_sha256": examined.content_sha256, "claim": claim, "input": destination,
-                       **self.engine_fields})
-        self.published[order_id] = _content_key(examined.content_sha256)
-        return self._defer(name, claim, events, _Recorded(destination, "published", order_id, result["status"]),
+        event = {"event": "published", "order_id": order_id, "received": received, "status": result["status"],
+                 "result": f"outbox/{order_id}.json", "result_sha256": hashlib.sha256(data).hexdigest(),
+                 "content_sha256": examined.content_sha256, "input": destination, "run": self.run,
+                 "changes": result["changes"], "flags": result["flags"]}
+        self._history().note_published(order_id, examined.content_sha256)
+        return self._defer(name, claim, [event], _Recorded(destination, "published", order_id, result["status"]),
                            Processed(printable(name), "published", order_id, result["status"], redo=redo))
 
     def _reject(self, name: str, claim: str, received: dict[str, Any], problems: list[dict[str, str]],
@@ -537,9 +538,8 @@ class Lab:
         destination = f"rejected/{target}"
         report = {"file": printable(name), "rejected": True, "problems": problems, "input": printable(destination)}
         self._write("reject", self.rejected / f"{target}{ERRORS_SUFFIX}", _report_bytes(report))
-        return self._defer(name, claim, [received, {"event": "rejected", "order_id": order_id, "file": printable(name),
-                                                    "reasons": problems, "claim": claim, "input": printable(destination),
-                                                    **self.engine_fields}],
+        return self._defer(name, claim, [{"event": "rejected", "order_id": order_id, "received": received,
+                                          "reasons": problems, "input": printable(destination), "run": self.run}],
                            _Recorded(destination, "rejected", order_id, None),
                            Processed(printable(name), "rejected", order_id, reasons=problems, redo=redo))
 
@@ -553,22 +553,20 @@ class Lab:
         report = {"file": printable(name), "held": True, "order_id": order_id, "reasons": reasons,
                   "published": f"outbox/{order_id}.json", "input": printable(destination)}
         self._write("hold", self.held / f"{target}{HELD_SUFFIX}", _report_bytes(report))
-        return self._defer(name, claim, [received, {"event": "held", "order_id": order_id, "file": printable(name),
-                                                    "reasons": reasons, "content_sha256": examined.content_sha256,
-                                                    "claim": claim, "input": printable(destination),
-                                                    **self.engine_fields}],
+        return self._defer(name, claim, [{"event": "held", "order_id": order_id, "received": received,
+                                          "reasons": reasons, "content_sha256": examined.content_sha256,
+                                          "input": printable(destination), "run": self.run}],
                            _Recorded(destination, "held", order_id, None),
                            Processed(printable(name), "held", order_id, reasons=reasons, redo=redo))
 
     def _skip(self, name: str, claim: str, received: dict[str, Any], examined: _Examined, redo: bool) -> Processed:
         order_id = examined.order_id
         destination = f"archive/{free_name(self.archive, name, claim_tag(claim))}"
-        return self._defer(name, claim, [received, {
-            "event": "skipped", "order_id": order_id, "file": printable(name),
+        return self._defer(name, claim, [{
+            "event": "skipped", "order_id": order_id, "received": received,
             "reason": f"the same order (same content) was already published as outbox/{order_id}.json; "
                       "this copy is recorded and archived, nothing is published again",
-            "content_sha256": examined.content_sha256, "claim": claim, "input": destination,
-            **self.engine_fields}], _Recorded(destination, "skipped", order_id, None),
+            "content_sha256": examined.content_sha256, "input": destination, "run": self.run}], _Recorded(destination, "skipped", order_id, None),
             Processed(printable(name), "skipped", order_id, redo=redo))
 
     # -- the steps that write ------------------------------------------------
@@ -669,6 +667,7 @@ class Lab:
             for pending in unrecorded:
                 pending.recorded_in_log = True
                 self._recorded[pending.claim] = pending.recorded
+            self._history().note_recorded([pending.processed.order_id for pending in unrecorded])
             self._reached("audited")
         while batch:
             pending = batch[0]

@@ -7,11 +7,14 @@ trade's notation (``−4.25 −1.25 × 170``, ``1.12Δ base 26.6°``, ``6.8 mm``
 """
 from __future__ import annotations
 
+import contextlib
 import hashlib
+import json
 from pathlib import Path
 from typing import Any
 
-from lenslane.audit.log import iter_records
+from lenslane.audit.index import Index
+from lenslane.audit.records import OUTCOMES, unpack
 from lenslane.contract.models import CAUTION
 
 MINUS = "\u2212"  # the minus sign the trade prints, not a hyphen
@@ -22,8 +25,6 @@ DECISIONS = {
     "info": "for information; no decision is needed unless it surprises you",
 }
 
-#: The events that end one pass of an input through the engine.
-OUTCOMES = ("published", "rejected", "held", "skipped")
 
 _LABELS = {"front_curve_d": "front curve", "center_thickness_mm": "centre thickness",
            "blank_min_diameter_mm": "minimum blank diameter", "base_deg": "base"}
@@ -185,42 +186,62 @@ def _scalar_text(key: str, value: Any) -> str:
 
 
 class _Processing:
-    """The records of one pass of one input file through the engine."""
+    """One pass of one input file through the engine: what arrived, the story, the outcome."""
 
     def __init__(self, received: dict[str, Any] | None, order_id: str | None):
         self.received = received
         self.order_id = order_id
-        self.records: list[dict[str, Any]] = [received] if received else []
+        self.records: list[dict[str, Any]] = []  # its changes and flags, as change/flag records
+        self.seqs: list[int] = [received["seq"]] if received and "seq" in received else []
         self.outcome: dict[str, Any] | None = None
+        self.run: dict[str, Any] = {}
 
-    def matches(self, order_id: str) -> bool:
-        if self.order_id is not None:
-            return self.order_id == order_id
-        # Rejected before its order id could be read: known only by its file name.
-        name = (self.received or {}).get("file") or ""
-        return Path(name).stem == order_id
+    def add(self, record: dict[str, Any]) -> None:
+        self.seqs.append(record["seq"])
+        if record.get("event") in OUTCOMES:
+            self.outcome = record
+        else:
+            self.records.append(record)
 
 
-def _processings(lab_root: Path, order_id: str) -> list[_Processing]:
+def _one_record_pass(record: dict[str, Any]) -> _Processing:
+    """A pass written as one record (this format): its received part, story and outcome in one."""
+    received = dict(record["received"], seq=record["seq"], ts=record["received"].get("at"))
+    processing = _Processing(received, record.get("order_id"))
+    seq = record["seq"]
+    processing.records = ([{"event": "change", "seq": seq, **change} for change in record.get("changes") or []]
+                          + [{"event": "flag", "seq": seq, **flag} for flag in record.get("flags") or []])
+    run = record.get("run") if isinstance(record.get("run"), dict) else {}
+    processing.run = run
+    processing.outcome = {**record, "engine_version": run.get("engine_version"),
+                          "config_sha256": run.get("config_sha256"), "stages": run.get("stages")}
+    return processing
+
+
+def _processings(index: Index, key: str) -> list[_Processing]:
+    """Every pass of the order id (or input file name) ``key``, oldest first, read through the index."""
     found: list[_Processing] = []
     current: _Processing | None = None
-    for record in iter_records(lab_root):
+    for place in index.places_of_order(key):
+        record = index.read(place)
+        if record is None:
+            continue
+        if isinstance(record.get("received"), dict):
+            found.append(_one_record_pass(unpack(record, index.body)))
+            current = None
+            continue
+        # The first format: received, change…, flag…, outcome, each a record of its own.
         event = record.get("event")
         if event == "received":
             current = _Processing(record, record.get("order_id"))
-            if current.matches(order_id):
-                found.append(current)
+            found.append(current)
             continue
-        if "order_id" not in record:
-            continue  # the log's own records (torn-line), not an order's
         if current is None or record.get("order_id") != current.order_id:
             # An order's records without their "received" (it was in a removed part of the log).
             current = _Processing(None, record.get("order_id"))
-            if current.matches(order_id):
-                found.append(current)
-        current.records.append(record)
+            found.append(current)
+        current.add(record)
         if event in OUTCOMES:
-            current.outcome = record
             current = None
     return found
 
@@ -279,17 +300,22 @@ def _story_of(processing: _Processing) -> dict[str, Any]:
             flags.append(flag)
             name = flag["stage"] or "?"
             stages.setdefault(name, {"stage": name, "changes": [], "flags": []})["flags"].append(flag["code"])
-    seqs = [r["seq"] for r in processing.records]
+    seqs = processing.seqs or sorted({r["seq"] for r in processing.records})
     received = processing.received
     lenses = {eye: _ordered(lens, _LENS_ORDER)
-              for eye, lens in _ordered(outcome.get("lenses") or {}, _EYE_ORDER).items()}
+              for eye, lens in _ordered(outcome.get("lenses") or _final_lenses(processing), _EYE_ORDER).items()}
+    if outcome.get("event") != "published":
+        lenses = {}
+    run = processing.run
     return {
         "seq": [min(seqs), max(seqs)] if seqs else None,
         "received": None if received is None else {
             "file": received.get("file"), "size": received.get("size"), "sha256": received.get("sha256"),
-            "recorded_at": received.get("ts")},
+            "recorded_at": received.get("ts"), "account": received.get("account"),
+            "wearer_ref": received.get("wearer_ref"), "placed_at": received.get("placed_at")},
         "engine": {"version": outcome.get("engine_version"), "config_sha256": outcome.get("config_sha256"),
-                   "stages": chain or None},
+                   "stages": chain or None, "plugins": run.get("plugins"),
+                   "config_ref": run.get("config") if isinstance(run.get("config"), str) else None},
         "stages": list(stages.values()),
         "flags": flags,
         "outcome": _outcome(outcome),
@@ -297,6 +323,16 @@ def _story_of(processing: _Processing) -> dict[str, Any]:
         "lenses_text": {eye: {part: value_text(part, value) for part, value in lens.items()}
                         for eye, lens in lenses.items()},
     }
+
+
+def _final_lenses(processing: _Processing) -> dict[str, Any]:
+    """The final lens from the changes: each part of each eye is what the last change to it set."""
+    lenses: dict[str, dict[str, Any]] = {}
+    for record in processing.records:
+        parts = str(record.get("field", "")).split(".")
+        if record.get("event") == "change" and len(parts) == 3 and parts[0] == "lenses":
+            lenses.setdefault(parts[1], {})[parts[2]] = record.get("after")
+    return lenses
 
 
 def _outcome(outcome: dict[str, Any]) -> dict[str, Any]:
@@ -333,12 +369,52 @@ def _check_result_files(lab_root: Path, stories: list[dict[str, Any]]) -> None:
         outcome["result_now"] = "still in the outbox, unchanged" if same else "CHANGED since it was published"
 
 
-def order_story(lab_root: Path, order_id: str) -> dict[str, Any]:
-    """Everything the audit log says about one order, as data (``found`` false when it says nothing)."""
-    stories = [_story_of(p) for p in _processings(Path(lab_root), order_id)]
+def order_story(lab_root: Path, order_id: str, index: Index | None = None) -> dict[str, Any]:
+    """Everything the audit log says about one order, as data (``found`` false when it says nothing).
+
+    ``order_id`` may also be the name of the input file (with or without
+    ``.json``), which finds an order refused before its id could be read.
+    """
+    own = index is None
+    index = Index(Path(lab_root)) if own else index
+    try:
+        index.catch_up()
+        stories = [_story_of(p) for p in _processings(index, order_id)]
+    finally:
+        if own:
+            index.close()
     _check_result_files(Path(lab_root), stories)
     return {"order_id": order_id, "lab": str(lab_root), "found": bool(stories),
             "processings": stories, "caution": CAUTION}
+
+
+def configurations(lab_root: Path, story: dict[str, Any]) -> list[dict[str, Any]]:
+    """The configuration text in force for each pass of a story, from the log's define records."""
+    seen, out = set(), []
+    with contextlib.closing(Index(Path(lab_root))) as index:
+        for processing in story["processings"]:
+            engine = processing["engine"]
+            ref = engine.get("config_ref")
+            if (ref, engine.get("config_sha256")) in seen:
+                continue
+            seen.add((ref, engine.get("config_sha256")))
+            try:
+                config = index.body(ref) if ref else None
+            except KeyError:
+                config = None
+            out.append({"config_sha256": engine.get("config_sha256"), "config": config})
+    return out
+
+
+def render_configurations(configs: list[dict[str, Any]]) -> str:
+    lines = []
+    for entry in configs:
+        lines.append(f"Configuration in force (sha256 {entry['config_sha256']}):")
+        if entry["config"] is None:
+            lines.append("  (not in the log: an order recorded before the configuration was written into the chain)")
+        else:
+            lines += ["  " + line for line in json.dumps(entry["config"], indent=2, ensure_ascii=False).splitlines()]
+    return "\n".join(lines)
 
 
 # --------------------------------------------------------------------------
@@ -367,6 +443,10 @@ def _render_processing(p: dict[str, Any], index: int, count: int) -> list[str]:
     if received:
         lines.append(f"Arrived:  {received['file']}, {received['size']} bytes, sha256 {received['sha256']}, "
                      f"recorded {received['recorded_at']}")
+        sender = [f"{label} {received[key]}" for key, label in (("account", "account"), ("wearer_ref", "wearer"),
+                                                                ("placed_at", "placed at")) if received.get(key)]
+        if sender:
+            lines.append("From:     " + ", ".join(sender))
     else:
         lines.append("Arrived:  (the record of its arrival is not in the log)")
     engine = p["engine"]
@@ -374,6 +454,10 @@ def _render_processing(p: dict[str, Any], index: int, count: int) -> list[str]:
         lines.append(f"Engine:   lenslane {engine['version']}, config sha256 {engine['config_sha256']}")
     if engine["stages"]:
         lines.append("Chain:    " + " → ".join(engine["stages"]))
+    plugins = engine.get("plugins") or {}
+    if plugins:
+        lines.append("Plugins:  " + ", ".join(f"{name} ({info.get('from')} {info.get('version')})"
+                                              for name, info in plugins.items()))
     if p["stages"]:
         lines += _render_stages(p["stages"])
     elif p["outcome"]["event"] == "rejected":

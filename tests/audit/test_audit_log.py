@@ -12,7 +12,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from lenslane.audit import log as audit
+from lenslane.audit import records as audit
+from lenslane.audit import writer
 from lenslane.audit.log import AUDIT_NAME, TORN_EVENT, AuditError, AuditLog, iter_records, verify
 
 
@@ -99,10 +100,10 @@ def test_a_failed_write_does_not_advance_the_chain(tmp_path, monkeypatch):
         real_write(fd, bytes(data[: len(data) // 3]))  # less than the batch's first record
         raise OSError(errno.ENOSPC, "No space left on device")
 
-    monkeypatch.setattr(audit.os, "write", part_then_disk_full)
+    monkeypatch.setattr(writer.os, "write", part_then_disk_full)
     with pytest.raises(OSError):
         log.append(events(2))
-    monkeypatch.setattr(audit.os, "write", real_write)
+    monkeypatch.setattr(writer.os, "write", real_write)
     assert log.seq == 1
 
     later = log.append(events(1))  # the part-written batch is found and closed first
@@ -117,7 +118,7 @@ def test_rotation_by_size_keeps_the_chain_across_files(tmp_path):
     log = AuditLog(path, rotate_bytes=600)
     for _ in range(5):
         log.append(events(2))
-    names = sorted(p.name for p in tmp_path.iterdir())
+    names = sorted(p.name for p in tmp_path.iterdir() if p.suffix == ".jsonl")
     assert len(names) > 2 and names[-1] == AUDIT_NAME
     for name in names[:-1]:  # each rotated file is named after its first record
         first = json.loads(lines_of(tmp_path / name)[0])
@@ -129,12 +130,12 @@ def test_rotation_by_size_keeps_the_chain_across_files(tmp_path):
 
 def test_rotation_by_day_starts_a_new_file_when_the_utc_day_changes(tmp_path, monkeypatch):
     clock = iter(["2026-11-30T23:59:59.000000Z", "2026-11-30T23:59:59.500000Z", "2026-12-01T00:00:00.100000Z"])
-    monkeypatch.setattr(audit, "_utc_now", lambda: next(clock))
+    monkeypatch.setattr(writer, "utc_now", lambda: next(clock))
     log = AuditLog(tmp_path / AUDIT_NAME, rotate_period="day")
     log.append(events(1))
     log.append(events(1))
     log.append(events(1))
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["audit-000000000001.jsonl", AUDIT_NAME]
+    assert sorted(p.name for p in tmp_path.glob("*.jsonl")) == ["audit-000000000001.jsonl", AUDIT_NAME]
     assert json.loads(lines_of(tmp_path / AUDIT_NAME)[0])["seq"] == 3
     assert verify(tmp_path).ok
 

@@ -11,8 +11,8 @@ from lenslane.cli import main
 from lenslane.lab.folder import Lab
 
 
-def verify_cli(lab: Lab, capsys) -> tuple[int, list[str]]:
-    code = main(["audit", "verify", str(lab.root)])
+def verify_cli(lab: Lab, capsys, *flags: str) -> tuple[int, list[str]]:
+    code = main(["audit", "verify", str(lab.root), *flags])
     return code, capsys.readouterr().out.splitlines()
 
 
@@ -25,9 +25,8 @@ def rewrite(lab: Lab, lines: list[bytes]) -> None:
 
 
 def middle_change_line(lines: list[bytes]) -> int:
-    """The index of a change of a right surfacing power in the middle of the log."""
-    changes = [i for i, line in enumerate(lines)
-               if json.loads(line)["event"] == "change" and json.loads(line)["field"] == "lenses.right.surfacing"]
+    """The index of an order's record (with its changes) in the middle of the log."""
+    changes = [i for i, line in enumerate(lines) if json.loads(line)["event"] == "published"]
     return changes[len(changes) // 2]
 
 
@@ -37,12 +36,14 @@ def test_an_intact_log_exits_0_with_a_one_line_summary(busy_lab, capsys):
     assert code == 0 and len(out) == 1
     assert out[0].startswith(f"audit log intact: {records} records (seq 1–{records}) in 1 file")
     assert "5 published, 1 rejected; 5 outbox results match the log" in out[0]
+    code, out = verify_cli(busy_lab, capsys)  # again: only what is new since the last check
+    assert code == 0 and out[0].startswith(f"audit log intact: nothing new since seq {records}, verified before")
 
 
 def test_an_edited_line_in_the_middle_is_named(busy_lab, capsys):
     lines = log_lines(busy_lab)
     index = middle_change_line(lines)
-    lines[index] = lines[index].replace(b'"sphere":-1.0', b'"sphere":-1.25', 1)
+    lines[index] = lines[index].replace(b'"status":"ready"', b'"status":"review"', 1)
     assert lines[index] != log_lines(busy_lab)[index]
     rewrite(busy_lab, lines)
     code, out = verify_cli(busy_lab, capsys)
@@ -55,7 +56,7 @@ def test_an_edit_with_a_recomputed_hash_breaks_the_link_to_the_next_record(busy_
     lines = log_lines(busy_lab)
     index = middle_change_line(lines)
     record = json.loads(lines[index])
-    record["after"]["sphere"] -= 0.25
+    record["changes"][0][1][-1] -= 0.25  # the first change's last number
     record["hash"] = record_hash(record)
     lines[index] = canonical(record)
     rewrite(busy_lab, lines)
@@ -90,10 +91,7 @@ def test_an_inserted_record_is_named_even_when_it_is_chained(busy_lab, capsys):
     lines = log_lines(busy_lab)
     index = middle_change_line(lines)
     before = json.loads(lines[index])
-    forged = {"event": "change", "order_id": before["order_id"], "stage": "vertex", "field": "lenses.right.surfacing",
-              "before": None, "after": {"sphere": -9.0, "cylinder": 0.0, "axis": 180}, "reason": "forged",
-              "method": "none", "source": "none", "inputs": {},
-              "seq": before["seq"] + 1, "ts": before["ts"], "prev": before["hash"]}
+    forged = {**before, "status": "ready", "seq": before["seq"] + 1, "prev": before["hash"]}
     forged["hash"] = record_hash(forged)
     lines.insert(index + 1, canonical(forged))
     rewrite(busy_lab, lines)
@@ -151,9 +149,8 @@ def test_a_fake_torn_line_cannot_hide_an_edit(busy_lab, capsys):
     lines = log_lines(busy_lab)
     index = middle_change_line(lines)
     previous = json.loads(lines[index - 1])
-    garbage = b'{"event":"change","field":"lenses.right.surf'
-    offset = sum(len(line) + 1 for line in lines[:index])
-    torn = {"event": "torn-line", "file": AUDIT_NAME, "offset": offset, "size": len(garbage) + 1,
+    garbage = b'{"changes":[["0123456789abcdef",[1.0'
+    torn = {"event": "torn-line", "after_seq": previous["seq"], "size": len(garbage) + 1,
             "sha256": hashlib.sha256(garbage + b"\n").hexdigest(), "note": "",
             "seq": previous["seq"] + 1, "ts": previous["ts"], "prev": previous["hash"]}
     torn["hash"] = record_hash(torn)
@@ -199,9 +196,11 @@ def test_a_rotated_log_verifies_across_files_and_a_removed_file_is_caught(make_l
     assert code == 0 and f"in {len(rotated) + 1} files" in out[0]
 
     (lab.root / rotated[1]).unlink()
-    code, out = verify_cli(lab, capsys)
+    code, out = verify_cli(lab, capsys)  # from the point verified before: the files before it are looked at
+    assert code == 1 and f"{rotated[1]}" in out[0] and "verified before, is gone" in out[0]
+    code, out = verify_cli(lab, capsys, "--full")
     assert code == 1 and "missing (removed)" in out[0]
 
     (lab.root / rotated[0]).unlink()
-    code, out = verify_cli(lab, capsys)
+    code, out = verify_cli(lab, capsys, "--full")
     assert code == 1 and "the chain starts with seq" in out[0] and "oldest audit files" in out[0]

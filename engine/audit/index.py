@@ -1,0 +1,315 @@
+"""The audit index: an SQLite file beside the log (``LAB/audit.sqlite``), derived from it, rebuildable at any time.
+
+It answers, without reading the log from its start: where each record is
+(``records``: seq → first seq of its file, offset, length; with the order id,
+the input file name and the claim it concerns), which content each published
+order id has (``published``: duplicate detection, never held in memory), where
+each define record is (``defines``), the chain's head in each file
+(``files``), counts per event and the last point ``audit verify`` checked.
+
+The log stays the only source of truth. :meth:`Index.catch_up` compares the
+index's tail (the seq, hash and place of the last record it holds) with the
+log: when the record is there with that hash, it indexes what follows; when it
+is not (the index is ahead of the log, the log was replaced, the file is
+damaged or missing), it rebuilds the index from the whole log.
+"""
+from __future__ import annotations
+
+import contextlib
+import os
+import sqlite3
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Iterable, Iterator
+
+from lenslane.audit.reader import audit_files, iter_lines, file_of, read_at, ROTATED_RE
+from lenslane.audit.records import DEFINE_EVENT, OUTCOMES, ref_of
+
+INDEX_NAME = "audit.sqlite"
+SCHEMA = 1
+
+_TABLES = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS records (
+    seq INTEGER PRIMARY KEY, file INTEGER NOT NULL, offset INTEGER NOT NULL, length INTEGER NOT NULL,
+    event TEXT, order_id TEXT, name TEXT, claim TEXT);
+CREATE INDEX IF NOT EXISTS records_order ON records (order_id) WHERE order_id IS NOT NULL;
+CREATE INDEX IF NOT EXISTS records_name ON records (name) WHERE name IS NOT NULL;
+CREATE INDEX IF NOT EXISTS records_claim ON records (claim) WHERE claim IS NOT NULL;
+CREATE TABLE IF NOT EXISTS defines (ref TEXT PRIMARY KEY, seq INTEGER NOT NULL, kind TEXT) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS published (order_id TEXT PRIMARY KEY, content TEXT, seq INTEGER) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS files (first_seq INTEGER PRIMARY KEY, last_seq INTEGER, last_hash TEXT, size INTEGER);
+CREATE TABLE IF NOT EXISTS counts (event TEXT PRIMARY KEY, n INTEGER NOT NULL) WITHOUT ROWID;
+"""
+
+
+@dataclass(frozen=True)
+class Place:
+    """Where a record is: the first seq of its file, its offset and length there."""
+
+    seq: int
+    file: int
+    offset: int
+    length: int
+
+
+def facts(record: dict[str, Any]) -> tuple[str | None, str | None, str | None, str | None]:
+    """What the index keeps of a record: its event, order id, input file name and (final records) claim."""
+    event = record.get("event")
+    event = event if isinstance(event, str) else None
+    order_id = record.get("order_id") if isinstance(record.get("order_id"), str) else None
+    received = record.get("received")
+    if isinstance(received, dict):  # one record per pass (this format)
+        name, claim = received.get("file"), received.get("claim")
+    else:  # the first format: received, change…, flag…, outcome as records of their own
+        name = record.get("file")
+        claim = record.get("claim") if event in OUTCOMES else None
+    return (event, order_id, name if isinstance(name, str) else None, claim if isinstance(claim, str) else None)
+
+
+class Index:
+    """The index of one lab's audit log.
+
+    ``writable=False`` never creates or changes the file on disk: when it is
+    missing or behind, an index is built in memory instead (for a lab folder
+    the reader may not write to).
+    """
+
+    def __init__(self, lab_root: Path, writable: bool = True):
+        self.root = Path(lab_root)
+        self.path = self.root / INDEX_NAME
+        self.writable = writable
+        self.db = self._open()
+
+    # -- opening, and starting again -------------------------------------------
+
+    def _open(self) -> sqlite3.Connection:
+        if self.writable:
+            try:
+                return self._connect(str(self.path))
+            except (sqlite3.DatabaseError, OSError):
+                self._remove()
+                try:
+                    return self._connect(str(self.path))
+                except (sqlite3.DatabaseError, OSError):
+                    pass  # a folder the process may not write to: an index in memory
+        elif self.path.exists():
+            try:
+                return self._connect(f"file:{self.path}?mode=ro", uri=True, create=False)
+            except (sqlite3.DatabaseError, OSError):
+                pass
+        self.writable = False
+        return self._connect(":memory:")
+
+    @staticmethod
+    def _connect(target: str, uri: bool = False, create: bool = True) -> sqlite3.Connection:
+        db = sqlite3.connect(target, uri=uri, timeout=30.0, isolation_level=None, check_same_thread=False)
+        try:
+            if create:
+                db.execute("PRAGMA journal_mode=WAL")
+                db.execute("PRAGMA synchronous=NORMAL")  # derived data: catch_up() repairs what a crash loses
+                db.executescript(_TABLES)
+                version = db.execute("SELECT value FROM meta WHERE key='schema'").fetchone()
+                if version is None:
+                    db.execute("INSERT OR REPLACE INTO meta VALUES ('schema', ?)", (SCHEMA,))
+                elif version[0] != SCHEMA:
+                    raise sqlite3.DatabaseError(f"index schema {version[0]}, this engine writes {SCHEMA}")
+            db.execute("SELECT count(*) FROM meta").fetchone()
+            if create:
+                check = db.execute("PRAGMA quick_check").fetchone()
+                if check is None or check[0] != "ok":
+                    raise sqlite3.DatabaseError(f"index damaged: {check}")
+        except BaseException:
+            db.close()
+            raise
+        return db
+
+    def _remove(self) -> None:
+        for suffix in ("", "-wal", "-shm"):
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(f"{self.path}{suffix}")
+
+    def close(self) -> None:
+        self.db.close()
+
+    def rebuild(self) -> int:
+        """Forget everything and index the whole log again; returns the number of records indexed."""
+        if self.writable:
+            self.db.close()
+            self._remove()
+            self.db = self._connect(str(self.path))
+        else:
+            self.db.close()
+            self.db = self._connect(":memory:")
+        return self._index_from(None)
+
+    # -- keeping up with the log -------------------------------------------------
+
+    def meta(self, key: str) -> Any:
+        row = self.db.execute("SELECT value FROM meta WHERE key=?", (key,)).fetchone()
+        return row[0] if row else None
+
+    def tail(self) -> Place | None:
+        seq = self.meta("tail_seq")
+        if seq is None:
+            return None
+        return Place(seq, self.meta("tail_file"), self.meta("tail_offset"), self.meta("tail_length"))
+
+    def catch_up(self) -> str:
+        """Bring the index level with the log; returns what it did: ``level``, ``caught up`` or ``rebuilt``."""
+        tail = self.tail()
+        if tail is None:
+            if not any(p.stat().st_size for p in audit_files(self.root) if p.exists()):
+                return "level"
+            self.rebuild()
+            return "rebuilt"
+        record = read_at(self.root, tail.file, tail.offset, tail.length)
+        if record is None or record.get("seq") != tail.seq or record.get("hash") != self.meta("tail_hash"):
+            self.rebuild()
+            return "rebuilt"
+        added = self._index_from(tail)
+        return "caught up" if added else "level"
+
+    def _index_from(self, tail: Place | None) -> int:
+        start = None
+        if tail is not None:
+            path = file_of(self.root, tail.file)
+            if path is None:
+                return 0
+            start = (path, tail.offset + tail.length)
+        batch: list[tuple[dict[str, Any], int, int, int]] = []
+        added = 0
+        first_seq_of: dict[str, int] = {start[0].name: tail.file} if start is not None else {}
+        for line in iter_lines(self.root, start):
+            record = line.record
+            if record is None:
+                continue
+            first = first_seq_of.get(line.file)
+            if first is None:  # a rotated file's name says it; in audit.jsonl, the first record met is its first
+                match = ROTATED_RE.match(line.file)
+                first = first_seq_of[line.file] = int(match.group(1)) if match else record["seq"]
+            batch.append((record, first, line.offset, len(line.raw)))
+            if len(batch) >= 4096:
+                self.add(batch)
+                added += len(batch)
+                batch = []
+        if batch:
+            self.add(batch)
+            added += len(batch)
+        return added
+
+    def add(self, placed: Iterable[tuple[dict[str, Any], int, int, int]]) -> None:
+        """Index records just written (or read): each with its file's first seq, its offset and length."""
+        rows, defines, published, counts = [], [], [], {}
+        heads: dict[int, tuple[int, str, int]] = {}
+        last = None
+        for record, first, offset, length in placed:
+            event, order_id, name, claim = facts(record)
+            seq = record["seq"]
+            rows.append((seq, first, offset, length, event, order_id, name, claim))
+            if event == DEFINE_EVENT and isinstance(record.get("sha256"), str):
+                defines.append((ref_of(record["sha256"]), seq, record.get("kind")))
+            elif event == "published" and order_id is not None:
+                published.append((order_id, record.get("content_sha256"), seq))
+            counts[event] = counts.get(event, 0) + 1
+            heads[first] = (seq, record["hash"], offset + length)
+            last = (seq, record["hash"], first, offset, length)
+        if last is None:
+            return
+        db = self.db
+        db.execute("BEGIN IMMEDIATE")
+        try:
+            db.executemany("INSERT OR REPLACE INTO records VALUES (?,?,?,?,?,?,?,?)", rows)
+            db.executemany("INSERT OR IGNORE INTO defines VALUES (?,?,?)", defines)
+            db.executemany("INSERT OR REPLACE INTO published VALUES (?,?,?)", published)
+            db.executemany("INSERT INTO counts VALUES (?, ?) ON CONFLICT(event) DO UPDATE SET n = n + excluded.n",
+                           [(event or "", n) for event, n in counts.items()])
+            db.executemany("INSERT OR REPLACE INTO files VALUES (?,?,?,?)",
+                           [(first, seq, digest, size) for first, (seq, digest, size) in heads.items()])
+            db.executemany("INSERT OR REPLACE INTO meta VALUES (?,?)", list(zip(
+                ("tail_seq", "tail_hash", "tail_file", "tail_offset", "tail_length"), last)))
+            db.execute("COMMIT")
+        except BaseException:
+            db.execute("ROLLBACK")
+            raise
+
+    # -- questions -----------------------------------------------------------------
+
+    def place(self, seq: int) -> Place | None:
+        row = self.db.execute("SELECT seq, file, offset, length FROM records WHERE seq=?", (seq,)).fetchone()
+        return Place(*row) if row else None
+
+    def read(self, place: Place) -> dict[str, Any] | None:
+        return read_at(self.root, place.file, place.offset, place.length)
+
+    def places_of_order(self, key: str) -> list[Place]:
+        """The records of an order id, or of an input file name (with or without ``.json``), oldest first.
+
+        A file name also brings the records of the order id read from that file.
+        """
+        rows = self.db.execute(
+            "SELECT seq, file, offset, length FROM records WHERE order_id IN "
+            "(SELECT ? UNION SELECT order_id FROM records WHERE name IN (?, ?) AND order_id IS NOT NULL) "
+            "UNION SELECT seq, file, offset, length FROM records WHERE name IN (?, ?) ORDER BY 1",
+            (key, key, f"{key}.json", key, f"{key}.json")).fetchall()
+        return [Place(*row) for row in rows]
+
+    def final_of_claim(self, claim: str) -> dict[str, Any] | None:
+        rows = self.db.execute("SELECT seq, file, offset, length, event FROM records WHERE claim=? ORDER BY seq DESC",
+                               (claim,)).fetchall()
+        for seq, file, offset, length, event in rows:
+            if event in OUTCOMES:
+                return read_at(self.root, file, offset, length)
+        return None
+
+    def published_content(self, order_id: str) -> str | None:
+        row = self.db.execute("SELECT content FROM published WHERE order_id=?", (order_id,)).fetchone()
+        return row[0] if row else None
+
+    def is_published(self, order_id: str) -> bool:
+        return self.db.execute("SELECT 1 FROM published WHERE order_id=?", (order_id,)).fetchone() is not None
+
+    def defined(self, ref: str) -> bool:
+        return self.db.execute("SELECT 1 FROM defines WHERE ref=?", (ref,)).fetchone() is not None
+
+    def body(self, ref: str) -> Any:
+        """The body of a define record, read from the log (``KeyError`` when the log defines no such ref)."""
+        row = self.db.execute("SELECT r.seq, r.file, r.offset, r.length FROM defines d JOIN records r ON r.seq = d.seq "
+                              "WHERE d.ref=?", (ref,)).fetchone()
+        record = read_at(self.root, *row[1:]) if row else None
+        if record is None or ref_of(str(record.get("sha256"))) != ref:
+            raise KeyError(ref)
+        return record["body"]
+
+    def defines_of_kind(self, kind: str) -> Iterator[dict[str, Any]]:
+        for seq, file, offset, length in self.db.execute(
+                "SELECT r.seq, r.file, r.offset, r.length FROM defines d JOIN records r ON r.seq = d.seq "
+                "WHERE d.kind=? ORDER BY r.seq", (kind,)).fetchall():
+            record = read_at(self.root, file, offset, length)
+            if record is not None:
+                yield record
+
+    def counts(self) -> dict[str, int]:
+        return {event: n for event, n in self.db.execute("SELECT event, n FROM counts ORDER BY event")}
+
+    def set_verified(self, place: Place, digest: str) -> None:
+        if not self.writable:
+            return
+        values = (place.seq, digest, place.file, place.offset, place.length)
+        self.db.executemany("INSERT OR REPLACE INTO meta VALUES (?,?)", list(zip(
+            ("verified_seq", "verified_hash", "verified_file", "verified_offset", "verified_length"), values)))
+
+    def verified(self) -> tuple[Place, str] | None:
+        seq = self.meta("verified_seq")
+        if seq is None:
+            return None
+        return (Place(seq, self.meta("verified_file"), self.meta("verified_offset"), self.meta("verified_length")),
+                self.meta("verified_hash"))
+
+    def snapshot(self) -> dict[str, list[tuple]]:
+        """Every row of every table but the verified point (for comparing a rebuilt index with a live one)."""
+        tables = {}
+        for table in ("records", "defines", "published", "files", "counts"):
+            tables[table] = sorted(self.db.execute(f"SELECT * FROM {table}").fetchall(), key=repr)
+        tables["meta"] = sorted(row for row in self.db.execute("SELECT * FROM meta") if not str(row[0]).startswith("verified"))
+        return tables
