@@ -82,13 +82,12 @@ def cmd_audit_reindex(args) -> int:
 
 
 def cmd_audit_checkpoint(args) -> int:
-    from lenslane.audit.checkpoint import checkpoint_line, load_private_key, make_checkpoint
+    from lenslane.audit.checkpoint import checkpoint_line, load_private_key, load_signing_key, make_checkpoint
     from lenslane.audit.index import Index
     from lenslane.config import load_config
 
     lab = Path(args.lab)
-    key_path = args.key or load_config(lab).audit.signing_key
-    key = load_private_key(lab / key_path) if key_path else None
+    key = load_private_key(Path(args.key)) if args.key else load_signing_key(lab, load_config(lab).audit.signing_key)
     index = Index(lab)
     try:
         index.catch_up()

@@ -57,6 +57,18 @@ def load_private_key(path: Path):
     return key
 
 
+def load_signing_key(lab_root: Path, setting: str | None):
+    """The lab's checkpoint signing key (``[audit] signing_key``), or ``None`` when it signs nothing."""
+    from lenslane.config import ConfigError
+
+    if not setting:
+        return None
+    try:
+        return load_private_key(Path(lab_root) / setting)
+    except (OSError, ValueError, TypeError) as exc:
+        raise ConfigError(f"audit.signing_key: {exc}") from None
+
+
 def load_public_key(path: Path):
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
     from cryptography.hazmat.primitives.serialization import load_pem_public_key

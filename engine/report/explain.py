@@ -330,8 +330,11 @@ def _final_lenses(processing: _Processing) -> dict[str, Any]:
     lenses: dict[str, dict[str, Any]] = {}
     for record in processing.records:
         parts = str(record.get("field", "")).split(".")
-        if record.get("event") == "change" and len(parts) == 3 and parts[0] == "lenses":
-            lenses.setdefault(parts[1], {})[parts[2]] = record.get("after")
+        if record.get("event") == "change" and len(parts) >= 3 and parts[0] == "lenses":
+            place = lenses.setdefault(parts[1], {})
+            for part in parts[2:-1]:
+                place = place.setdefault(part, {})
+            place[parts[-1]] = record.get("after")
     return lenses
 
 

@@ -34,6 +34,7 @@ from collections import Counter
 from typing import Any, Callable
 
 from lenslane import __version__
+from lenslane.audit.checkpoint import load_signing_key, make_checkpoint
 from lenslane.lab.files import LabLocked, filesystem_type, is_network_file_system, lock_lab, printable
 from lenslane.lab.folder import (
     Interrupted, Lab, OrderTimeLimit, OutputBlocked, Processed, StageWontStop, Wait, is_order_name,
@@ -288,6 +289,9 @@ class Daemon:
         self.next_supervise = 0.0
         self.log: Any = None
         self.started: dict[int, float] = {}  # processed, not yet committed: when its handling started
+        self.checkpoint_seconds = lab.config.audit.checkpoint_minutes * 60
+        self.next_checkpoint = math.inf
+        self.signing_key: Any = None
 
     # -- start and stop ----------------------------------------------------------
 
@@ -320,6 +324,8 @@ class Daemon:
         self.log.info("chain", stages=[link.stage.name for link in lab.host.chain], disabled=lab.host.disabled,
                       config_sha256=lab.host.config_sha256)
         claimed = lab.recover()
+        self.signing_key = load_signing_key(lab.root, lab.config.audit.signing_key)
+        self._checkpoint()
         if claimed:
             self.log.info("recovering", claimed=len(claimed),
                           note="orders claimed but not finished when the last run ended are finished first")
@@ -344,6 +350,7 @@ class Daemon:
 
     def _finish(self) -> int:
         self._commit()  # what is processed is whole: make it final (a stop makes this one attempt only)
+        self._checkpoint()
         if self.stopping:
             self.log.info("stopping", signal=self.stop_signal, done=sum(self.counts.values()))
         if self.once:
@@ -364,6 +371,16 @@ class Daemon:
             text += f"; stopped by {self.stop_signal}"
         return text
 
+    def _checkpoint(self) -> None:
+        """Log the audit log's checkpoint line (journald keeps copies the lab folder's writer cannot reach)."""
+        self.next_checkpoint = time.monotonic() + self.checkpoint_seconds
+        if self.lab.audit is None:
+            return
+        try:
+            self.log.info("checkpoint", **make_checkpoint(self.lab.audit.index, self.signing_key))
+        except Exception as exc:  # the checkpoint is a copy for later checks; the orders go on
+            self.log.warning("checkpoint failed", error=f"{type(exc).__name__}: {exc}")
+
     def _on_stop(self, signum: int, frame: Any) -> None:
         self.stopping = True
         self.stop_signal = signal.Signals(signum).name
@@ -374,6 +391,8 @@ class Daemon:
         while not self.stopping:
             now = time.monotonic()
             self._take_hints(now)
+            if now >= self.next_checkpoint:
+                self._checkpoint()
             if not self.once:
                 if now >= self.next_scan:
                     self._scan(now)
@@ -397,7 +416,7 @@ class Daemon:
                     break
                 self._wait(upcoming - now)
             else:
-                self._wait(min(self.next_scan, self.next_supervise, upcoming) - now)
+                self._wait(min(self.next_scan, self.next_supervise, self.next_checkpoint, upcoming) - now)
         return EXIT_OK
 
     def _look_at(self, name: str) -> Any:

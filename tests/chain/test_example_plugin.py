@@ -1,6 +1,7 @@
 """The example plugin package, installed through a real entry point, in a real lab, in a child process."""
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import shutil
@@ -11,6 +12,7 @@ import sysconfig
 import pytest
 from plugin_dists import EXAMPLE, EXAMPLE_SOURCE, run_lenslane
 
+from lenslane.audit.log import Index, iter_records, unpack
 from lenslane.lab.folder import init_lab
 
 # An invented practice and wearer code. Frame PD 52 + 18 = 70 mm, so each eye is
@@ -63,12 +65,12 @@ def test_example_plugin_change_shows_in_result_audit_log_and_explain(lab, exampl
     change = [c for c in result["changes"] if c["stage"] == "edger_limits"][0]
     assert change["field"] == "lenses.right.lab.edging" and change["before"] is None
 
-    records = [json.loads(line) for line in (lab / "audit.jsonl").read_text(encoding="utf-8").splitlines()]
-    logged = [r for r in records if r["event"] == "change" and r["stage"] == "edger_limits"]
-    assert [r["field"] for r in logged] == ["lenses.right.lab.edging", "lenses.left.lab.edging"]
+    with contextlib.closing(Index(lab)) as index:  # the log's record, its story filled in from the define records
+        published = [unpack(r, index.body) for r in iter_records(lab) if r["event"] == "published"][0]
+    logged = [c for c in published["changes"] if c["stage"] == "edger_limits"]
+    assert [c["field"] for c in logged] == ["lenses.right.lab.edging", "lenses.left.lab.edging"]
     assert logged[0]["after"] == edging
-    published = [r for r in records if r["event"] == "published"][0]
-    assert published["stages"] == result["engine"]["stages"]
+    assert published["run"]["stages"] == result["engine"]["stages"]
 
     told = run_lenslane(["explain", str(lab), "EDG-0001"], example_site, lab.parent)
     assert told.returncode == 0, told.stderr
