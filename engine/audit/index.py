@@ -85,6 +85,8 @@ class Index:
 
     def _open(self) -> sqlite3.Connection:
         if self.writable:
+            if not self.path.exists():
+                self._remove()  # a journal left beside a removed index belongs to nothing now
             try:
                 return self._connect(str(self.path))
             except (sqlite3.DatabaseError, OSError):

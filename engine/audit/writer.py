@@ -55,6 +55,10 @@ class AuditLog:
         self.index_state = "level"
         self._load()
 
+    def close(self) -> None:
+        """Close the index (the log itself is opened only for each write)."""
+        self.index.close()
+
     # -- state -----------------------------------------------------------------
 
     def _load(self) -> None:

@@ -298,6 +298,8 @@ class Lab:
         ids were published, and which claims in ``work/`` already have their
         final record.
         """
+        if self.audit is not None:
+            self.audit.close()
         self.audit = self._open_audit()
         for folder in (self.outbox, self.rejected, self.held, self.archive):
             remove_temp_leftovers(folder)
