@@ -117,10 +117,6 @@ class Index:
                 elif version[0] != SCHEMA:
                     raise sqlite3.DatabaseError(f"index schema {version[0]}, this engine writes {SCHEMA}")
             db.execute("SELECT count(*) FROM meta").fetchone()
-            if create:
-                check = db.execute("PRAGMA quick_check").fetchone()
-                if check is None or check[0] != "ok":
-                    raise sqlite3.DatabaseError(f"index damaged: {check}")
         except BaseException:
             db.close()
             raise
@@ -159,6 +155,13 @@ class Index:
 
     def catch_up(self) -> str:
         """Bring the index level with the log; returns what it did: ``level``, ``caught up`` or ``rebuilt``."""
+        try:
+            return self._catch_up()
+        except sqlite3.DatabaseError:  # damaged where opening it did not look
+            self.rebuild()
+            return "rebuilt"
+
+    def _catch_up(self) -> str:
         tail = self.tail()
         if tail is None:
             if not any(p.stat().st_size for p in audit_files(self.root) if p.exists()):

@@ -82,21 +82,31 @@ def shape_of(item: Any, key: str | None = None, values: list[Any] | None = None)
     ({'after': '\\x00', 'field': 'sphere', 'reason': '\\x01from \\x01 to \\x01'}, [-4.2, -4.25, '-4.20'])
     """
     values = [] if values is None else values
-    if isinstance(item, bool) or item is None:
-        return item, values
-    if isinstance(item, (int, float)):
+    return _shape(item, key, values), values
+
+
+def _shape(item: Any, key: str | None, values: list[Any]) -> Any:
+    kind = type(item)
+    if kind is float or kind is int:
         values.append(item)
-        return _HOLE, values
-    if isinstance(item, str):
-        if key not in CONSTANT_TEXTS and _DIGIT.search(item) and _TEXT not in item:
+        return _HOLE
+    if kind is str:
+        if key not in CONSTANT_TEXTS and _TEXT not in item and _DIGIT.search(item):
             pieces = _NUMBER_IN_TEXT.split(item)
             values.extend(_as_number(token) for token in pieces[1::2])
-            return _TEXT + _TEXT.join(pieces[0::2]), values
-        return (_ESCAPE + item if item[:1] in (_HOLE, _TEXT, _ESCAPE) else item), values
-    if isinstance(item, (list, tuple)):
-        return [shape_of(part, key, values)[0] for part in item], values
-    if isinstance(item, dict):
-        return {k: shape_of(item[k], k, values)[0] for k in sorted(item)}, values
+            return _TEXT + _TEXT.join(pieces[0::2])
+        return _ESCAPE + item if item[:1] in (_HOLE, _TEXT, _ESCAPE) else item
+    if kind is dict:
+        return {k: _shape(item[k], k, values) for k in sorted(item)}
+    if kind is list or kind is tuple:
+        return [_shape(part, key, values) for part in item]
+    if item is None or kind is bool:
+        return item
+    if isinstance(item, (int, float)) and not isinstance(item, bool):  # a numpy scalar, say
+        values.append(item.item() if hasattr(item, "item") else item)
+        return _HOLE
+    if hasattr(item, "tolist"):  # a numpy array
+        return _shape(item.tolist(), key, values)
     raise TypeError(f"cannot record a {type(item).__name__} in the audit log")
 
 
@@ -214,10 +224,13 @@ def unpack(record: dict[str, Any], body_of: Callable[[str], Any]) -> dict[str, A
     return whole
 
 
-def refs_in(record: dict[str, Any]) -> list[str]:
-    """The define refs a record refers to (for checking that each was defined before it)."""
-    refs = [pair[0] for name in STORY_FIELDS if isinstance(record.get(name), list)
-            for pair in record[name] if isinstance(pair, list) and pair and isinstance(pair[0], str)]
+def refs_in(record: dict[str, Any]) -> list[str | None]:
+    """The define refs a record refers to (``None`` for a story item that is not a ``[ref, numbers]`` pair)."""
+    refs: list[str | None] = []
+    for name in STORY_FIELDS:
+        items = record.get(name)
+        if type(items) is list:
+            refs += [pair[0] if type(pair) is list and pair and type(pair[0]) is str else None for pair in items]
     if isinstance(record.get("run"), str):
         refs.append(record["run"])
     if record.get("event") == DEFINE_EVENT and record.get("kind") == "run":

@@ -161,10 +161,13 @@ class _ChainWalker:
                 self._break(line, record["seq"], "edited", "a define record whose body does not match its sha256")
                 return
             self.defined.add(ref_of(digest))
-        for ref in refs_in(record):
-            if ref not in self.defined and not (self.index is not None and self._defined_before(ref)):
-                self._break(line, record["seq"], "undefined",
-                            f"refers to {ref}, which no define record before it holds")
+        refs = refs_in(record)
+        if refs and not self.defined.issuperset(refs):
+            for ref in refs:
+                if ref not in self.defined and not (ref and self.index is not None and self._defined_before(ref)):
+                    self._break(line, record["seq"], "undefined",
+                                f"refers to {ref}, which no define record before it holds")
+                    break
 
     def _defined_before(self, ref: str) -> bool:
         row = self.index.db.execute("SELECT seq FROM defines WHERE ref=?", (ref,)).fetchone()
@@ -374,8 +377,14 @@ def _is_result_path(path: str) -> bool:
 
 def _check_outbox(root: Path, published: dict[str, tuple[str, int, str]], report: VerifyReport,
                   index: Index | None) -> None:
+    try:
+        names = set(os.listdir(root / "outbox"))
+    except FileNotFoundError:
+        names = set()
     for path, (sha256, seq, where) in sorted(published.items()):
         try:
+            if path.removeprefix("outbox/") not in names:
+                raise FileNotFoundError(path)
             data = (root / path).read_bytes()
         except FileNotFoundError:
             report.results_gone += 1
@@ -388,12 +397,8 @@ def _check_outbox(root: Path, published: dict[str, tuple[str, int, str]], report
                 path, seq, "result",
                 f"the result was changed after it was published: its sha256 is {actual}, the log recorded "
                 f"{sha256} ({where})"))
-    try:
-        names = sorted(os.listdir(root / "outbox"))
-    except FileNotFoundError:
-        return
     in_flight = None
-    for name in names:
+    for name in sorted(names):
         if not name.endswith(".json") or name.startswith(".") or f"outbox/{name}" in published:
             continue
         if index is not None and index.is_published(name.removesuffix(".json")):
