@@ -19,7 +19,9 @@ from lenslane import Change, Flag, Stage, hookimpl
 from lenslane.plugins.optics.front_curve import (
     FRONT_CURVE_METHODS, ROTATION_DISTANCE_MM, NoBestForm, front_curve, front_curve_method, nearest_stocked_base,
 )
-from lenslane.plugins.optics.outline import DEFAULT_EXPONENT, decentration, modelled_outline, optical_centre
+from lenslane.plugins.optics.outline import (
+    DEFAULT_EXPONENT, blank_diameter_from_farthest_mm, decentration, modelled_outline, optical_centre,
+)
 from lenslane.plugins.optics.power import power_matrix, spherical_equivalent
 from lenslane.plugins.optics.thickness import (
     EdgedLens, LensNotMakeable, LensRequest, LensShape, OutlineGrid, edged_lenses, lens_weight_g, outline_grid,
@@ -321,8 +323,7 @@ def _eye_geometry(view, eye, params, shared: _Shared, lens: _Prepared, solved: E
     minimums, min_edge, index, front = shared.minimums, shared.min_edge, shape.index, choice.curve_d
     allowance = params.blank_allowance_mm
     volume = solved.volume_mm3
-    # The rule of blank_diameter_mm, from the distances the solution has already worked out.
-    blank = 2.0 * solved.farthest_mm + allowance
+    blank = blank_diameter_from_farthest_mm(solved.farthest_mm, allowance)
     weight = lens_weight_g(volume, shared.material.density)
 
     binding = solved.binding
@@ -346,7 +347,7 @@ def _eye_geometry(view, eye, params, shared: _Shared, lens: _Prepared, solved: E
                                 "mount": frame.mount, "index": index},
         "edge_min_mm": edges_inputs,
         "edge_max_mm": edges_inputs,
-        "blank_min_diameter_mm": {"farthest_mm": (blank - allowance) / 2.0, "allowance_mm": allowance,
+        "blank_min_diameter_mm": {"farthest_mm": solved.farthest_mm, "allowance_mm": allowance,
                                   "decentration_in_mm": offset.inward_mm, "decentration_up_mm": offset.upward_mm},
         "weight_g": {"volume_cm3": volume / 1000.0, "density_g_cm3": shared.material.density},
         "optical_centre_mm": {"pd_mm": fit.pd_mm, "height_mm": fit.height_mm},

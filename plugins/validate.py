@@ -10,7 +10,7 @@ from typing import Annotated
 from pydantic import BaseModel, ConfigDict, Field
 
 from lenslane import Flag, Stage, hookimpl
-from lenslane.plugins.optics.outline import outline_extent
+from lenslane.plugins.optics.outline import decentration as inward_decentration, outline_extent
 
 
 class ValidateParams(BaseModel):
@@ -33,12 +33,12 @@ class ValidateParams(BaseModel):
 def _fit_checks(view, params: ValidateParams):
     order = view.order
     frame = order.frame
-    half_frame_pd = (frame.box_width_mm + frame.bridge_mm) / 2.0
     pds = {}
     for eye in view.eyes:
         fit = getattr(order.fit, eye)
         pds[eye] = fit.pd_mm
-        decentration = half_frame_pd - fit.pd_mm
+        decentration = inward_decentration(frame.box_width_mm, frame.bridge_mm, frame.box_height_mm, fit.pd_mm).inward_mm
+        half_frame_pd = decentration + fit.pd_mm
         if decentration > params.max_decentration_mm:
             yield Flag(
                 "decentration-large", "warning",

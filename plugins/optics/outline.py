@@ -329,7 +329,23 @@ def blank_diameter_mm(points_mm: np.ndarray, centre_mm: tuple[float, float], all
     64.0
     """
     offsets = np.asarray(points_mm, dtype=float) - np.asarray(centre_mm, dtype=float)
-    return 2.0 * float(np.max(np.hypot(offsets[:, 0], offsets[:, 1]))) + allowance_mm
+    return blank_diameter_from_farthest_mm(float(np.max(np.hypot(offsets[:, 0], offsets[:, 1]))), allowance_mm)
+
+
+def blank_diameter_from_farthest_mm(farthest_mm: float, allowance_mm: float = 2.0) -> float:
+    """The smallest blank from the distance of the farthest outline point to the optical centre: ``2 r + allowance``.
+
+    References
+    ----------
+    Minimum blank size, as in dispensing texts (e.g. Brooks & Borish, *System
+    for Ophthalmic Dispensing*).
+
+    Examples
+    --------
+    >>> blank_diameter_from_farthest_mm(31.0)
+    64.0
+    """
+    return 2.0 * farthest_mm + allowance_mm
 
 
 def blank_diameter_from_ed_mm(effective_diameter_mm: float, inward_mm: float, allowance_mm: float = 2.0) -> float:
