@@ -274,12 +274,29 @@ def test_tilt_design_switch_leaves_single_vision_alone():
     # pantoscopic tilt should not also compensate — a per-design policy.
     data = json.loads(SAMPLE.read_text())
     data["lens"]["design"] = "single_vision"
-    host = _host(tilt={"apply_to": ["progressive", "bifocal"]})
+    host = _host(tilt={"pantoscopic_apply_to": ["progressive", "bifocal"],
+                       "face_form_apply_to": ["progressive", "bifocal"]})
     result = run_order(host, data)
     assert not [c for c in result["changes"] if c["stage"] == "tilt"]
     assert [c for c in result["changes"] if c["stage"] == "vertex"]
     flag = next(f for f in result["flags"] if f["code"] == "tilt-not-applied")
     assert "single-vision" in flag["message"]
+
+
+def test_face_form_is_compensated_on_a_design_left_out_for_pantoscopic_tilt(order_dict):
+    # Source: DOMAIN.md — lowering the optical centre (Atchison & Tame 1993) answers pantoscopic tilt only, so
+    # a lab may leave single vision out of the pantoscopic compensation and still compensate its face form.
+    # Martin's formula for face form alone: the cylinder's axis is 90 (DOMAIN.md, tilt about the vertical).
+    order_dict["rx"] = {"right": {"sphere": -4.0}, "left": {"sphere": -4.0}}
+    order_dict["fit"].update({"pantoscopic_deg": 10.0, "face_form_deg": 20.0})
+    result = run_order(_host(tilt={"pantoscopic_apply_to": ["progressive", "bifocal"]}), order_dict)
+    [right] = [c for c in result["changes"] if c["stage"] == "tilt" and c["field"] == "lenses.right.surfacing"]
+    assert right["inputs"]["pantoscopic_deg"] == 0.0 and right["inputs"]["face_form_deg"] == 20.0
+    assert any("pantoscopic tilt 10.0° not compensated" in a for a in right["inputs"]["assumptions"])
+    surfacing = result["lenses"]["right"]["surfacing"]
+    # Face form alone turns the lens about the vertical: its principal meridians stay at 90 and 180, where a
+    # pantoscopic tilt mixed in would have turned them.
+    assert surfacing["cylinder"] != 0.0 and surfacing["axis"] in (90, 180)
 
 
 def test_unknown_stage_key_stops_the_engine():
