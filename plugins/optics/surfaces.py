@@ -274,6 +274,37 @@ def back_surface_power(front_d: float, back_vertex_d: float, thickness_mm: float
     return back_vertex_d - front_d / (1.0 - (thickness_mm / 1000.0 / index) * front_d)
 
 
+def front_surface_power(back_vertex_d: float, back_d: float, thickness_mm: float, index: float) -> float:
+    """The front surface power that, with a given back surface, gives the wanted back vertex power.
+
+    Parameters
+    ----------
+    back_vertex_d : float
+        The wanted back vertex power, dioptres.
+    back_d : float
+        The back surface power, dioptres (e.g. the flattest concave back a lab accepts).
+    thickness_mm, index : float
+        Centre thickness (mm) and refractive index.
+
+    Returns
+    -------
+    float
+        ``F₁ = V / (1 + (t/n) V)`` with ``V = Fv − F₂``, dioptres: :func:`back_vertex_power`
+        solved for the front.
+
+    References
+    ----------
+    Jalie, *The Principles of Ophthalmic Lenses* (back vertex power of a thick lens, solved for the front).
+
+    Examples
+    --------
+    >>> round(front_surface_power(6.4166667, -4.0, 6.0, 1.5), 4)
+    10.0
+    """
+    vergence = back_vertex_d - back_d
+    return vergence / (1.0 + (thickness_mm / 1000.0 / index) * vergence)
+
+
 def back_surface_power_slope(front_d: float, thickness_mm: float, index: float) -> float:
     """How the back surface power of :func:`back_surface_power` changes with the centre thickness (D per mm).
 

@@ -128,3 +128,12 @@ def test_the_back_surface_slope_is_the_derivative_of_the_back_surface_power(fron
     numeric = (back_surface_power(front_d, 3.0, thickness_mm + h, index)
                - back_surface_power(front_d, 3.0, thickness_mm - h, index)) / (2 * h)
     assert back_surface_power_slope(front_d, thickness_mm, index) == pytest.approx(numeric, rel=1e-6)
+
+
+@pytest.mark.parametrize("front_d, back_d, thickness_mm, index", [(10.0, -4.0, 6.0, 1.5), (8.0, -0.5, 9.0, 1.6)])
+def test_the_front_for_a_back_inverts_the_back_vertex_power(front_d, back_d, thickness_mm, index):
+    # Source: DOMAIN.md worked example F₁ +10, F₂ −4, t 6 mm, n 1.5 → Fv +6.417, and Fv = F₁/(1 − (t/n)F₁) + F₂
+    # (Jalie) solved back for F₁.
+    from lenslane.plugins.optics.surfaces import front_surface_power
+    vertex_power = back_vertex_power(front_d, back_d, thickness_mm, index)
+    assert front_surface_power(vertex_power, back_d, thickness_mm, index) == pytest.approx(front_d, abs=1e-9)
