@@ -219,10 +219,12 @@ def test_the_hard_limits_are_the_labs(default_host, order_dict):
 def test_a_registered_method_can_be_named_in_the_config(order_dict):
     # A method plugs in by name (as the exact best form will); the config is validated against the registry.
     name = "test_plano_plus_seven"
-    if name not in FRONT_CURVE_METHODS:
-        register_front_curve_method(FrontCurveMethod(name, lambda request: 7.0, "a fixed 7 D front", "Test only"))
-    assert front_curve(name, FrontCurveRequest(-2.0)) == 7.0
-    result = run_order(host_with(f'[stages.geometry]\nfront_curve_method = "{name}"\n'), order_dict)
-    assert geometry(result)["front_curve_d"] == 7.0 and "a fixed 7 D front" in change(result)["method"]
-    with pytest.raises(ValueError, match="registered already"):
-        register_front_curve_method(FrontCurveMethod(name, lambda request: 6.0, "again", "Test only"))
+    register_front_curve_method(FrontCurveMethod(name, lambda request: 7.0, "a fixed 7 D front", "Test only"))
+    try:
+        assert front_curve(name, FrontCurveRequest(-2.0)) == 7.0
+        result = run_order(host_with(f'[stages.geometry]\nfront_curve_method = "{name}"\n'), order_dict)
+        assert geometry(result)["front_curve_d"] == 7.0 and "a fixed 7 D front" in change(result)["method"]
+        with pytest.raises(ValueError, match="registered already"):
+            register_front_curve_method(FrontCurveMethod(name, lambda request: 6.0, "again", "Test only"))
+    finally:
+        del FRONT_CURVE_METHODS[name]  # the registry is the process's: leave it as found
