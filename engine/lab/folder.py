@@ -224,6 +224,11 @@ def _content_key(content_sha256: str | None) -> bytes | None:
     return bytes.fromhex(content_sha256)[:16] if content_sha256 else None
 
 
+def note_published(lab: "Lab", order_id: str, content_sha256: str | None) -> None:
+    """An order id published with this content by something other than the inbox (a person's replace)."""
+    lab.published[order_id] = _content_key(content_sha256)
+
+
 def _report_bytes(report: dict[str, Any]) -> bytes:
     return json.dumps(report, ensure_ascii=False, indent=1).encode("utf-8", "backslashreplace") + b"\n"
 
