@@ -14,7 +14,8 @@ import time
 from pathlib import Path
 
 from lenslane.decide import requests
-from lenslane.decide.model import EXIT_NOT_TAKEN, EXIT_USAGE, DecisionError, DecisionResult
+from lenslane.audit.log import AuditError
+from lenslane.decide.model import EXIT_BLOCKED, EXIT_NOT_TAKEN, EXIT_USAGE, DecisionError, DecisionResult
 from lenslane.lab.files import LabLocked, lock_lab
 
 #: How long to wait for a running engine to answer (s); it normally answers in milliseconds.
@@ -84,8 +85,13 @@ def _apply_if_free(root: Path) -> str | None:
 
         if requests.pending(root):
             lab = Lab(root, start_host(load_config(root)))
-            lab.recover()  # as any holder of the lock does first: the log's tail, temp leftovers
-            Applier(lab).run_pending()
+            try:
+                lab.recover()  # as any holder of the lock does first: the log's tail, temp leftovers
+                Applier(lab).run_pending()
+            except (OSError, AuditError) as exc:
+                raise DecisionError(f"cannot write in {root}: {exc}; the decision is applied once or not at all — it "
+                                    "stays in decisions/ and is applied by the next lenslane watch or decide",
+                                    EXIT_BLOCKED) from exc
     finally:
         os.close(lock)
     return None

@@ -8,6 +8,7 @@ from typing import Any
 ACTIONS = {"approve": "review", "refuse": "review", "replace": "held", "discard": "held"}
 
 EXIT_OK = 0
+EXIT_BLOCKED = 1  # the lab could not be written (disk full…); the request stays and is applied later
 EXIT_USAGE = 2  # a request that is not well formed (argparse uses 2 too)
 EXIT_UNKNOWN = 4  # the lab has no such order
 EXIT_NOT_AWAITING = 5  # not waiting for this decision: decided already, or waiting for another kind
