@@ -23,6 +23,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import time
 from pathlib import Path
 from typing import Any
 
@@ -63,6 +64,7 @@ class Applier:
     def run_pending(self) -> list[tuple[dict[str, Any] | None, DecisionResult | DecisionError]]:
         """Apply every waiting request, oldest first; each is answered and removed."""
         done = []
+        requests.remove_stale_answers(self.root, time.time())
         for path in requests.pending(self.root):
             request = None
             try:

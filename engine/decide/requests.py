@@ -28,6 +28,8 @@ from lenslane.lab.files import write_durably
 FORMAT = "lens-decision-request/1"
 ANSWER_SUFFIX = ".answer.json"
 TAKEN_SUFFIX = ".taken"
+#: An answer no one came for (the person's command was stopped) is removed after this long (s).
+ANSWER_KEEP_SECONDS = 3600.0
 #: Longest name and note a request may carry (characters).
 MAX_BY, MAX_NOTE = 200, 4000
 
@@ -131,3 +133,18 @@ def read_answer(request_path: Path) -> DecisionResult | DecisionError | None:
     if answer.get("ok"):
         return DecisionResult(**answer["decision"])
     return DecisionError(answer["message"], int(answer["exit_code"]))
+
+
+def remove_stale_answers(lab_root: Path, now: float) -> None:
+    """Answers whose asker stopped waiting: the audit log keeps the decision, the answer is only a reply."""
+    try:
+        names = os.listdir(folder(lab_root))
+    except FileNotFoundError:
+        return
+    for name in names:
+        path = folder(lab_root) / name
+        try:
+            if name.endswith(ANSWER_SUFFIX) and now - path.stat().st_mtime > ANSWER_KEEP_SECONDS:
+                path.unlink()
+        except FileNotFoundError:
+            pass
