@@ -259,6 +259,22 @@ def start_observer(setting: str, inbox: str, handler: InboxEvents,
 # --------------------------------------------------------------------------
 
 
+#: A `lenslane decide` applying a decision while no engine runs holds the lab's lock for a moment
+#: (well under a second): an engine starting meanwhile waits this long for it before giving up (s).
+LOCK_WAIT_SECONDS = 3.0
+
+
+def _lock_waiting(root: Any) -> int:
+    deadline = time.monotonic() + LOCK_WAIT_SECONDS
+    while True:
+        try:
+            return lock_lab(root)
+        except LabLocked:
+            if time.monotonic() >= deadline:
+                raise
+            time.sleep(0.05)
+
+
 class Daemon:
     """One lab's loop; :meth:`run` returns the process exit code."""
 
@@ -297,7 +313,7 @@ class Daemon:
         # Bound once: a logger proxy would bind itself again on every line.
         self.log = configure_logging(sys.stderr if self.once else sys.stdout).bind()
         try:
-            lock = lock_lab(self.lab.root)
+            lock = _lock_waiting(self.lab.root)
         except LabLocked as exc:
             self.log.error("lab locked", lab=str(self.lab.root), lock=str(exc.path), holder_pid=exc.holder,
                            message="another lenslane watch is working on this lab; refusing to start")
