@@ -8,8 +8,10 @@ took it), so the person is told plainly that nothing was decided.
 """
 from __future__ import annotations
 
+import contextlib
 import os
 import signal
+import threading
 import time
 from pathlib import Path
 
@@ -87,7 +89,8 @@ def _apply_if_free(root: Path) -> str | None:
             lab = Lab(root, start_host(load_config(root)))
             try:
                 lab.recover()  # as any holder of the lock does first: the log's tail, temp leftovers
-                Applier(lab).run_pending()
+                with _time_limit(lab):
+                    Applier(lab).run_pending()
             except (OSError, AuditError) as exc:
                 raise DecisionError(f"cannot write in {root}: {exc}; the decision is applied once or not at all — it "
                                     "stays in decisions/ and is applied by the next lenslane watch or decide",
@@ -95,6 +98,28 @@ def _apply_if_free(root: Path) -> str | None:
     finally:
         os.close(lock)
     return None
+
+
+@contextlib.contextmanager
+def _time_limit(lab):
+    """A replace runs the chain: bound it by ``watch.order_time_limit_seconds`` as the engine does.
+
+    The limit rides on SIGALRM, which only the main thread can receive; called from another thread (a web
+    server's worker) the chain runs unbounded, as a preview does.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    from lenslane.watch.daemon import StageClock
+
+    clock = StageClock(lab.config.watch.order_time_limit_seconds)
+    previous = signal.signal(signal.SIGALRM, clock.on_alarm)
+    lab.time_limit = clock
+    try:
+        yield
+    finally:
+        signal.setitimer(signal.ITIMER_REAL, 0)
+        signal.signal(signal.SIGALRM, previous)
 
 
 def _wake(holder: str) -> None:

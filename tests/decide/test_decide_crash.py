@@ -162,3 +162,27 @@ def test_a_request_no_engine_takes_is_withdrawn(tmp_path):
         stopped.process.send_signal(signal.SIGCONT)
         assert stopped.stop() == 0
     assert snapshot(lab) == before and records(lab, "decided") == []
+
+
+def test_a_replacing_version_the_chain_refuses_leaves_the_published_result(tmp_path, fault_plugin):
+    """The replace runs the chain under the order time limit, even with no engine running."""
+    import json
+
+    from tests.system.driver import FAST_WATCH, FAULT_CHAIN
+
+    lab = make_lab_folder(tmp_path / "lab", {**FAST_WATCH, "order_time_limit_seconds": 1.0}, chain=FAULT_CHAIN)
+    drop(lab, "OK-0001.json", json.dumps(ready_order("OK-0001")).encode())
+    assert lenslane("watch", str(lab), "--once", env=fault_plugin).returncode == 0
+    hanging = {**ready_order("OK-0001"), "wearer": {"ref": "HANG"}}
+    drop(lab, "OK-0001-hang.json", json.dumps(hanging).encode())
+    assert lenslane("watch", str(lab), "--once", env=fault_plugin).returncode == 0
+    before = sha256(lab / "outbox" / "OK-0001.json")
+    done = lenslane("decide", str(lab), "OK-0001", "replace", "--by", "tech-07", "--note", "new wearer ref",
+                    env=fault_plugin)
+    assert done.returncode == 0, done.stderr
+    assert "refused by the chain" in done.stdout and "order time limit" in done.stdout
+    assert sha256(lab / "outbox" / "OK-0001.json") == before
+    assert (lab / "rejected" / "OK-0001-hang.json").exists() and os.listdir(lab / "held") == []
+    (rejected,) = records(lab, "rejected", "OK-0001")
+    assert rejected["revision"] == 2 and "order time limit" in rejected["reasons"][0]["message"]
+    assert verify(lab).ok
