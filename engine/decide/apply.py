@@ -37,7 +37,9 @@ from lenslane.decide.model import (
     ACTIONS, EXIT_MISMATCH, EXIT_NOT_AWAITING, EXIT_UNKNOWN, EXIT_USAGE, DecisionError, DecisionResult,
 )
 from lenslane.lab.files import claim_tag, free_name, fsync_dir, printable, write_durably
-from lenslane.lab.folder import ERRORS_SUFFIX, HELD_SUFFIX, Lab, note_published, order_events, result_bytes
+from lenslane.lab.folder import (
+    ERRORS_SUFFIX, HELD_SUFFIX, Lab, StageWontStop, note_published, order_events, result_bytes,
+)
 
 #: Tests only: ``LENSLANE_DECISION_FAULT=<step>`` ends the process abruptly right after a step, as a crash would.
 FAULT_VARIABLE = "LENSLANE_DECISION_FAULT"
@@ -172,7 +174,7 @@ class Applier:
                 result = outcome.result
             except StageFailure as exc:
                 reasons = [{"field": f"(stage {exc.stage})", "message": exc.message}]
-            except Exception as exc:  # a stage or hook that fails, or the time limit: the new version is refused
+            except (Exception, StageWontStop) as exc:  # a stage or hook that fails, the time limit: refused
                 reasons = [{"field": "(engine)", "message": f"{type(exc).__name__}: {exc}"}]
         revision = log.revision + 1
         received = {"event": "received", "file": printable(name), "size": len(data),

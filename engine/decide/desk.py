@@ -22,7 +22,7 @@ from lenslane.chain.host import start_host
 from lenslane.config import CONFIG_NAME, ConfigError, LabConfig, parse_config
 from lenslane.decide.apply import Applier
 from lenslane.decide.model import DecisionError
-from lenslane.lab.folder import Lab
+from lenslane.lab.folder import Interrupted, Lab
 
 #: How often the warning about a config file that differs from the one in force is repeated (s).
 DRIFT_WARN_SECONDS = 300.0
@@ -67,6 +67,10 @@ class Desk:
         except (OSError, AuditError) as exc:  # a full disk…: what was taken stays taken, retried at the next check
             self.log.error("decision blocked", error=str(exc),
                            message="cannot write a decision; it is applied once or not at all, and retried")
+            return
+        except Interrupted:  # a stop while a replace ran the chain: nothing recorded, finished at the next start
+            self.log.warning("interrupted", message="a decision's chain was still running at shutdown; it stays in "
+                                                    "decisions/ and is applied at the next start")
             return
         for request, outcome in done:
             fields = {k: request.get(k) for k in ("order_id", "action", "by", "request")} if request else {}
