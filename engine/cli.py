@@ -154,8 +154,8 @@ def build_parser() -> argparse.ArgumentParser:
     commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     sub = commands.add_parser("init", help="make a lab folder (idempotent)", description="Make LAB/inbox, outbox, "
-                              "rejected, archive, work, an empty audit.jsonl and a commented lenslane.toml. "
-                              "Never overwrites an existing config.")
+                              "review, held, rejected, archive, work, decisions, an empty audit.jsonl and a commented "
+                              "lenslane.toml. Never overwrites an existing config.")
     sub.add_argument("lab", metavar="LAB")
     sub.set_defaults(func=cmd_init)
 
