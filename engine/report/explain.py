@@ -337,8 +337,11 @@ def _check_result_files(lab_root: Path, stories: list[dict[str, Any]],
     """Say, for the last result placed at each path, whether the file is still what was placed there."""
     latest: dict[str, dict[str, Any]] = {}
     placed = [(s["processings_seq"], s["outcome"]) for s in stories] + [(d["seq"], d) for d in decisions or []]
+    inputs = {story["outcome"].get("input"): story["outcome"] for story in stories if story["outcome"].get("input")}
     for _, outcome in sorted(placed, key=lambda item: item[0] or 0):
         for move in outcome.get("moves") or ():
+            if move.get("from") in inputs and move.get("to"):  # a held input, archived or refused by a decision
+                inputs[move["from"]]["input"] = move["to"]
             if move.get("from") in latest:
                 moved = latest.pop(move["from"])
                 to = f"moved to {move['to']}" if move.get("to") else "removed"

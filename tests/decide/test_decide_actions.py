@@ -88,6 +88,7 @@ def test_replace_publishes_the_next_revision_and_keeps_the_superseded_result(lab
     story = render(order_story(root, "OK-0001"))
     assert "== Decision: replace by tech-07" in story and "revision 2 (supersedes sha256 " + old_sha in story
     assert "moved to archive/OK-0001.r1.json by the replace decision" in story
+    assert story.count("Input:    now archive/OK-0001-corrected.json") == 2  # the held pass and revision 2
 
 
 def test_a_replacing_revision_that_needs_a_person_goes_to_review(make_lab, drop):
