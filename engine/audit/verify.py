@@ -11,20 +11,17 @@ from __future__ import annotations
 
 import hashlib
 import os
-import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import orjson
-
 from lenslane.audit.index import Index, Place
+from lenslane.audit.results import ResultFiles, check as check_results, present_in
 from lenslane.audit.reader import (
     ROTATED_RE, Line, audit_files, file_of, iter_lines, parse_record, read_tail, rotated_name,
 )
 from lenslane.audit.records import DEFINE_EVENT, GENESIS, OUTCOMES, TORN_EVENT, canonical, record_hash, ref_of, refs_in
 
-RESULT_RE = re.compile(r"^outbox/[A-Za-z0-9_-][A-Za-z0-9._-]*\.json$")
 _HASH_SUFFIX = len(b',"hash":"') + 64 + len(b'"}\n')
 
 
@@ -52,6 +49,7 @@ class VerifyReport:
     rejected: int = 0
     results_matching: int = 0
     results_gone: int = 0
+    other_results_matching: dict[str, int] = field(default_factory=dict)  # review/, rejected/, archive/
     bytes: int = 0
     breaks: list[Finding] = field(default_factory=list)
     result_problems: list[Finding] = field(default_factory=list)
@@ -61,6 +59,12 @@ class VerifyReport:
     @property
     def ok(self) -> bool:
         return not self.breaks and not self.result_problems
+
+    def _others(self) -> str:
+        """Results the log accounts for outside outbox/: waiting for review, refused, superseded."""
+        named = {"review": "in review/", "rejected": "refused in rejected/", "archive": "superseded in archive/"}
+        parts = [f"{count} {named.get(folder, folder)}" for folder, count in sorted(self.other_results_matching.items())]
+        return f"; also matching: {', '.join(parts)}" if parts else ""
 
     def summary(self) -> str:
         """One line: intact, or the first thing broken."""
@@ -75,7 +79,7 @@ class VerifyReport:
                      else f"{self.records} records (seq 1–{self.last_seq})")
             return (f"audit log intact: {scope} in {files}; {self.published} published, {self.rejected} rejected; "
                     f"{self.results_matching} outbox results match the log, {self.results_gone} no longer in the "
-                    f"outbox{artefacts}")
+                    f"outbox{self._others()}{artefacts}")
         first = (self.breaks or self.result_problems)[0]
         total = len(self.breaks) + len(self.result_problems)
         more = f" (and {total - 1} more problem(s))" if total > 1 else ""
@@ -271,10 +275,6 @@ class _ChainWalker:
         return finding
 
 
-def result_path(record: dict[str, Any]) -> str:
-    return str(record.get("result") or f"outbox/{record.get('order_id')}.json")
-
-
 def verify(lab_root: Path, full: bool = False, index: Index | None = None) -> VerifyReport:
     """Check the lab's audit log and the outbox against it; incrementally unless ``full``.
 
@@ -347,7 +347,7 @@ def _line_at(root: Path, place: Place) -> Line | None:
 def _walk(root: Path, report: VerifyReport, index: Index, start_line: Line | None,
           start: tuple[Path, int] | None) -> None:
     walker = _ChainWalker(report, index if start is not None else None, start_line)
-    published: dict[str, tuple[str, int, str]] = {}  # result path → (sha256, seq, where)
+    results = ResultFiles(present=present_in(root))  # which result files the log accounts for
     files = audit_files(root)
     if start is not None:
         files = [p for p in files if p.name == start[0].name or files.index(p) > files.index(start[0])]
@@ -359,77 +359,36 @@ def _walk(root: Path, report: VerifyReport, index: Index, start_line: Line | Non
         walker.add(line, first_of_file and line.record is not None)
         if line.record is not None:
             first_of_file = False
-        record = line.record
-        if record is not None and record.get("event") == "published":
-            path = result_path(record)
-            if _is_result_path(path):
-                published[path] = (str(record.get("result_sha256")), record["seq"], line.where)
-            else:
-                report.breaks.append(Finding(line.where, record["seq"], "damaged",
-                                             f"names a result {path!r} outside outbox/"))
+        if line.record is not None:
+            for problem in results.add(line.record, line.where):
+                report.breaks.append(Finding(line.where, line.record["seq"], "damaged", problem))
     walker.finish(files[-1].name if files else None)
-    _check_outbox(root, published, report, index if start is not None else None)
+    _check_results(root, results, report, index if start is not None else None)
 
 
-def _is_result_path(path: str) -> bool:
-    return RESULT_RE.match(path) is not None
-
-
-def _check_outbox(root: Path, published: dict[str, tuple[str, int, str]], report: VerifyReport,
-                  index: Index | None) -> None:
-    try:
-        names = set(os.listdir(root / "outbox"))
-    except FileNotFoundError:
-        names = set()
-    for path, (sha256, seq, where) in sorted(published.items()):
-        try:
-            if path.removeprefix("outbox/") not in names:
-                raise FileNotFoundError(path)
-            data = (root / path).read_bytes()
-        except FileNotFoundError:
-            report.results_gone += 1
-            continue
-        actual = hashlib.sha256(data).hexdigest()
-        if actual == sha256:
-            report.results_matching += 1
-        else:
-            report.result_problems.append(Finding(
-                path, seq, "result",
-                f"the result was changed after it was published: its sha256 is {actual}, the log recorded "
-                f"{sha256} ({where})"))
-    in_flight = None
-    for name in sorted(names):
-        if not name.endswith(".json") or name.startswith(".") or f"outbox/{name}" in published:
-            continue
-        if index is not None and index.is_published(name.removesuffix(".json")):
-            continue  # published before the point this check started from
-        in_flight = _orders_in_work(root) if in_flight is None else in_flight
-        if name.removesuffix(".json") in in_flight:
-            # Published, then the engine stopped before its records were on disk: it redoes the order at start.
-            report.notes.append(f"outbox/{name}: its order is still in work/ (claimed, not finished); "
-                                "the engine redoes it and records it when it next starts")
-            continue
+def _check_results(root: Path, results: ResultFiles, report: VerifyReport, index: Index | None) -> None:
+    """Compare the result folders with what the walked records account for (and, from a verified point, the index)."""
+    checked = check_results(root, results)
+    report.results_matching = checked.matching.get("outbox", 0)
+    report.other_results_matching = {k: v for k, v in checked.matching.items() if k != "outbox"}
+    report.results_gone = checked.gone
+    for path, placed, actual in checked.changed:
         report.result_problems.append(Finding(
-            f"outbox/{name}", None, "result",
+            path, placed.seq, "result",
+            f"the result was changed after it was published: its sha256 is {actual}, the log recorded "
+            f"{placed.sha256} ({placed.where})"))
+    for path, why in checked.in_flight:
+        report.notes.append(f"{path}: {why}")
+    for path in checked.unaccounted:
+        if index is not None and _known_before(index, path):
+            continue  # accounted for by records before the point this check started from
+        report.result_problems.append(Finding(
+            path, None, "result",
             "no published record in the audit log accounts for this result: records were removed from the end "
             "of the log, or the file was not written by the engine"))
 
 
-def _orders_in_work(root: Path) -> set[str]:
-    """The order ids of the inputs claimed but not yet archived."""
-    ids = set()
-    try:
-        names = os.listdir(root / "work")
-    except FileNotFoundError:
-        return ids
-    for name in names:
-        try:
-            order_id = orjson.loads((root / "work" / name).read_bytes()).get("order_id")
-        except (OSError, ValueError, AttributeError):
-            continue
-        if isinstance(order_id, str):
-            ids.add(order_id)
-    return ids
-
-
-__all__ = ["Finding", "VerifyReport", "verify", "OUTCOMES"]
+def _known_before(index: Index, path: str) -> bool:
+    order_id = path.split("/", 1)[1].removesuffix(".json")
+    return index.db.execute("SELECT 1 FROM records WHERE order_id=? AND event IN ('published', 'decided') LIMIT 1",
+                            (order_id,)).fetchone() is not None

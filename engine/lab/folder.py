@@ -52,7 +52,8 @@ from lenslane.contract.intake import OrderRejected, parse_json, read_order
 from lenslane.contract.models import ORDER_ID_RE, LensOrder
 from lenslane.chain.pipeline import Pipeline, StageFailure
 
-FOLDERS = ("inbox", "outbox", "rejected", "archive", "work", "held")
+#: review/ holds results that wait for a person and decisions/ the requests of ``lenslane decide`` (lenslane.decide).
+FOLDERS = ("inbox", "outbox", "review", "rejected", "archive", "work", "held", "decisions")
 ERRORS_SUFFIX = ".errors.json"
 HELD_SUFFIX = ".held.json"
 #: Results are written compact (a person reads them through `lenslane explain` or any JSON viewer):
@@ -221,6 +222,20 @@ def _readable(raw: bytes) -> dict[str, Any] | None:
     return data if isinstance(data, dict) else None
 
 
+def note_published(lab: "Lab", order_id: str, content_sha256: str | None) -> None:
+    """An order id published with this content by something other than the inbox (a person's replace)."""
+    lab._history().note_published(order_id, content_sha256)
+
+
+def order_events(result: dict[str, Any]) -> list[dict[str, Any]]:
+    """The audit events of a result's changes and flags, one record each (the first format's way, still
+    written by a decision's replace; the inbox writes them inside its one record per order)."""
+    order_id = result["order_id"]
+    events = [{"event": "change", "order_id": order_id, **change} for change in result["changes"]]
+    events += [{"event": "flag", "order_id": order_id, **flag} for flag in result["flags"]]
+    return events
+
+
 def _report_bytes(report: dict[str, Any]) -> bytes:
     return json.dumps(report, ensure_ascii=False, indent=1).encode("utf-8", "backslashreplace") + b"\n"
 
@@ -244,25 +259,15 @@ class Lab:
 
     def __init__(self, root: Path, host: Host):
         self.root = Path(root)
-        self.host = host
-        self.config: LabConfig = host.config
-        self.pipeline = Pipeline(host)
+        # Opened by recover(), under the lab's lock: opening may close a torn last line.
+        self.audit: AuditLog | None = None
+        self.use_host(host)
         for name in FOLDERS:
             setattr(self, name, self.root / name)
             (self.root / name).mkdir(exist_ok=True)
         # The same folders as plain strings: joining them costs far less per order than pathlib does.
         self._root = os.fspath(self.root)
         self._inbox, self._work, self._outbox = (os.path.join(self._root, n) for n in ("inbox", "work", "outbox"))
-        # Opened by recover(), under the lab's lock: opening may close a torn last line.
-        self.audit: AuditLog | None = None
-        chain = [link.stage.name for link in host.chain]
-        self.run = run_definition(__version__, host.config_sha256, host.effective_config, chain, {
-            name: {"plugin": info.plugin, "from": info.origin, "version": info.version}
-            for name, info in host.stages.items() if name in chain})
-        watch = host.config.watch
-        self.quiet_seconds = watch.quiet_seconds
-        self.young_seconds = watch.young_seconds
-        self.max_order_bytes = watch.max_order_bytes
         self.time_limit: Callable[[], ContextManager[Any]] = contextlib.nullcontext
         self.history: History | None = None  # the audit history, once recover() has opened the log
         self.stage_seconds: dict[str, float] = {}  # time spent in each stage, summed over the run
@@ -275,6 +280,24 @@ class Lab:
         self._watching: dict[str, _Seen] = {}
         self._fault = _fault_from_environment()
         self._fault_count = 0
+
+    def use_host(self, host: Host) -> None:
+        """Work with ``host`` (its config and chain) from the next order on: at start, and on a reload."""
+        self.host = host
+        self.config: LabConfig = host.config
+        self.pipeline = Pipeline(host)
+        chain = [link.stage.name for link in host.chain]
+        self.engine_fields = {"engine_version": __version__, "config_sha256": host.config_sha256, "stages": chain}
+        self.run = run_definition(__version__, host.config_sha256, host.effective_config, chain, {
+            name: {"plugin": info.plugin, "from": info.origin, "version": info.version}
+            for name, info in host.stages.items() if name in chain})
+        watch = host.config.watch
+        self.quiet_seconds = watch.quiet_seconds
+        self.young_seconds = watch.young_seconds
+        self.max_order_bytes = watch.max_order_bytes
+        if self.audit is not None:
+            self.audit.rotate_bytes = host.config.audit.rotate_bytes
+            self.audit.rotate_period = host.config.audit.rotate_period
 
     def _open_audit(self) -> AuditLog:
         audit = self.config.audit
@@ -301,7 +324,7 @@ class Lab:
         if self.audit is not None:
             self.audit.close()
         self.audit = self._open_audit()
-        for folder in (self.outbox, self.rejected, self.held, self.archive):
+        for folder in (self.outbox, self.review, self.rejected, self.held, self.archive):
             remove_temp_leftovers(folder)
         names = sorted(os.listdir(self.work))
         claims = {}
@@ -520,14 +543,16 @@ class Lab:
         if not ORDER_ID_RE.match(order_id):  # validated by the contract already; never a path
             raise ValueError(f"order id {order_id!r} cannot name a file")
         data = result_bytes(result)
-        target = f"{self._outbox}/{order_id}.json"
+        # A result that needs a person waits in review/, never in outbox/ (lenslane decide approves or refuses it).
+        folder = "review" if result["status"] == "review" else "outbox"
+        target = f"{self._root}/{folder}/{order_id}.json"
         try:
             self._unpublished.append((write_unsynced(target, data), target))  # made durable by commit()
         except OSError as exc:
             raise OutputBlocked("publish", target, exc, claimed=True) from exc
         destination = f"archive/{free_name(self.archive, name, claim_tag(claim))}"
         event = {"event": "published", "order_id": order_id, "received": received, "status": result["status"],
-                 "result": f"outbox/{order_id}.json", "result_sha256": hashlib.sha256(data).hexdigest(),
+                 "result": f"{folder}/{order_id}.json", "result_sha256": hashlib.sha256(data).hexdigest(),
                  "content_sha256": examined.content_sha256, "input": destination, "run": self.run,
                  "changes": result["changes"], "flags": result["flags"]}
         self._history().note_published(order_id, examined.content_sha256)
@@ -648,7 +673,7 @@ class Lab:
             except OSError as exc:
                 raise OutputBlocked("publish", target, exc, claimed=True) from exc
             unit.unpublished.pop(0)
-            unit.folders.add(self._outbox)
+            unit.folders.add(os.path.dirname(target))  # outbox/, or review/
             self._reached("published")
         while unit.folders:
             folder = next(iter(unit.folders))
