@@ -59,6 +59,9 @@ class ResultFiles:
         for move in record.get("moves") or ():
             source, target = move.get("from"), move.get("to")
             placed = self.files.pop(str(source), None)
+            if (placed is None and self.present is not None and isinstance(move.get("sha256"), str)
+                    and RESULT_PATH_RE.match(str(source))):
+                placed = Placed(move["sha256"], record["seq"], where)  # its earlier place is gone from disk too
             if target is None or placed is None:
                 continue
             if RESULT_PATH_RE.match(str(target)):

@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import Any
 
 from lenslane.audit.index import Index, Place
-from lenslane.audit.results import ResultFiles, check as check_results, present_in
+from lenslane.audit.results import WATCHED, Placed, ResultFiles, check as check_results, present_in
 from lenslane.audit.reader import (
     ROTATED_RE, Line, audit_files, file_of, iter_lines, parse_record, read_tail, rotated_name,
 )
@@ -368,6 +368,8 @@ def _walk(root: Path, report: VerifyReport, index: Index, start_line: Line | Non
 
 def _check_results(root: Path, results: ResultFiles, report: VerifyReport, index: Index | None) -> None:
     """Compare the result folders with what the walked records account for (and, from a verified point, the index)."""
+    if index is not None:
+        _placed_before(root, results, index)
     checked = check_results(root, results)
     report.results_matching = checked.matching.get("outbox", 0)
     report.other_results_matching = {k: v for k, v in checked.matching.items() if k != "outbox"}
@@ -386,6 +388,24 @@ def _check_results(root: Path, results: ResultFiles, report: VerifyReport, index
             path, None, "result",
             "no published record in the audit log accounts for this result: records were removed from the end "
             "of the log, or the file was not written by the engine"))
+
+
+def _placed_before(root: Path, results: ResultFiles, index: Index) -> None:
+    """Results in outbox/ and review/ placed by records before the walk: what the last of them says they are."""
+    for folder in WATCHED:
+        try:
+            names = os.listdir(root / folder)
+        except FileNotFoundError:
+            continue
+        for name in names:
+            path = f"{folder}/{name}"
+            if path in results.files or not name.endswith(".json") or name.startswith("."):
+                continue
+            for place in reversed(index.places_of_order(name.removesuffix(".json"))):
+                record = index.read(place)
+                if record is not None and record.get("event") in ("published", "decided") and record.get("result") == path:
+                    results.files[path] = Placed(str(record.get("result_sha256")), record["seq"], f"seq {record['seq']}")
+                    break
 
 
 def _known_before(index: Index, path: str) -> bool:

@@ -164,7 +164,7 @@ def test_verify_accounts_for_review_and_superseded_results(lab):
     assert verify(lab.root).ok
     superseded = lab.root / "archive" / "OK-0001.r1.json"
     superseded.write_bytes(superseded.read_bytes().replace(b"-1.0", b"-1.25", 1))
-    report = verify(lab.root)
+    report = verify(lab.root, full=True)  # a result moved by a record verified before: --full looks again
     assert not report.ok and report.result_problems[0].where == "archive/OK-0001.r1.json"
     superseded.unlink()
     (lab.root / "review" / "STRAY-1.json").write_bytes(json.dumps({"order_id": "STRAY-1"}).encode())
