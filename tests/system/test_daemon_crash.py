@@ -63,7 +63,7 @@ def test_a_crash_while_rejecting_is_finished_once_at_restart(tmp_path, step):
     assert run_once(lab).returncode == 0
     assert names(lab / "rejected") == ["a-bad.json", "a-bad.json.errors.json"]
     rejected = [r for r in iter_records(lab) if r.get("event") == "rejected"]
-    assert [r["file"] for r in rejected] == ["a-bad.json"]
+    assert [r["received"]["file"] for r in rejected] == ["a-bad.json"]
     assert names(lab / "archive") == ["b-good.json"] and names(lab / "work") == [] and temp_leftovers(lab) == []
 
 

@@ -109,7 +109,7 @@ def test_the_same_order_again_is_skipped_and_a_different_one_under_its_id_is_hel
     assert json.loads((lab / "held" / "dup-changed.json").read_bytes()) == changed
     report = json.loads((lab / "held" / "dup-changed.json.held.json").read_bytes())
     assert report["order_id"] == "DUP-1" and "different content" in report["reasons"][0]["message"]
-    events = [(r["event"], r.get("file")) for r in iter_records(lab)
+    events = [(r["event"], r["received"]["file"]) for r in iter_records(lab)
               if r.get("event") in ("published", "skipped", "held")]
     assert sorted(events) == sorted([("published", "dup.json"), ("skipped", "dup.json"),
                                      ("skipped", "dup-resent.json"), ("held", "dup-changed.json")])

@@ -135,7 +135,7 @@ def test_each_hostile_file_is_rejected_with_its_reason(hostile_lab, name):
     assert messages, report["problems"]
     assert any(all(word in message for word in words) for message in messages), messages
     assert (lab / "rejected" / name).read_bytes() == data  # the input itself, untouched, beside its report
-    records = [r for r in hostile_lab["records"] if r.get("event") == "rejected" and r.get("file") == name]
+    records = [r for r in hostile_lab["records"] if r.get("event") == "rejected" and r["received"]["file"] == name]
     assert len(records) == 1 and records[0]["reasons"] == report["problems"]
 
 
