@@ -109,7 +109,7 @@ class _ChainWalker:
         self.before_last_hash = GENESIS  # the hash that came before it, to recognise an insertion
         self.last_linked = True  # whether the last record chained cleanly to the one before it
         self.pending: list[Line] = []  # lines that are not records, waiting for their torn-line record
-        self.seen: dict[int, str] = {}  # seq → where, to tell a removal from a reordering
+        self.seen: dict[int, str] = {}  # seq → where, for seqs found missing earlier: a reordering, not a removal
         self.gaps: list[tuple[Finding, range]] = []
         self.defined: set[str] = set()
 
@@ -142,7 +142,10 @@ class _ChainWalker:
         else:
             self._link(line)
         self._check_defines(line)
-        self.seen.setdefault(record["seq"], line.where)
+        if self.gaps:  # only the seqs a gap misses are remembered, so memory does not grow with the log
+            seq = record["seq"]
+            if any(seq in missing for _, missing in self.gaps):
+                self.seen.setdefault(seq, line.where)
         self.report.records += 1
         if record["event"] == "published":
             self.report.published += 1
