@@ -49,13 +49,31 @@ def cmd_explain(args) -> int:
     from lenslane.report.explain import order_story, render
 
     story = order_story(Path(args.lab), args.order_id)
-    if args.json:
+    if args.html and story["found"]:
+        from lenslane.web.page import render_order_page
+
+        Path(args.html).write_text(render_order_page(Path(args.lab), args.order_id), encoding="utf-8")
+        print(f"lenslane: wrote the story of {args.order_id} to {args.html}")
+    elif args.json:
         print(json.dumps(story, indent=1, ensure_ascii=False))
     elif story["found"]:
         print(render(story))
     else:
         print(f"lenslane: {render(story)}", file=sys.stderr)
     return 0 if story["found"] else 1
+
+
+def cmd_serve(args) -> int:
+    from lenslane.web.serve import ServeRefused, serve
+
+    try:
+        return serve(Path(args.lab), args.host, args.port)
+    except ServeRefused as exc:
+        print(f"lenslane: {exc}", file=sys.stderr)
+        return 2
+    except OSError as exc:
+        print(f"lenslane: cannot serve on {args.host}:{args.port}: {exc}", file=sys.stderr)
+        return 2
 
 
 def cmd_preview(args) -> int:
@@ -163,7 +181,22 @@ def build_parser() -> argparse.ArgumentParser:
     sub.add_argument("lab", metavar="LAB")
     sub.add_argument("order_id", metavar="ORDER_ID")
     sub.add_argument("--json", action="store_true", help="the same story as JSON data")
+    sub.add_argument("--html", metavar="FILE", help="write the story as one self-contained web page (styles and "
+                     "pictures of the lens inline, no external link) to FILE")
     sub.set_defaults(func=cmd_explain)
+
+    from lenslane.web.serve import DEFAULT_HOST, DEFAULT_PORT, TOKEN_VARIABLE
+
+    sub = commands.add_parser("serve", help="serve the lab's web page: the queue, each order, decisions by click",
+                              description="Serve the lab's web page: the orders awaiting a person, each order's "
+                              "story with pictures of the lens, a search, and the decision form. Loopback only by "
+                              f"default; any other address needs an access token in {TOKEN_VARIABLE} (at least 16 "
+                              "characters) and refuses to start without one. The server holds no lock and writes "
+                              "only through the decision mechanism.")
+    sub.add_argument("lab", metavar="LAB")
+    sub.add_argument("--host", default=DEFAULT_HOST, help=f"address to listen on (default {DEFAULT_HOST})")
+    sub.add_argument("--port", type=int, default=DEFAULT_PORT, help=f"port (default {DEFAULT_PORT}; 0: any free port)")
+    sub.set_defaults(func=cmd_serve)
 
     sub = commands.add_parser("schema", help="print the JSON Schema of the order (or of the result)",
                               description="Print the JSON Schema of lens-order/1, or of lens-order-result/1.")
