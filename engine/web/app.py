@@ -37,11 +37,11 @@ from lenslane.web.page import order_page_data, templates, valid_order_id
 TOKEN_COOKIE = "lenslane_token"
 LOOPBACK_NAMES = ("127.0.0.1", "localhost", "::1")
 #: What each decision does, in the lab's words (the actions of ``lenslane decide``).
-ACTIONS = {
-    "review": (("approve", "publish the result to the outbox, status ready"),
-               ("refuse", "move the result to rejected/ with your reason")),
-    "held": (("replace", "run the new version through the chain as the order's next revision"),
-             ("discard", "archive the new version; the published result stays")),
+ACTION_WORDS = {
+    "approve": "publish the result to the outbox, status ready",
+    "refuse": "move the result to rejected/ with your reason",
+    "replace": "run the new version through the chain as the order's next revision",
+    "discard": "archive the new version; the published result stays",
 }
 _HEADERS = {
     "Content-Security-Policy": "default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
@@ -72,16 +72,12 @@ def _plain(item: Any) -> dict[str, Any]:
 
 
 def _awaiting(item: dict[str, Any]) -> dict[str, Any]:
-    """What the page says about one queue item: its kind, the actions that fit it, a one-line summary."""
-    kind = str(item.get("kind") or item.get("status") or item.get("state") or "review")
-    kind = "held" if "held" in kind else "review"
-    summary = item.get("summary") or item.get("what_to_decide") or item.get("decide")
-    if not summary:
-        flags = item.get("flags") or []
-        differences = item.get("differences") or item.get("differs") or []
-        summary = (f"held: the same order id arrived with other content ({len(differences)} fields differ)"
-                   if kind == "held" else f"in review: {len(flags)} flag(s) hold it for a person")
-    return {**item, "kind": kind, "summary": summary, "actions": ACTIONS[kind]}
+    """What the page says about one queue item: its kind, the actions that fit it, what to decide."""
+    kind = "held" if item.get("kind") == "held" else "review"
+    actions = item.get("actions") or (("approve", "refuse") if kind == "review" else ("replace", "discard"))
+    return {**item, "kind": kind, "summary": item.get("decide") or "", "flags": item.get("flags") or [],
+            "differences": item.get("differences") or [],
+            "actions": [(action, ACTION_WORDS.get(action, action)) for action in actions]}
 
 
 def _host_name(host: str) -> str:
@@ -169,7 +165,7 @@ def create_app(lab_root: Path, token: str | None = None, loopback: bool = True) 
             abort(404)
         data = order_page_data(lab_root, order_id)
         done = request.args.get("done")
-        message = f"Decision recorded: {done}." if done in {a for pair in ACTIONS.values() for a, _ in pair} else None
+        message = f"Decision recorded: {done}." if done in ACTION_WORDS else None
         return page("order.html", 200 if data["found"] else 404, page=data, awaiting=awaiting_decision(order_id),
                     csrf=csrf_for(order_id), message=message)
 
@@ -198,7 +194,7 @@ def create_app(lab_root: Path, token: str | None = None, loopback: bool = True) 
             try:
                 decide.decide(lab_root, order_id, action, by, note)
             except decide.DecisionError as exc:
-                error = f"Not recorded: {exc}"
+                error = f"Not recorded: {exc.message}"
             else:
                 return redirect(f"/orders/{order_id}?done={action}", 303)
         data = order_page_data(lab_root, order_id)

@@ -152,6 +152,7 @@ def order_page_data(lab_root: Path, order_id: str) -> dict[str, Any]:
                             "pictures": _pictures(lab_root, processing, exponent, f"p{number}")})
     return {"order_id": order_id, "lab": str(lab_root), "found": story["found"], "processings": processings,
             "latest": processings[-1] if processings else None, "caution": story["caution"],
+            "decisions": story.get("decisions") or [],
             "made_at": datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")}
 
 
