@@ -47,7 +47,7 @@ _HEADERS = {
     "Content-Security-Policy": "default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
                                "form-action 'self'; frame-ancestors 'none'; base-uri 'none'",
     "X-Content-Type-Options": "nosniff",
-    "Referrer-Policy": "no-referrer",
+    "Referrer-Policy": "same-origin",  # "no-referrer" would make a browser send "Origin: null" with the form
     "Cache-Control": "no-store",
 }
 
@@ -184,8 +184,8 @@ def create_app(lab_root: Path, token: str | None = None, loopback: bool = True) 
         decide = _decisions()
         if decide is None:
             error = "This installation has no decision mechanism (lenslane.decide); nothing was recorded."
-        elif not by:
-            error = "A decision needs the name of the person who makes it; nothing was recorded."
+        elif not by or not note:
+            error = "A decision needs the name of the person who makes it and a note of why; nothing was recorded."
         elif awaiting is None:
             error = f"Order {order_id} is not awaiting a decision; nothing was recorded."
         elif action not in {a for a, _ in awaiting["actions"]}:

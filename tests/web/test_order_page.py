@@ -170,3 +170,24 @@ def test_a_form_without_its_token_or_from_elsewhere_records_nothing(client):
                         headers={"Origin": "http://elsewhere.example"})
     assert response.status_code == 403
     assert (lab.root / "audit.jsonl").read_bytes() == before
+
+
+def test_a_decision_needs_a_name_and_goes_only_through_the_decision_mechanism(client):
+    pytest.importorskip("lenslane.decide", reason="waits for the decision mechanism (issue 14) to be on main")
+    web, lab, _ = client
+    page = web.get("/orders/DP-1011").get_data(as_text=True)
+    csrf = re.search(r'name="csrf" value="([0-9a-f]+)"', page).group(1)
+    before = (lab.root / "audit.jsonl").read_bytes()
+    nameless = web.post("/orders/DP-1011/decide", data={"action": "approve", "by": "  ", "note": "ok", "csrf": csrf})
+    assert nameless.status_code == 400 and "needs the name" in nameless.get_data(as_text=True)
+    wrong = web.post("/orders/DP-1011/decide", data={"action": "replace", "by": "T-7", "note": "ok", "csrf": csrf})
+    assert wrong.status_code == 400 and "Choose one of: approve, refuse" in wrong.get_data(as_text=True)
+    assert (lab.root / "audit.jsonl").read_bytes() == before
+    done = web.post("/orders/DP-1011/decide", data={"action": "refuse", "by": "T-7", "note": "Fit to be re-measured",
+                                                   "csrf": csrf})
+    assert done.status_code == 303 and done.headers["Location"] == "/orders/DP-1011?done=refuse"
+    assert not (lab.root / "review" / "DP-1011.json").exists()
+    again = web.post("/orders/DP-1011/decide", data={"action": "approve", "by": "T-8", "note": "ok", "csrf": csrf})
+    assert again.status_code == 409 and "not awaiting a decision" in again.get_data(as_text=True)
+    story = web.get("/orders/DP-1011").get_data(as_text=True)
+    assert "<strong>refuse</strong> by <strong>T-7</strong>" in story and "Fit to be re-measured" in story
