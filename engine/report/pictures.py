@@ -513,6 +513,64 @@ def powers_picture(rx: dict[str, Any], surfacing: dict[str, Any], eye: str) -> P
 
 
 # --------------------------------------------------------------------------
+# Off-axis errors (where the exact tilt method ran)
+# --------------------------------------------------------------------------
+
+
+def off_axis_picture(off_axis: dict[str, Any], eye: str) -> Picture:
+    """The mean power error M and the cylinder error at each gaze angle and direction, seen from the front.
+
+    ``off_axis`` is what the exact tilt method records: ``gaze_angles_deg`` and,
+    per direction (``up``, ``down``, ``nasal``, ``temporal``), ``mean_d`` and
+    ``cylinder_d`` per angle (errors as power vectors, Thibos, Wheeler & Horner,
+    Optom Vis Sci 74:367, 1997). One millimetre of the drawing is one degree of gaze.
+    """
+    angles = [float(a) for a in off_axis.get("gaze_angles_deg") or ()]
+    reach = max(angles, default=30.0)
+    nose = _nose_sign(eye)
+    directions = {"up": (0.0, 1.0), "down": (0.0, -1.0), "nasal": (nose, 0.0), "temporal": (-nose, 0.0)}
+    body = [_marker(0.0, 0.0, "centre"), _text(1.8, -1.8, "straight ahead", css="label")]
+    for angle in angles:
+        body.append(f'<circle cx="0" cy="0" r="{_f(angle)}" fill="none" stroke="#000" stroke-width="0.15" '
+                    f'stroke-dasharray="0.4 0.8"/>')
+        body.append(_text(angle * 0.72 + 0.6, -angle * 0.72, f"{angle:g}°", size=2.0, css="gaze-angle"))
+    for name, (dx, dy) in directions.items():
+        errors = off_axis.get(name)
+        if not isinstance(errors, dict):
+            continue
+        if dx == 0:
+            body.append(_text(0.0, -dy * (reach + 6) + 0.8, name, "middle", weight="bold", css="direction"))
+        else:
+            body.append(_text(dx * (reach + 2), -6.0, name, "start" if dx > 0 else "end", weight="bold",
+                              css="direction"))
+        for step, (angle, mean, cylinder) in enumerate(zip(angles, errors.get("mean_d") or (),
+                                                           errors.get("cylinder_d") or ())):
+            x, y = dx * angle, -dy * angle
+            body.append(f'<circle cx="{_f(x)}" cy="{_f(y)}" r="0.8" fill="#fff" stroke="#000" stroke-width="0.3"/>')
+            if dx == 0:  # beside the point
+                anchor, tx, ty = "start", x + 1.6, y + 0.2
+            else:  # the inner angle above the arm, the next below, and so on
+                anchor, tx, ty = "middle", x, (y - 3.6) if step % 2 == 0 else (y + 3.2)
+            body.append(_text(tx, ty, f"M {number(mean, 2, sign=True)}", anchor, 2.0, css="mean-error"))
+            body.append(_text(tx, ty + 2.3, f"cyl {number(cylinder, 2)}", anchor, 2.0, css="cylinder-error"))
+    span = reach + 16
+    body.append(_text(-span + 1, span - 1.5, "D; M mean power error, cyl cylinder error", size=2.0, css="legend"))
+    caption = (f"{eye.capitalize()} lens, where the exact tilt method ran: the errors the eye meets looking through "
+               f"the lens at {', '.join(f'{a:g}°' for a in angles)} of gaze, as the engine recorded them (D), seen "
+               f"from the front; one millimetre of the drawing is one degree of gaze.")
+    return Picture("Off-axis errors", caption, _svg((-span, -span, 2 * span, 2 * span), body, caption))
+
+
+def _off_axis_of(result: dict[str, Any], eye: str) -> dict[str, Any] | None:
+    """The off-axis errors the exact tilt method recorded for this eye, if it ran."""
+    for change in reversed(result.get("changes") or []):
+        inputs = change.get("inputs") or {}
+        if change.get("field") == f"lenses.{eye}.surfacing" and isinstance(inputs.get("off_axis"), dict):
+            return inputs["off_axis"]
+    return None
+
+
+# --------------------------------------------------------------------------
 # All of one eye
 # --------------------------------------------------------------------------
 
@@ -534,4 +592,7 @@ def eye_pictures(result: dict[str, Any], eye: str, exponent_without_ed: float = 
     if rx and surfacing and power_matrix(rx["sphere"], rx.get("cylinder") or 0.0, rx.get("axis") or 180) != \
             power_matrix(surfacing["sphere"], surfacing.get("cylinder") or 0.0, surfacing.get("axis") or 180):
         pictures.append(powers_picture(rx, surfacing, eye))
+    off_axis = _off_axis_of(result, eye)
+    if off_axis:
+        pictures.append(off_axis_picture(off_axis, eye))
     return pictures

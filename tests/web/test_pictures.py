@@ -201,3 +201,29 @@ def test_every_picture_is_black_white_and_grey_only(default_host):
                         if value is None or value in ("none", "#fff", "#000") or value.startswith("url(#"):
                             continue
                         assert _GREY.fullmatch(value), (picture.title, attribute, value)
+
+
+def test_the_off_axis_errors_of_the_exact_method_are_drawn_where_it_ran():
+    # The record's numbers (as the exact tilt method writes them), each drawn at its gaze direction:
+    # nasal toward the nose, which seen from the front is +x for the right lens and −x for the left (ISO 8429).
+    off_axis = {"gaze_angles_deg": [20.0, 30.0],
+                "up": {"mean_d": [0.05, 0.12], "cylinder_d": [0.10, 0.25]},
+                "down": {"mean_d": [0.04, 0.10], "cylinder_d": [0.08, 0.20]},
+                "nasal": {"mean_d": [0.03, 0.09], "cylinder_d": [0.07, 0.18]},
+                "temporal": {"mean_d": [-0.02, -0.06], "cylinder_d": [0.06, 0.15]}}
+    result = spherical_result(-2.0, 4.0, 1.5, 2.0)
+    assert "Off-axis errors" not in [p.title for p in eye_pictures(result, "right")]
+    result["changes"] = [{"field": "lenses.right.surfacing", "inputs": {"method": "exact", "off_axis": off_axis}}]
+    picture = eye_pictures(result, "right")[-1]
+    assert picture.title == "Off-axis errors"
+    root = ET.fromstring(picture.svg)
+    texts = {t.text: (float(t.get("x")), float(t.get("y"))) for t in root.iter(f"{SVG}text")}
+    assert f"M {MINUS}0.06" in texts and "cyl 0.25" in texts and "M +0.12" in texts
+    assert texts["nasal"][0] > 0 and texts["temporal"][0] < 0
+    assert texts["M +0.09"][0] == pytest.approx(30.0)  # 30° of gaze, one millimetre a degree
+    result["lenses"]["left"] = result["lenses"].pop("right")
+    result["order"]["fit"]["left"] = result["order"]["fit"].pop("right")
+    result["changes"][0]["field"] = "lenses.left.surfacing"
+    left = ET.fromstring(eye_pictures(result, "left")[-1].svg)
+    texts = {t.text: float(t.get("x")) for t in left.iter(f"{SVG}text")}
+    assert texts["nasal"] < 0 and texts["M +0.09"] == pytest.approx(-30.0)
