@@ -21,7 +21,7 @@ from markupsafe import Markup
 from lenslane import __version__
 from lenslane.contract.models import CAUTION, ORDER_ID_RE
 from lenslane.plugins.optics.outline import DEFAULT_EXPONENT
-from lenslane.report.explain import DECISIONS, geometry_text, order_story
+from lenslane.report.explain import DECISIONS, geometry_text, inputs_text, order_story, value_text
 from lenslane.report.pictures import eye_pictures
 
 #: The flag levels, most pressing first.
@@ -117,27 +117,31 @@ def _flags_by_level(flags: list[dict[str, Any]]) -> list[dict[str, Any]]:
     return groups
 
 
-def _without_assumptions(processing: dict[str, Any]) -> list[str]:
-    """Tell each geometry without its model's assumptions, which the page lists once; returns them.
+def _told(field: str, value: Any, assumptions: dict[str, None]) -> str:
+    """A value in the trade's notation; a geometry without its model's assumptions, which are collected."""
+    if isinstance(value, dict) and "assumptions" in value:
+        assumptions.update(dict.fromkeys(value["assumptions"] or ()))
+        return geometry_text({k: v for k, v in value.items() if k != "assumptions"})
+    return value_text(field, value)
+
+
+def _with_texts(processing: dict[str, Any]) -> dict[str, Any]:
+    """The processing with every value also in the trade's notation, and the geometry's assumptions listed once.
 
     The assumptions are the same sentences in every geometry record: told in
     full at every change and in the final lens, they bury the numbers.
     """
     assumptions: dict[str, None] = {}
-    values = [change for stage in processing["stages"] for change in stage["changes"]]
-    for holder, value_key, text_key in ([(c, "after", "after_text") for c in values]
-                                        + [(c, "before", "before_text") for c in values]):
-        value = holder.get(value_key)
-        if isinstance(value, dict) and "assumptions" in value:
-            assumptions.update(dict.fromkeys(value["assumptions"] or ()))
-            holder[text_key] = geometry_text({k: v for k, v in value.items() if k != "assumptions"})
-    for eye, lens in processing["lenses"].items():
-        geometry = lens.get("geometry")
-        if isinstance(geometry, dict) and "assumptions" in geometry:
-            assumptions.update(dict.fromkeys(geometry["assumptions"] or ()))
-            processing["lenses_text"][eye]["geometry"] = geometry_text(
-                {k: v for k, v in geometry.items() if k != "assumptions"})
-    return list(assumptions)
+    stages = [{**stage, "changes": [{**change,
+                                     "before_text": _told(change["field"], change.get("before"), assumptions),
+                                     "after_text": _told(change["field"], change.get("after"), assumptions),
+                                     "inputs_text": inputs_text(change.get("inputs") or {})}
+                                    for change in stage["changes"]]}
+              for stage in processing["stages"]]
+    lenses_text = {eye: {part: _told(part, value, assumptions) for part, value in lens.items()}
+                   for eye, lens in processing["lenses"].items()}
+    return {**processing, "stages": stages, "lenses_text": lenses_text, "assumptions": list(assumptions),
+            "flag_groups": _flags_by_level(processing["flags"])}
 
 
 def order_page_data(lab_root: Path, order_id: str) -> dict[str, Any]:
@@ -146,9 +150,7 @@ def order_page_data(lab_root: Path, order_id: str) -> dict[str, Any]:
     exponent = outline_exponent(lab_root) if story["found"] else DEFAULT_EXPONENT
     processings = []
     for number, processing in enumerate(story["processings"], start=1):
-        assumptions = _without_assumptions(processing)
-        processings.append({**processing, "number": number, "flag_groups": _flags_by_level(processing["flags"]),
-                            "assumptions": assumptions,
+        processings.append({**_with_texts(processing), "number": number,
                             "pictures": _pictures(lab_root, processing, exponent, f"p{number}")})
     return {"order_id": order_id, "lab": str(lab_root), "found": story["found"], "processings": processings,
             "latest": processings[-1] if processings else None, "caution": story["caution"],
