@@ -246,7 +246,7 @@ def outline_picture(model: LensModel) -> Picture:
     body = [f'<rect x="{_f(-half_w)}" y="{_f(-half_h)}" width="{_f(2 * half_w)}" height="{_f(2 * half_h)}" '
             f'fill="none" stroke="#000" stroke-width="0.25" stroke-dasharray="1.5 1"/>',
             _polyline(_outline_svg_points(model), True, 'stroke="#000" stroke-width="0.6"'),
-            _marker(0.0, 0.0, "box"), _text(0.8, 3.2, "box centre", css="label")]
+            _marker(0.0, 0.0, "box"), _text(-0.8, 4.2, "box centre", "end", css="label")]
     body.append(f'<g stroke="#000" stroke-width="0.2" stroke-dasharray="0.4 0.8">'
                 f'<line x1="{_f(left)}" y1="{_f(-cy)}" x2="{_f(left + width)}" y2="{_f(-cy)}"/>'
                 f'<line x1="{_f(cx)}" y1="{_f(top)}" x2="{_f(cx)}" y2="{_f(top + height - 12)}"/></g>')

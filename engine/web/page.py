@@ -21,7 +21,7 @@ from markupsafe import Markup
 from lenslane import __version__
 from lenslane.contract.models import CAUTION, ORDER_ID_RE
 from lenslane.plugins.optics.outline import DEFAULT_EXPONENT
-from lenslane.report.explain import DECISIONS, geometry_text, inputs_text, order_story, value_text
+from lenslane.report.explain import DECISIONS, geometry_text, inputs_text, number, order_story, value_text
 from lenslane.report.pictures import eye_pictures
 
 #: The flag levels, most pressing first.
@@ -88,11 +88,34 @@ def _order_as_received(lab_root: Path, processing: dict[str, Any]) -> tuple[dict
                   "audit log recorded, so the lens is not drawn")
 
 
-def _pictures(lab_root: Path, processing: dict[str, Any], exponent: float, prefix: str) -> dict[str, Any]:
-    """Each eye's pictures, drawn from the log's final lens and the order as received."""
+def _order_facts(order: dict[str, Any] | None) -> list[tuple[str, str]]:
+    """The lens, frame and fit the order asked for, in a few labelled lines."""
+    if not order:
+        return []
+    lens, frame, fit = order.get("lens") or {}, order.get("frame") or {}, order.get("fit") or {}
+    facts = [("lens", ", ".join(str(v).replace("_", " ") for v in (lens.get("design"), lens.get("material")) if v))]
+    if frame:
+        facts.append(("frame", f"A {number(frame.get('box_width_mm', 0), 1)} × B {number(frame.get('box_height_mm', 0), 1)}"
+                               f" mm, bridge {number(frame.get('bridge_mm', 0), 1)} mm, "
+                               f"{str(frame.get('mount') or 'full_rim').replace('_', ' ')}"
+                               + (", outline sent" if frame.get("outline_mm") else "")))
+    per_eye = [f"{eye} PD {number(fit[eye]['pd_mm'], 1)} mm"
+               + (f", height {number(fit[eye]['height_mm'], 1)} mm" if fit[eye].get("height_mm") is not None else "")
+               + (f", segment {number(fit[eye]['segment_height_mm'], 1)} mm" if fit[eye].get("segment_height_mm") else "")
+               for eye in ("right", "left") if isinstance(fit.get(eye), dict) and "pd_mm" in fit[eye]]
+    worn = [f"{label} {_told(key, fit[key], {})}" for key, label in
+            (("vertex_mm", "vertex"), ("pantoscopic_deg", "pantoscopic tilt"), ("face_form_deg", "face form"))
+            if fit.get(key) is not None]
+    if per_eye or worn:
+        facts.append(("fit", "; ".join(per_eye + worn)))
+    return facts
+
+
+def _pictures(processing: dict[str, Any], order: dict[str, Any] | None, source: str, exponent: float,
+              prefix: str) -> dict[str, Any]:
+    """Each eye's pictures, drawn from the log's final lens and the order as received (read from ``source``)."""
     if not processing["lenses"] or not any(lens.get("geometry") for lens in processing["lenses"].values()):
         return {"eyes": {}, "note": "no lens geometry was published for this order, so there is nothing to draw"}
-    order, source = _order_as_received(lab_root, processing)
     if order is None:
         return {"eyes": {}, "note": source}
     changes = [{"field": c["field"], "inputs": c["inputs"]} for stage in processing["stages"] for c in stage["changes"]]
@@ -149,9 +172,10 @@ def order_page_data(lab_root: Path, order_id: str) -> dict[str, Any]:
     story = order_story(Path(lab_root), order_id)
     exponent = outline_exponent(lab_root) if story["found"] else DEFAULT_EXPONENT
     processings = []
-    for number, processing in enumerate(story["processings"], start=1):
-        processings.append({**_with_texts(processing), "number": number,
-                            "pictures": _pictures(lab_root, processing, exponent, f"p{number}")})
+    for count, processing in enumerate(story["processings"], start=1):
+        order, source = _order_as_received(lab_root, processing)
+        processings.append({**_with_texts(processing), "number": count, "order_facts": _order_facts(order),
+                            "pictures": _pictures(processing, order, source, exponent, f"p{count}")})
     return {"order_id": order_id, "lab": str(lab_root), "found": story["found"], "processings": processings,
             "latest": processings[-1] if processings else None, "caution": story["caution"],
             "decisions": story.get("decisions") or [],

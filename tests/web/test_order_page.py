@@ -27,6 +27,9 @@ def test_explain_html_writes_one_self_contained_page(sample_lab, tmp_path, capsy
     assert html.count(CAUTION) >= 2  # at the top and at the foot
     # The prescription as the order writes it (right: −4.25 −1.25 × 170, add +2.25; prism 1Δ in + 0.5Δ up).
     assert f"{MINUS}4.25 {MINUS}1.25 × 170 add +2.25" in html
+    # The lens, frame and fit as the order gives them.
+    assert "A 52.0 × B 36.0 mm, bridge 18.0 mm, full rim" in html
+    assert "right PD 31.5 mm, height 20.0 mm; left PD 31.0 mm, height 20.0 mm; vertex 13.5 mm" in html
     # Each stage's change, before and after, as published in the result.
     surfacing = results["DP-1000"]["lenses"]["right"]["surfacing"]
     assert f"{MINUS}{abs(surfacing['sphere']):.2f} {MINUS}{abs(surfacing['cylinder']):.2f} × {surfacing['axis']}" in html
