@@ -24,6 +24,8 @@ from lenslane.plugins.optics.outline import DEFAULT_EXPONENT
 from lenslane.report.explain import DECISIONS, geometry_text, inputs_text, number, order_story, value_text
 from lenslane.report.pictures import eye_pictures
 
+#: What an order is once a person's decision came after its last processing.
+DECIDED = {"approve": "approved", "refuse": "refused", "replace": "replaced", "discard": "new version discarded"}
 #: The flag levels, most pressing first.
 LEVELS = ("review", "warning", "info")
 
@@ -176,9 +178,13 @@ def order_page_data(lab_root: Path, order_id: str) -> dict[str, Any]:
         order, source = _order_as_received(lab_root, processing)
         processings.append({**_with_texts(processing), "number": count, "order_facts": _order_facts(order),
                             "pictures": _pictures(processing, order, source, exponent, f"p{count}")})
+    decisions = story.get("decisions") or []
+    last_pass = (processings[-1]["seq"] or [0, 0])[1] if processings else 0
+    later = [d for d in decisions if (d.get("seq") or 0) > last_pass]
     return {"order_id": order_id, "lab": str(lab_root), "found": story["found"], "processings": processings,
+            "decided": DECIDED.get(later[-1].get("action")) if later else None,
             "latest": processings[-1] if processings else None, "caution": story["caution"],
-            "decisions": story.get("decisions") or [],
+            "decisions": decisions,
             "made_at": datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")}
 
 

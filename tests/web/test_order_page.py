@@ -194,3 +194,4 @@ def test_a_decision_needs_a_name_and_goes_only_through_the_decision_mechanism(cl
     assert again.status_code == 409 and "not awaiting a decision" in again.get_data(as_text=True)
     story = web.get("/orders/DP-1011").get_data(as_text=True)
     assert "<strong>refuse</strong> by <strong>T-7</strong>" in story and "Fit to be re-measured" in story
+    assert '<h1>Order DP-1011 <span class="status decided">refused</span>' in story
