@@ -112,9 +112,9 @@ def create_app(lab_root: Path, token: str | None = None, loopback: bool = True) 
             abort(421)  # a name that is not the loopback: refused (DNS rebinding)
         if token is None:
             return None
-        given = (request.cookies.get(TOKEN_COOKIE) or request.headers.get("Authorization", "").removeprefix("Bearer ")
-                 or request.args.get("token", ""))
-        if not hmac.compare_digest(given.encode(), token.encode()):
+        given = (request.cookies.get(TOKEN_COOKIE, ""), request.args.get("token", ""),
+                 request.headers.get("Authorization", "").removeprefix("Bearer "))
+        if not any(hmac.compare_digest(candidate.encode(), token.encode()) for candidate in given):
             return page("message.html", 401, title="Access token needed",
                         text="This lab's page needs its access token: open it once as /?token=… "
                              "(the value of LENSLANE_SERVE_TOKEN where the server runs).")

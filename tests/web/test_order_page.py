@@ -146,6 +146,8 @@ def test_a_token_server_wants_the_token(sample_lab):
     assert first.status_code == 302 and first.headers["Location"] == "/"
     assert "HttpOnly" in first.headers["Set-Cookie"] and "SameSite=Strict" in first.headers["Set-Cookie"]
     assert web.get("/", headers={"Host": "lab.example"}).status_code == 200  # the cookie now carries it
+    web.set_cookie("lenslane_token", "stale", domain="localhost")
+    assert web.get(f"/?token={token}", headers={"Host": "lab.example"}).status_code == 302  # a stale cookie is replaced
 
 
 def test_serving_elsewhere_than_loopback_refuses_without_a_token(sample_lab, capsys, monkeypatch):
