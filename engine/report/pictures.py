@@ -27,6 +27,7 @@ import numpy as np
 
 from lenslane.plugins.optics.outline import DEFAULT_EXPONENT, modelled_outline, outline_extent, outline_points
 from lenslane.plugins.optics.power import PowerMatrix, power_matrix, principal_powers
+from lenslane.plugins.optics.prism import resultant_prism
 from lenslane.plugins.optics.surfaces import sag_mm, surface_curvature_per_mm
 from lenslane.plugins.optics.thickness import LensShape, thickness_mm
 from lenslane.report.explain import number, power_text
@@ -55,7 +56,9 @@ class LensModel(NamedTuple):
     """One eye's lens as the pictures draw it, every length in mm (front view, x to the observer's right, y up).
 
     ``outline_mm``: the outline's points about the box centre; ``centre_mm``:
-    the optical centre about the box centre; ``edge_mm``: the thickness at each
+    the optical centre about the box centre (for a progressive, the prism
+    reference point); ``fitting_cross_mm``: a progressive's fitting cross, at
+    the order's fitting height; ``edge_mm``: the thickness at each
     outline point; ``thinnest`` / ``thickest``: the index of the thinnest and
     thickest outline point; ``outline_source``: where the outline comes from.
     """
@@ -67,6 +70,7 @@ class LensModel(NamedTuple):
     box_width_mm: float
     box_height_mm: float
     centre_mm: tuple[float, float]
+    fitting_cross_mm: tuple[float, float] | None
     segment_top_mm: float | None
     shape: LensShape
     center_thickness_mm: float
@@ -144,19 +148,26 @@ def lens_model(result: dict[str, Any], eye: str, exponent_without_ed: float = DE
         source = (f"outline modelled from A {number(width, 1)} mm, B {number(height, 1)} mm"
                   + (f" and ED {number(ed, 1)} mm" if ed is not None else f", exponent {exponent_without_ed:g}"))
     extent = outline_extent(radii)
-    prism = lens.get("prism") or {}
+    # The wedge is the prescribed prism and any thinning prism the geometry added, as one resultant.
+    prism = resultant_prism([(float(p.get("amount") or 0.0), float(p.get("base_deg") or 0.0))
+                             for p in (lens.get("prism") or {}, geometry.get("thinning_prism") or {})], eye)
     shape = LensShape(float(geometry["front_curve_d"]),
                       power_matrix(surfacing["sphere"], surfacing.get("cylinder") or 0.0, surfacing.get("axis") or 180),
-                      _index_of(result, eye), float(prism.get("amount") or 0.0), float(prism.get("base_deg") or 0.0))
+                      _index_of(result, eye), prism.amount, prism.base_deg)
     centre = tuple(float(v) for v in geometry.get("optical_centre_mm") or (0.0, 0.0))
     outline = outline_points(radii, eye)
     center_thickness = float(geometry["center_thickness_mm"])
     edge = thickness_mm(outline - np.asarray(centre), shape, center_thickness)
     fit = ((order.get("fit") or {}).get(eye) or {})
     segment = fit.get("segment_height_mm")
+    design = (order.get("lens") or {}).get("design", "")
+    fitting_cross = None
+    if design == "progressive":
+        fitting_height = fit.get("height_mm")
+        fitting_cross = (centre[0], 0.0 if fitting_height is None else float(fitting_height) - height / 2.0)
     return LensModel(
-        eye, (order.get("lens") or {}).get("design", ""), outline, source, extent.width_mm, extent.height_mm,
-        centre, None if segment is None else float(segment) - height / 2.0, shape, center_thickness, edge,
+        eye, design, outline, source, extent.width_mm, extent.height_mm, centre, fitting_cross,
+        None if segment is None else float(segment) - height / 2.0, shape, center_thickness, edge,
         int(np.nanargmin(edge)), int(np.nanargmax(edge)), geometry.get("blank_min_diameter_mm"), surfacing)
 
 
@@ -199,7 +210,8 @@ def _scale_bar(x: float, y: float) -> str:
 
 
 def _marker(x: float, y: float, kind: str) -> str:
-    """Shapes that tell markers apart without colour: a crossed circle, a filled square, an open square, a cross."""
+    """Shapes that tell markers apart without colour: a crossed circle (optical centre), a filled square (thickest),
+    an open square (thinnest), a large upright cross (fitting cross), a small diagonal cross (box centre)."""
     if kind == "centre":
         return (f'<g stroke="#000" stroke-width="0.35" fill="#fff"><circle cx="{_f(x)}" cy="{_f(y)}" r="1.3"/>'
                 f'<line x1="{_f(x - 1.8)}" y1="{_f(y)}" x2="{_f(x + 1.8)}" y2="{_f(y)}"/>'
@@ -209,8 +221,12 @@ def _marker(x: float, y: float, kind: str) -> str:
     if kind == "thinnest":
         return (f'<rect x="{_f(x - 1)}" y="{_f(y - 1)}" width="2" height="2" fill="#fff" stroke="#000" '
                 f'stroke-width="0.35"/>')
-    return (f'<g stroke="#000" stroke-width="0.35"><line x1="{_f(x - 2.5)}" y1="{_f(y)}" x2="{_f(x + 2.5)}" '
-            f'y2="{_f(y)}"/><line x1="{_f(x)}" y1="{_f(y - 2.5)}" x2="{_f(x)}" y2="{_f(y + 2.5)}"/></g>')
+    if kind == "fitting":  # a large upright cross
+        return (f'<g stroke="#000" stroke-width="0.45"><line x1="{_f(x - 3)}" y1="{_f(y)}" x2="{_f(x + 3)}" '
+                f'y2="{_f(y)}"/><line x1="{_f(x)}" y1="{_f(y - 3)}" x2="{_f(x)}" y2="{_f(y + 3)}"/></g>')
+    # the box centre: a small diagonal cross
+    return (f'<g stroke="#000" stroke-width="0.3"><line x1="{_f(x - 1.2)}" y1="{_f(y - 1.2)}" x2="{_f(x + 1.2)}" '
+            f'y2="{_f(y + 1.2)}"/><line x1="{_f(x - 1.2)}" y1="{_f(y + 1.2)}" x2="{_f(x + 1.2)}" y2="{_f(y - 1.2)}"/></g>')
 
 
 def _nose_sign(eye: str) -> float:
@@ -246,7 +262,7 @@ def outline_picture(model: LensModel) -> Picture:
     body = [f'<rect x="{_f(-half_w)}" y="{_f(-half_h)}" width="{_f(2 * half_w)}" height="{_f(2 * half_h)}" '
             f'fill="none" stroke="#000" stroke-width="0.25" stroke-dasharray="1.5 1"/>',
             _polyline(_outline_svg_points(model), True, 'stroke="#000" stroke-width="0.6"'),
-            _marker(0.0, 0.0, "box"), _text(-0.8, 4.2, "box centre", "end", css="label")]
+            _marker(0.0, 0.0, "box"), _text(-0.8, -1.0, "box centre", "end", css="label")]
     body.append(f'<g stroke="#000" stroke-width="0.2" stroke-dasharray="0.4 0.8">'
                 f'<line x1="{_f(left)}" y1="{_f(-cy)}" x2="{_f(left + width)}" y2="{_f(-cy)}"/>'
                 f'<line x1="{_f(cx)}" y1="{_f(top)}" x2="{_f(cx)}" y2="{_f(top + height - 12)}"/></g>')
@@ -262,8 +278,17 @@ def outline_picture(model: LensModel) -> Picture:
                     f'stroke-width="0.45" stroke-dasharray="2.5 0.8 0.6 0.8"/>')
         body.append(_text(0.0, y + 3.2, f"segment top {number(model.segment_top_mm + half_h, 1)} mm above the "
                                         "box bottom", "middle", css="label"))
-    centre_name = "fitting cross (optical centre)" if model.design == "progressive" else "optical centre"
-    body += [_marker(cx, -cy, "centre"), _text(cx + 2.2, -cy - 2.0, centre_name, css="label")]
+    # Labels of the centres run toward the middle of the lens, away from the near (nasal) edge.
+    side, anchor = (-1.0, "end") if cx >= 0 else (1.0, "start")
+    if model.fitting_cross_mm is not None and model.fitting_cross_mm != model.centre_mm:
+        fx, fy = model.fitting_cross_mm
+        body += [_marker(fx, -fy, "fitting"),
+                 _text(fx + side * 2.8, -fy - 1.8, f"fitting cross, height {number(fy + half_h, 1)} mm", anchor,
+                       css="label")]
+        centre_name = "optical centre (prism reference point)"
+    else:
+        centre_name = "fitting cross (optical centre)" if model.design == "progressive" else "optical centre"
+    body += [_marker(cx, -cy, "centre"), _text(cx + side * 2.6, -cy + 4.4, centre_name, anchor, css="label")]
     inward = _nose_sign(model.eye) * cx
     body += _side_labels(model, -half_h - 1.2)
     body.append(_text(0.0, half_h + 4.0, f"A {number(model.box_width_mm, 1)} mm × B {number(model.box_height_mm, 1)} mm",
@@ -321,9 +346,20 @@ def contour_segments(values: np.ndarray, xs: np.ndarray, ys: np.ndarray, level: 
     return segments
 
 
-def _label_segment(segments: list[tuple], centre: tuple[float, float]) -> tuple:
-    """The segment nearest the line straight down from the optical centre: the labels line up there, one under another."""
-    cx, cy = centre
+def _inside(model: LensModel, x: float, y: float) -> bool:
+    """Whether a point (mm about the box centre) lies inside the outline, which is star-shaped about the box centre."""
+    angles = np.arctan2(model.outline_mm[:, 1], model.outline_mm[:, 0])
+    radii = np.hypot(model.outline_mm[:, 0], model.outline_mm[:, 1])
+    order = np.argsort(angles)
+    reach = np.interp(math.atan2(y, x), angles[order], radii[order], period=2 * math.pi)
+    return math.hypot(x, y) < reach - 1.0
+
+
+def _label_segment(segments: list[tuple], model: LensModel) -> tuple:
+    """The segment inside the outline nearest the line straight down from the optical centre: the labels line up there."""
+    cx, cy = model.centre_mm
+    inside = [s for s in segments if _inside(model, (s[0][0] + s[1][0]) / 2, (s[0][1] + s[1][1]) / 2)]
+    segments = inside or segments
 
     def off_the_line(segment):
         (ax, ay), (bx, by) = segment
@@ -345,7 +381,8 @@ def thickness_map_picture(model: LensModel, prefix: str) -> Picture:
     high = max(model.center_thickness_mm, float(edge[model.thickest]))
     step = contour_step_mm(low, high)
     levels = [step * k for k in range(math.ceil(low / step), math.floor(high / step) + 1)]
-    levels = [level for level in levels if low < level < high] or [round((low + high) / 2.0, 2)]
+    # A level within a quarter step of either end would make a band too thin to read.
+    levels = [level for level in levels if low + step / 4 < level < high - step / 4] or [round((low + high) / 2.0, 2)]
     bands = np.searchsorted(np.asarray(levels), field)  # band k lies between levels[k-1] and levels[k]
     clip = f"{prefix}-clip"
     body = [f'<defs><clipPath id="{clip}">{_polyline(_outline_svg_points(model), True)}</clipPath></defs>',
@@ -365,7 +402,7 @@ def thickness_map_picture(model: LensModel, prefix: str) -> Picture:
             continue
         path = "".join(f"M{_f(a[0])} {_f(-a[1])}L{_f(b[0])} {_f(-b[1])}" for a, b in segments)
         body.append(f'<path d="{path}" fill="none" stroke="#000" stroke-width="0.22" clip-path="url(#{clip})"/>')
-        (ax, ay), (bx, by) = _label_segment(segments, model.centre_mm)
+        (ax, ay), (bx, by) = _label_segment(segments, model)
         body.append(_text((ax + bx) / 2, -(ay + by) / 2 + 0.8, f"{number(level, 2).rstrip('0').rstrip('.')}",
                           "middle", 2.0, css="contour-label"))
     body.append(_polyline(_outline_svg_points(model), True, 'stroke="#000" stroke-width="0.6"'))

@@ -108,6 +108,19 @@ def test_the_sag_formula_checks_against_its_worked_example():
     assert float(model.front_sag_at(25.0)) == pytest.approx(3.838, abs=5e-4)
 
 
+def test_thinning_prism_joins_the_prescribed_prism_in_the_wedge():
+    # 3Δ base out (180°) prescribed and 4Δ base down (270°) thinning prism: one resultant of 5Δ
+    # (Source: vector addition of prisms, P = √(H² + V²), as in the optics package's resultant_prism docs: 3-4-5).
+    result = spherical_result(0.0, 0.0, 1.5, 4.0, prism=(3.0, 180.0))
+    result["lenses"]["right"]["geometry"]["thinning_prism"] = {"amount": 4.0, "base_deg": 270.0}
+    model = lens_model(result, "right")
+    assert model.shape.prism_delta == pytest.approx(5.0)
+    vertical = section(model, horizontal=False)
+    thickness = vertical.back_mm - vertical.front_mm
+    # Source: Jalie, g = P d / (100 (n − 1)): 4Δ down over the 50 mm vertical chord at n 1.5 → 4.0 mm.
+    assert thickness[0] - thickness[-1] == pytest.approx(4.0, abs=1e-6)
+
+
 def test_prism_makes_the_section_a_wedge_of_the_published_size():
     # A plano lens with plano surfaces and 3Δ base out (0° for the right eye is base in; 180° base out):
     # Source: Jalie — thickness difference g = P d / (100 (n − 1)); 3Δ over 50 mm at n 1.5 → 3.0 mm.
@@ -132,9 +145,12 @@ def test_the_outline_is_drawn_to_scale_in_millimetres(default_host):
     assert float(first.get("x2")) - float(first.get("x1")) == pytest.approx(10.0)
     texts = [t.text for t in root.iter(f"{SVG}text")]
     assert "10 mm" in texts and "A 52.0 mm × B 36.0 mm" in texts
-    # DP-1000 right: (A + DBL)/2 − PD = (52 + 18)/2 − 31.5 = 3.5 mm in; height 20 − B/2 = 2.0 mm up (ISO 8624).
-    assert "optical centre 3.5 mm in, 2.0 mm up from the box centre" in texts
-    assert "fitting cross (optical centre)" in texts
+    # DP-1000 right: (A + DBL)/2 − PD = (52 + 18)/2 − 31.5 = 3.5 mm in (ISO 8624). The fitting cross at the
+    # order's height 20 mm; the optical centre at the progressive's prism reference point 4 mm below it
+    # (Common practice: DOMAIN.md, "often about 4 mm"; the lab's default): 20 − 4 − B/2 = 2.0 mm down.
+    assert "optical centre 3.5 mm in, 2.0 mm down from the box centre" in texts
+    assert "fitting cross, height 20.0 mm" in texts
+    assert "optical centre (prism reference point)" in texts
 
 
 def test_the_left_lens_is_the_mirror_image_of_the_right():
