@@ -255,6 +255,15 @@ class EngineInfo(_Out):
     stages: list[str]
 
 
+class Approval(_Out):
+    """Who let a result that needed a person go to production (``lenslane decide … approve``)."""
+
+    by: str
+    at: str
+    note: str
+    flags_acknowledged: list[str]
+
+
 class LensOrderResult(_Out):
     """``lens-order-result/1``: what the engine publishes in ``outbox/<order_id>.json``."""
 
@@ -269,6 +278,9 @@ class LensOrderResult(_Out):
     changes: list[ChangeRecord]
     engine: EngineInfo
     caution: str
+    approved: Approval | None = None
+    revision: int | None = Field(default=None, ge=2, description="set on a replaced order's next version")
+    supersedes: str | None = Field(default=None, description="sha256 of the result this revision replaces")
 
 
 CAUTION = (
