@@ -26,13 +26,26 @@ def _local_day(timestamp: str | None) -> date | None:
 
 
 def counts_today(lab_root: Path, today: date | None = None) -> dict[str, int]:
-    """How many orders were published, rejected and held today (the lab's local day), from the audit log."""
+    """What became of orders today (the lab's local day), from the audit log.
+
+    ``published``: results made without a person plus results a person
+    approved; ``review``: results that went to review; ``rejected``: orders
+    refused by the engine plus results a person refused; ``held``: versions of
+    published orders held for a person.
+    """
     today = today or date.today()
     counted: Counter[str] = Counter()
     for record in iter_records(Path(lab_root)):
-        if record.get("event") in OUTCOMES and _local_day(record.get("ts")) == today:
-            counted[record["event"]] += 1
-    return {event: counted[event] for event in ("published", "rejected", "held")}
+        event = record.get("event")
+        if event not in OUTCOMES and event != "decided" or _local_day(record.get("ts")) != today:
+            continue
+        if event == "published":
+            counted["review" if record.get("status") == "review" else "published"] += 1
+        elif event == "decided":
+            counted[{"approve": "published", "refuse": "rejected"}.get(record.get("action"), "")] += 1
+        else:
+            counted[event] += 1
+    return {outcome: counted[outcome] for outcome in ("published", "review", "rejected", "held")}
 
 
 class Hit(NamedTuple):

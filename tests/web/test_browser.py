@@ -75,7 +75,8 @@ def test_queue_search_and_order_page_in_a_browser(server, browser_page):
     page.goto(base)
     assert page.locator("p.caution").first.inner_text().endswith(CAUTION)
     # Today's counts as the lab folder holds them.
-    assert page.locator(".count-published").inner_text() == str(len(results))
+    assert page.locator(".count-published").inner_text() == str(len(list((lab.root / "outbox").glob("*.json"))))
+    assert page.locator(".count-review").inner_text() == str(len(list((lab.root / "review").glob("*.json"))))
     assert page.locator(".count-rejected").inner_text() == str(len(list((lab.root / "rejected").glob("*.errors.json"))))
     _screenshot(page, "queue.png")
 
@@ -122,3 +123,5 @@ def test_queue_order_approve_in_a_browser(server, browser_page):
     assert result["status"] == "ready" and result["approved"]["by"] == "Technician T-7"
     page.goto(base)
     assert page.locator("table.queue a[href='/orders/DP-1011']").count() == 0
+    assert page.locator(".count-review").inner_text() == "1"  # it went to review today, and was approved
+    assert page.locator(".count-published").inner_text() == str(len(list((lab.root / "outbox").glob("*.json"))))

@@ -88,10 +88,13 @@ def client(sample_lab):
 def test_the_queue_page_counts_todays_outcomes_and_carries_the_caution(client):
     web, lab, results = client
     page = web.get("/").get_data(as_text=True)
-    # What the lab folder holds: the results published and the refused inputs beside their reasons.
-    published = len(results)
+    # What the lab folder holds: the results published, those in review, the refused inputs beside their reasons.
+    published = len(list((lab.root / "outbox").glob("*.json")))
+    review = len(list((lab.root / "review").glob("*.json")))
     rejected = len(list((lab.root / "rejected").glob("*.errors.json")))
+    assert published >= 2 and review == 1
     assert f'<strong class="count-published">{published}</strong> published' in page
+    assert f'<strong class="count-review">{review}</strong> to review' in page
     assert f'<strong class="count-rejected">{rejected}</strong> rejected' in page
     assert CAUTION in page
 
