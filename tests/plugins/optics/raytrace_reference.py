@@ -26,16 +26,9 @@ from rayoptics.raytr.trace import trace
 WAVELENGTH_NM = 587.6
 
 
-def singlet(front_radius_mm: float, back_radius_mm: float, thickness_mm: float, index: float, *,
-            tilt_about_x_deg: float = 0.0, tilt_about_y_deg: float = 0.0,
-            front_cross_radius_mm: float | None = None, toric_rotation_deg: float = 0.0,
-            object_distance_mm: float = 1e10, back_gap_mm: float = 50.0) -> OpticalModel:
-    """A lens in air; optionally tilted as a whole, optionally with a toric front surface.
-
-    ``front_cross_radius_mm`` makes the front a toroid (radius ``front_radius_mm``
-    in its y section, ``front_cross_radius_mm`` in its x section), turned by
-    ``toric_rotation_deg`` about the line of sight. A radius of 0 is a plane.
-    """
+def _two_surfaces(front_radius_mm: float, back_radius_mm: float, thickness_mm: float, index: float,
+                  object_distance_mm: float, back_gap_mm: float) -> OpticalModel:
+    """Two spherical surfaces in air, the front the stop; rays start on the object plane."""
     opm = OpticalModel()
     opm.radius_mode = True
     sm, osp = opm["seq_model"], opm["optical_spec"]
@@ -46,7 +39,21 @@ def singlet(front_radius_mm: float, back_radius_mm: float, thickness_mm: float, 
     sm.add_surface([front_radius_mm, thickness_mm, index])
     sm.set_stop()
     sm.add_surface([back_radius_mm, back_gap_mm])
-    front, back = sm.ifcs[1], sm.ifcs[2]
+    return opm
+
+
+def singlet(front_radius_mm: float, back_radius_mm: float, thickness_mm: float, index: float, *,
+            tilt_about_x_deg: float = 0.0, tilt_about_y_deg: float = 0.0,
+            front_cross_radius_mm: float | None = None, toric_rotation_deg: float = 0.0,
+            object_distance_mm: float = 1e10, back_gap_mm: float = 50.0) -> OpticalModel:
+    """A lens in air; optionally tilted as a whole, optionally with a toric front surface.
+
+    ``front_cross_radius_mm`` makes the front a toroid (radius ``front_radius_mm``
+    in its y section, ``front_cross_radius_mm`` in its x section), turned by
+    ``toric_rotation_deg`` about the line of sight. A radius of 0 is a plane.
+    """
+    opm = _two_surfaces(front_radius_mm, back_radius_mm, thickness_mm, index, object_distance_mm, back_gap_mm)
+    front, back = opm["seq_model"].ifcs[1], opm["seq_model"].ifcs[2]
     if front_cross_radius_mm is not None:
         front.profile = YToroid(r=front_radius_mm, rR=front_cross_radius_mm)
     if tilt_about_x_deg or tilt_about_y_deg:
@@ -57,7 +64,7 @@ def singlet(front_radius_mm: float, back_radius_mm: float, thickness_mm: float, 
         back.decenter = DecenterData("reverse", **angles)
     elif toric_rotation_deg:
         front.decenter = DecenterData("dec and return", gamma=toric_rotation_deg)
-    sm.do_apertures = False
+    opm["seq_model"].do_apertures = False
     opm.update_model()
     return opm
 
@@ -120,3 +127,33 @@ def lens_normal(opm: OpticalModel, step_mm: float = 1e-3) -> np.ndarray:
     normal = np.cross(across, up)
     normal /= np.linalg.norm(normal)
     return normal if normal[2] > 0 else -normal
+
+
+def worn_singlet(front_radius_mm: float, back_radius_mm: float, back_sweep_radius_mm: float, thickness_mm: float,
+                 index: float, rotation: np.ndarray, decenter_mm: tuple[float, float] = (0.0, 0.0),
+                 object_distance_mm: float = 10.0, back_gap_mm: float = 50.0) -> OpticalModel:
+    """A lens with a spherical front and a toric back (YToroid), posed by a rotation matrix and a decentration.
+
+    ``rotation``'s columns are the lens's own x, y and z axes in the object frame; the back's profile (radius
+    ``back_radius_mm``) lies in the lens's y section, swept about an axis parallel to its y at
+    ``back_sweep_radius_mm`` (0: a cylinder). The front vertex sits at ``decenter_mm`` (x, y) on the first
+    surface's plane; the frame returns after the back surface, so image space is the object frame again.
+    """
+    from transforms3d.euler import mat2euler
+
+    opm = _two_surfaces(front_radius_mm, back_radius_mm, thickness_mm, index, object_distance_mm, back_gap_mm)
+    front, back = opm["seq_model"].ifcs[1], opm["seq_model"].ifcs[2]
+    back.profile = YToroid(r=back_radius_mm, rR=back_sweep_radius_mm)
+    # rayoptics turns 'rxyz' Euler angles, alpha and beta taken left-handed, into the surface's rotation.
+    a, b, g = np.degrees(mat2euler(np.asarray(rotation, dtype=float), axes="rxyz"))
+    angles = {"alpha": -a, "beta": -b, "gamma": g}
+    front.decenter = DecenterData("decenter", x=decenter_mm[0], y=decenter_mm[1], **angles)
+    back.decenter = DecenterData("reverse", x=decenter_mm[0], y=decenter_mm[1], **angles)
+    opm["seq_model"].do_apertures = False
+    opm.update_model()
+    return opm
+
+
+def chief_exit(opm: OpticalModel) -> tuple[np.ndarray, np.ndarray]:
+    """Where the ray entering at the object-plane origin along +z leaves the lens, and its direction."""
+    return _exit_line(opm, 0.0, 0.0)
