@@ -10,6 +10,7 @@ Every value is proposed as its own change, with the method that made it.
 """
 from __future__ import annotations
 
+import math
 from functools import lru_cache
 from typing import Annotated, NamedTuple
 
@@ -19,8 +20,10 @@ from lenslane import Change, Flag, Stage, hookimpl
 from lenslane.plugins.optics.front_curve import (
     FRONT_CURVE_METHODS, ROTATION_DISTANCE_MM, NoBestForm, front_curve, front_curve_method, nearest_stocked_base,
 )
+from lenslane.plugins.optics.asworn import best_form, off_axis_record
 from lenslane.plugins.optics.outline import DEFAULT_EXPONENT, decentration, modelled_outline, optical_centre
 from lenslane.plugins.optics.power import power_matrix, spherical_equivalent
+from lenslane.plugins.optics.tilt import tilt_obliquity
 from lenslane.plugins.optics.thickness import (
     EdgedLens, LensNotMakeable, LensRequest, LensShape, OutlineGrid, edged_lenses, lens_weight_g, outline_grid,
 )
@@ -28,6 +31,14 @@ from lenslane.plugins.optics.thickness import (
 SURFACES_SOURCE = ("Jalie, The Principles of Ophthalmic Lenses: surface power, exact sag, thick-lens back vertex "
                    "power; Euler's theorem for the toric back")
 COMMON_PRACTICE = "Common practice"
+EXACT_BEST_FORM = "exact_best_form"
+EXACT_BEST_FORM_METHOD = ("the stocked base whose lens (this surfacing power, its own centre thickness, worn at the "
+                          "frame's tilt) has the least RMS of the largest meridional error at 20° and 30° of gaze up, "
+                          "down, nasal and temporal, by real-ray trace with the eye turning about its centre of "
+                          "rotation; errors relative to the lens's own power on the line of sight")
+EXACT_BEST_FORM_SOURCE = ("Spencer & Murty, JOSA 52:672, 1962 (ray trace); Thibos, Wheeler & Horner, Optom Vis Sci "
+                          "74:367, 1997 (power vectors); Atchison, Applied Optics 31:3579, 1992 (lens form judged "
+                          "off axis)")
 
 Thickness = Annotated[float, Field(gt=0, le=10)]
 
@@ -81,7 +92,8 @@ class GeometryParams(BaseModel):
     model_config = ConfigDict(extra="forbid", strict=True)
 
     front_curve_method: str = "vogel"
-    """How to choose the front curve when the order requests none: "vogel" or "tscherning"."""
+    """How to choose the front curve when the order requests none: "vogel", "tscherning", or "exact_best_form"
+    (the stocked base whose lens, traced with real rays, has the least error at 20° and 30° of gaze)."""
     rotation_distance_mm: Annotated[float, Field(gt=10, le=40)] = ROTATION_DISTANCE_MM
     """Lens to the eye's centre of rotation, for the best form (mm)."""
     base_curves_d: dict[str, Annotated[list[BaseCurve], Field(min_length=1)]] = Field(
@@ -102,7 +114,8 @@ class GeometryParams(BaseModel):
     @field_validator("front_curve_method")
     @classmethod
     def _known_method(cls, value: str) -> str:
-        front_curve_method(value)  # raises ValueError naming the known methods
+        if value != EXACT_BEST_FORM:
+            front_curve_method(value)  # raises ValueError naming the known methods
         return value
 
     @field_validator("base_curves_d")
@@ -215,7 +228,8 @@ def _shared(view, params, outline: tuple[OutlineGrid, str]) -> _Shared:
     )
 
 
-def _choose_front_curve(view, eye, sphere, cylinder, shared: _Shared, params) -> FrontCurveChoice:
+def _choose_front_curve(view, eye, sphere, cylinder, shared: _Shared, params, shape: LensShape,
+                        centre) -> FrontCurveChoice:
     stocked, material_key, index = shared.stocked, shared.material_key, shared.material.index
     requested = view.order.lens.front_curve_d
     inputs = {"material": material_key, "stocked_d": list(stocked)}
@@ -232,7 +246,19 @@ def _choose_front_curve(view, eye, sphere, cylinder, shared: _Shared, params) ->
             ))
         return FrontCurveChoice(requested, "front curve requested by the practice", "The order",
                                 {**inputs, "requested_d": requested}, flags)
-    method = front_curve_method(params.front_curve_method)
+    if params.front_curve_method == EXACT_BEST_FORM:
+        best = _exact_best_form(view, eye, shape, centre, shared, params)
+        if best is not None:
+            return best
+        flags.append(Flag(
+            "front-curve-no-best-form", "info",
+            "No stocked base gives a lens that can be made for this power, so none can be judged off axis; "
+            "Vogel's rule is used instead. A person may choose another material or design.",
+            eye, {"stocked_d": list(stocked), "index": index},
+        ))
+        method = FRONT_CURVE_METHODS["vogel"]
+    else:
+        method = front_curve_method(params.front_curve_method)
     try:
         wanted = front_curve(method.name, sphere, cylinder, index, params.rotation_distance_mm)
     except NoBestForm as exc:
@@ -287,18 +313,74 @@ class _Prepared(NamedTuple):
     shape: LensShape
 
 
-def _prepare(view, eye, surfacing: dict, shared: _Shared, params) -> _Prepared:
-    """The eye's front curve, optical centre and shape, for its surfacing power."""
+def _prepare(view, eye, surfacing: dict, shared: _Shared, params, front_d: float | None = None) -> _Prepared:
+    """The eye's front curve (chosen, or ``front_d`` when given), optical centre and shape, for its surfacing power."""
     order = view.order
     sphere, cylinder, axis = surfacing["sphere"], surfacing.get("cylinder", 0.0), surfacing.get("axis", 180)
-    choice = _choose_front_curve(view, eye, sphere, cylinder, shared, params)
     frame = order.frame
     fit = getattr(order.fit, eye)
     offset = decentration(frame.box_width_mm, frame.bridge_mm, frame.box_height_mm, fit.pd_mm, fit.height_mm)
+    centre = optical_centre(eye, offset)
     prism = view.get(f"lenses.{eye}.prism") or {}
-    shape = LensShape(choice.curve_d, power_matrix(sphere, cylinder, axis), shared.material.index,
-                      float(prism.get("amount", 0.0)), float(prism.get("base_deg", 0.0)))
-    return _Prepared(sphere, cylinder, axis, choice, offset, optical_centre(eye, offset), shape)
+    shape = LensShape(0.0 if front_d is None else front_d, power_matrix(sphere, cylinder, axis),
+                      shared.material.index, float(prism.get("amount", 0.0)), float(prism.get("base_deg", 0.0)))
+    if front_d is None:
+        choice = _choose_front_curve(view, eye, sphere, cylinder, shared, params, shape, centre)
+        shape = shape._replace(front_d=choice.curve_d)
+    else:
+        choice = FrontCurveChoice(front_d, "front curve given", "", {}, [])
+    return _Prepared(sphere, cylinder, axis, choice, offset, centre, shape)
+
+
+def _centre_thickness(shared: _Shared, eye: str, centre, shape: LensShape) -> float:
+    """The solved centre thickness (mm) of one lens; :class:`LensNotMakeable` when there is none."""
+    solved = edged_lenses(shared.grid, [LensRequest(eye, centre, shape, shared.minimums.center_mm, shared.min_edge)])[0]
+    if isinstance(solved, LensNotMakeable):
+        raise solved
+    return solved.center_mm
+
+
+def worn_tilt(view, eye: str):
+    """The obliquity and tangential direction at which the order's frame holds this eye's lens (0° when not given)."""
+    fit = view.order.fit
+    return tilt_obliquity(fit.pantoscopic_deg or 0.0, fit.face_form_deg or 0.0, eye)
+
+
+def made_lens(view, eye: str, surfacing: dict, params: "GeometryParams | None" = None,
+              front_d: float | None = None) -> tuple[float, float]:
+    """The front curve (D) and centre thickness (mm) this stage gives the eye's lens for a surfacing power.
+
+    For the stages before this one whose optics depend on the lens's shape (the
+    exact tilt compensation): the same choice and the same thickness solution as
+    :func:`run`, with ``params`` the lab's ``[stages.geometry]``; ``front_d``
+    fixes the front curve instead of choosing it. Raises
+    :class:`~lenslane.plugins.optics.thickness.LensNotMakeable`.
+    """
+    params = params or GeometryParams()
+    shared = _shared(view, params, _outline(view, params))
+    lens = _prepare(view, eye, surfacing, shared, params, front_d)
+    return lens.shape.front_d, _centre_thickness(shared, eye, lens.centre, lens.shape)
+
+
+def _exact_best_form(view, eye, shape: LensShape, centre, shared: _Shared, params) -> FrontCurveChoice | None:
+    """The stocked base whose lens has the least off-axis error by real-ray trace; None when no base makes a lens."""
+    index = shared.material.index
+    theta, tangential = worn_tilt(view, eye)
+    try:
+        best = best_form(shape.surfacing, index, theta, tangential, eye, shared.stocked,
+                         lambda base: _centre_thickness(shared, eye, centre, shape._replace(front_d=base)),
+                         params.rotation_distance_mm)
+    except ValueError:
+        return None
+    chosen = best.bases_d.index(best.base_d)
+    inputs = {
+        "material": shared.material_key, "stocked_d": list(shared.stocked), "index": index,
+        "rotation_distance_mm": params.rotation_distance_mm, "obliquity_deg": math.degrees(theta),
+        "candidates": [{"base_d": base, "score_d": float(score), "center_thickness_mm": float(centre_mm)}
+                       for base, score, centre_mm in zip(best.bases_d, best.score_d, best.center_mm)],
+        "off_axis": off_axis_record(best.errors, chosen),
+    }
+    return FrontCurveChoice(best.base_d, EXACT_BEST_FORM_METHOD, EXACT_BEST_FORM_SOURCE, inputs, [])
 
 
 def _not_makeable(eye, lens: _Prepared, shared: _Shared, reason: LensNotMakeable) -> Flag:

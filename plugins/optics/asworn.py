@@ -362,7 +362,7 @@ def exact_compensation(wanted, front_d, index, theta, tangential,
     tangential : array, shape (L, 2)
         Tangential direction of the tilt.
     thickness_of : callable
-        ``thickness_of(surfacing (L, 3)) -> centre thickness (L,) mm``: how the
+        ``thickness_of(surfacing (K, 3)) -> centre thickness (K,) mm``: how the
         lab derives the thickness from the surfacing power (the lens geometry
         model); a constant for a lens of fixed thickness.
     tolerance_d : float
@@ -380,12 +380,12 @@ def exact_compensation(wanted, front_d, index, theta, tangential,
     Newton's method on the three elements of the surfacing power matrix (the
     back surface's power matrix less the front's vergence at the back vertex,
     a shift that does not change the steps), from Martin's compensation
-    (:func:`~lenslane.plugins.optics.tilt.compensate_tilt`). Each step
-    re-derives the thickness from the current surfacing power, traces the lens
-    and its three neighbours ``+10⁻³ D`` in each element (one batched trace),
-    and solves the 3×3 Jacobian; the thickness's own slope is left out of the
-    Jacobian (it moves the as-worn power by micro-dioptres per dioptre), which
-    keeps the convergence fast. Three or four steps reach 1e-9 D.
+    (:func:`~lenslane.plugins.optics.tilt.compensate_tilt`). Each step traces
+    the lens and its three neighbours ``+10⁻³ D`` in each element (one batched
+    trace), each at the thickness derived from its own surfacing power, so the
+    forward-difference Jacobian carries the thickness's slope too, and solves
+    the 3×3 system. The as-worn power is nearly linear in the surfacing power,
+    so from Martin's start one or two steps reach 1e-9 D.
 
     References
     ----------
@@ -403,10 +403,10 @@ def exact_compensation(wanted, front_d, index, theta, tangential,
     variants = np.concatenate([np.zeros((1, 3)), _JACOBIAN_STEP_D * np.eye(3)])   # (4, 3)
     repeat = np.repeat(np.arange(count), 4)
     for step in range(_MAX_NEWTON_STEPS + 1):
-        thickness = np.asarray(thickness_of(surfacing), dtype=float).reshape(count)
+        # The lens and its three neighbours, each at the thickness its own surfacing power gives.
         trial = (surfacing[:, None, :] + variants[None, :, :]).reshape(-1, 3)
-        lenses = worn_lenses(front_d[repeat], trial, thickness[repeat], index[repeat], theta[repeat],
-                             tangential[repeat])
+        thickness = np.asarray(thickness_of(trial), dtype=float).reshape(-1)
+        lenses = worn_lenses(front_d[repeat], trial, thickness, index[repeat], theta[repeat], tangential[repeat])
         worn = power_elements(asworn_vergence(lenses)).reshape(count, 4, 3)
         residual = wanted - worn[:, 0]
         if step == _MAX_NEWTON_STEPS or np.max(np.abs(residual)) < tolerance_d:
@@ -414,7 +414,7 @@ def exact_compensation(wanted, front_d, index, theta, tangential,
         jacobian = np.transpose(worn[:, 1:] - worn[:, :1], (0, 2, 1)) / _JACOBIAN_STEP_D   # [l, out, in]
         surfacing = surfacing + np.linalg.solve(jacobian, residual[..., None])[..., 0]
     largest = np.abs(np.linalg.eigvalsh(np.stack([residual[:, [0, 1]], residual[:, [1, 2]]], axis=1))).max(axis=1)
-    return ExactCompensation(surfacing, thickness, largest, step)
+    return ExactCompensation(surfacing, thickness.reshape(count, 4)[:, 0], largest, step)
 
 
 class GazeErrors(NamedTuple):
@@ -520,8 +520,24 @@ class BestForm(NamedTuple):
     score_d: np.ndarray
 
 
+def off_axis_record(errors: GazeErrors, row: int = 0) -> dict:
+    """One lens's off-axis errors as plain numbers for a record: per direction, per angle, M and the cylinder error.
+
+    Examples
+    --------
+    >>> zero = np.zeros((1, 2, 4))
+    >>> off_axis_record(GazeErrors((20.0, 30.0), tuple(GAZE_DIRECTIONS), zero, zero))["up"]
+    {'mean_d': [0.0, 0.0], 'cylinder_d': [0.0, 0.0]}
+    """
+    record: dict = {"gaze_angles_deg": list(errors.angles_deg)}
+    for column, name in enumerate(errors.directions):
+        record[name] = {"mean_d": [float(v) for v in errors.mean_d[row, :, column]],
+                        "cylinder_d": [float(v) for v in errors.cylinder_d[row, :, column]]}
+    return record
+
+
 def best_form(surfacing, index: float, theta: float, tangential, eye: str, bases_d: Sequence[float],
-              thickness_of: Callable[[float], float], wanted,
+              thickness_of: Callable[[float], float],
               rotation_distance_mm: float = ROTATION_DISTANCE_MM,
               angles_deg: Sequence[float] = GAZE_ANGLES_DEG) -> BestForm:
     """Among stocked bases, the front curve whose lens has the least off-axis error.
@@ -542,8 +558,6 @@ def best_form(surfacing, index: float, theta: float, tangential, eye: str, bases
         front; a base for which no lens can be made raises
         :class:`~lenslane.plugins.optics.thickness.LensNotMakeable` and is
         left out.
-    wanted : array, shape (3,)
-        The wanted power on the vertex sphere, D.
     rotation_distance_mm : float
     angles_deg : sequence of float
 
@@ -551,7 +565,9 @@ def best_form(surfacing, index: float, theta: float, tangential, eye: str, bases
     -------
     BestForm
         The base with the least :func:`form_score` (on a tie, the flatter), and
-        every makeable candidate's numbers.
+        every makeable candidate's numbers. Each lens's errors are taken
+        relative to its own as-worn power on the line of sight, so that the
+        form is judged apart from the compensation of its centre.
 
     Raises
     ------
@@ -581,7 +597,7 @@ def best_form(surfacing, index: float, theta: float, tangential, eye: str, bases
     count = len(kept)
     lenses = worn_lenses(np.array(kept), np.broadcast_to(np.asarray(surfacing, dtype=float), (count, 3)),
                          np.array(centres), index, theta, np.asarray(tangential, dtype=float))
-    errors = gaze_errors(lenses, np.broadcast_to(np.asarray(wanted, dtype=float), (count, 3)), [eye] * count,
-                         rotation_distance_mm, angles_deg)
+    errors = gaze_errors(lenses, power_elements(asworn_vergence(lenses)), [eye] * count, rotation_distance_mm,
+                         angles_deg)
     score = form_score(errors)
     return BestForm(kept[int(np.argmin(score))], tuple(kept), np.array(centres), errors, score)

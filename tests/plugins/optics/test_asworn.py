@@ -302,7 +302,7 @@ def test_best_form_chooses_the_least_error_among_stocked_bases():
     def thickness_of(base):
         return solve_center_thickness(RING, LensShape(base, surfacing, index), 1.3, 1.0).center_mm
 
-    chosen = best_form(surfacing, index, theta, t, "right", [6.0, 8.0, 10.0, 12.0, 14.0], thickness_of, surfacing)
+    chosen = best_form(surfacing, index, theta, t, "right", [6.0, 8.0, 10.0, 12.0, 14.0], thickness_of)
     assert chosen.base_d == chosen.bases_d[int(np.argmin(chosen.score_d))]
     assert chosen.base_d > 8.0
     eight = chosen.bases_d.index(8.0)
@@ -317,8 +317,7 @@ def test_best_form_leaves_out_bases_that_make_no_lens():
             raise LensNotMakeable("too steep")
         return 2.0
 
-    chosen = best_form(power_matrix(-2.0), 1.5, 0.0, (0.0, 1.0), "left", [2.0, 6.0, 12.0], thickness_of,
-                       power_matrix(-2.0))
+    chosen = best_form(power_matrix(-2.0), 1.5, 0.0, (0.0, 1.0), "left", [2.0, 6.0, 12.0], thickness_of)
     assert chosen.bases_d == (2.0, 6.0)
     with pytest.raises(ValueError):
-        best_form(power_matrix(-2.0), 1.5, 0.0, (0.0, 1.0), "left", [12.0], thickness_of, power_matrix(-2.0))
+        best_form(power_matrix(-2.0), 1.5, 0.0, (0.0, 1.0), "left", [12.0], thickness_of)
