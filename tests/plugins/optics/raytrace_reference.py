@@ -74,31 +74,37 @@ def paraxial_back_vertex_power(opm: OpticalModel) -> float:
     return 1000.0 / opm["analysis_results"]["parax_data"].fod.bfl
 
 
-def _exit_line(opm: OpticalModel, x: float, y: float) -> tuple[np.ndarray, np.ndarray]:
-    """Where a collimated ray entering at (x, y) leaves the back surface, and its direction."""
-    ray, _, _ = trace(opm["seq_model"], np.array([x, y, 0.0]), np.array([0.0, 0.0, 1.0]), WAVELENGTH_NM)
+def _exit_line(opm: OpticalModel, x: float, y: float,
+               direction: tuple[float, float, float] = (0.0, 0.0, 1.0)) -> tuple[np.ndarray, np.ndarray]:
+    """Where a ray starting at (x, y) on the object plane with the given direction leaves the back surface."""
+    ray, _, _ = trace(opm["seq_model"], np.array([x, y, 0.0]), np.asarray(direction, dtype=float), WAVELENGTH_NM)
     image_point, direction = np.asarray(ray[-1][0]), np.asarray(ray[-1][1])
     # The last segment runs straight from the back surface to the image plane,
     # whose frame is the untilted one: step back along it to the exit point.
     return image_point - ray[-2][2] * direction, direction
 
 
-def vergence_matrix(opm: OpticalModel, behind_mm: float = 0.0, step_mm: float = 1e-3) -> np.ndarray:
+def vergence_matrix(opm: OpticalModel, behind_mm: float = 0.0, step_mm: float = 1e-3,
+                    start: tuple[float, float] = (0.0, 0.0),
+                    direction: tuple[float, float, float] = (0.0, 0.0, 1.0)) -> np.ndarray:
     """The 2×2 vergence matrix (D) of the exit pencil about the chief ray through the lens centre.
 
     Measured on the plane perpendicular to the exit chief ray, ``behind_mm``
-    beyond the chief ray's exit point, in the x (right) / y (up) frame.
+    beyond the chief ray's exit point, in the x (right) / y (up) frame. The
+    chief ray starts at ``start`` on the object plane; all rays of the pencil
+    travel along ``direction`` (a plane wave).
     ``object_distance_mm`` of the model must be finite and small (rays start
     on the object plane).
     """
-    origin, axis = _exit_line(opm, 0.0, 0.0)
+    origin, axis = _exit_line(opm, *start, direction)
+    incoming = direction
     origin = origin + behind_mm * axis
     across = np.array([1.0, 0.0, 0.0]) - axis[0] * axis
     across /= np.linalg.norm(across)
     up = np.cross(axis, across)
 
     def transverse(x: float, y: float) -> tuple[np.ndarray, np.ndarray]:
-        point, direction = _exit_line(opm, x, y)
+        point, direction = _exit_line(opm, start[0] + x, start[1] + y, incoming)
         along = (origin - point).dot(axis) / direction.dot(axis)
         offset = point + along * direction - origin
         position = np.array([offset.dot(across), offset.dot(up)])
@@ -154,6 +160,7 @@ def worn_singlet(front_radius_mm: float, back_radius_mm: float, back_sweep_radiu
     return opm
 
 
-def chief_exit(opm: OpticalModel) -> tuple[np.ndarray, np.ndarray]:
-    """Where the ray entering at the object-plane origin along +z leaves the lens, and its direction."""
-    return _exit_line(opm, 0.0, 0.0)
+def chief_exit(opm: OpticalModel, start: tuple[float, float] = (0.0, 0.0),
+               direction: tuple[float, float, float] = (0.0, 0.0, 1.0)) -> tuple[np.ndarray, np.ndarray]:
+    """Where the ray from ``start`` on the object plane (default along +z) leaves the lens, and its direction."""
+    return _exit_line(opm, start[0], start[1], direction)
