@@ -25,7 +25,7 @@ from lenslane.plugins.compensation import (
 from lenslane.contract.precision import present
 from lenslane.plugins.geometry import GeometryParams, made_lens
 from lenslane.plugins.optics.asworn import (
-    asworn_vergence, exact_compensation, gaze_errors, largest_meridional_error, off_axis_record, power_elements,
+    coddington_vergence, exact_compensation, gaze_errors, largest_meridional_error, off_axis_record, power_elements,
     worn_lenses,
 )
 from lenslane.plugins.optics.power import PowerMatrix
@@ -110,11 +110,12 @@ def _exact(view, eye: str, before: dict, martin: PowerMatrix, theta: float, tang
     after = power_dict(surfacing, before, form)
     centre = float(solved.center_mm[0])
     published = present(after, "surfacing")
-    lenses = worn_lenses([front, front], [surfacing, matrix_of(published)], centre, index, theta, tangential)
-    worn = power_elements(asworn_vergence(lenses))
-    published_residual = float(largest_meridional_error(np.array(wanted) - worn[1]))
+    lenses = worn_lenses([front], [surfacing], centre, index, theta, tangential)
+    as_published = worn_lenses([front], [matrix_of(published)], centre, index, theta, tangential)
+    published_residual = float(largest_meridional_error(
+        np.array(wanted) - power_elements(coddington_vergence(as_published))[0]))
     rotation = (geometry or GeometryParams()).rotation_distance_mm
-    errors = gaze_errors(lenses.take([0]), worn[:1], [eye], rotation)
+    errors = gaze_errors(lenses, [wanted], [eye], rotation)
     return _Exact(surfacing, {
         "method": "exact",
         "martin_surfacing": power_dict(martin, before, form),

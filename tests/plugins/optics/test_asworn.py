@@ -10,7 +10,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from lenslane.plugins.optics.asworn import (
-    GAZE_DIRECTIONS, WornLenses, asworn_vergence, best_form, exact_compensation, form_score, gaze_errors,
+    GAZE_DIRECTIONS, WornLenses, asworn_vergence, best_form, coddington_vergence, exact_compensation, form_score, gaze_errors,
     largest_meridional_error, lens_direction, no_roll_rotation, pencil_vergence, power_elements, worn_lenses,
 )
 from lenslane.plugins.optics.asworn import _through_lens
@@ -52,6 +52,25 @@ def test_untilted_lens_gives_its_back_vertex_power(power, front, thickness, inde
     assert larger == pytest.approx(back_vertex_power(front, back.power_a_d, thickness, index), abs=1e-9)
     assert smaller == pytest.approx(back_vertex_power(front, back.power_b_d, thickness, index), abs=1e-9)
     assert np.max(np.abs(power_elements(vergence) - np.array(surfacing))) < 1e-9
+
+
+@settings(max_examples=60, deadline=None)
+@given(surfacings, st.floats(0.5, 10.0), st.floats(0.0, 12.0), st.sampled_from([1.498, 1.586, 1.74]),
+       st.floats(-5.0, 25.0), st.floats(-5.0, 35.0), st.sampled_from(["right", "left"]))
+def test_generalised_coddington_equals_the_neighbouring_rays(power, front, thickness, index, p, w, eye):
+    # Source: two published ways to the same pencil — the generalised Coddington equations along the chief ray
+    # (Kneisly, JOSA 54:229, 1964) and exactly traced neighbouring rays (Spencer & Murty 1962), the latter checked
+    # against rayoptics above; DOMAIN.md names both. They must agree to 1e-9 D over the contract's tilt ranges.
+    lenses = _worn(front, power_matrix(*power), thickness, index, p, w, eye)
+    assert np.max(np.abs(coddington_vergence(lenses) - asworn_vergence(lenses))) < 1e-9
+
+
+def test_generalised_coddington_gives_the_back_vertex_power_untilted():
+    # Source: the thick-lens back vertex power (Jalie): DOMAIN.md example F₁ +10, F₂ −4, t 6 mm, n 1.5 → +6.417.
+    surfacing = back_vertex_power(10.0, -4.0, 6.0, 1.5)
+    assert round(surfacing, 3) == 6.417
+    worn = coddington_vergence(_worn(10.0, power_matrix(surfacing), 6.0, 1.5))[0]
+    assert np.max(np.abs(worn - surfacing * np.eye(2))) < 1e-9
 
 
 # --------------------------------------------------------------------------

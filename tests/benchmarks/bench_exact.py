@@ -1,0 +1,111 @@
+"""Benchmark: the exact as-worn tilt compensation — its cost per lens, and the engine's throughput with it on.
+
+    make bench
+    python tests/benchmarks/bench_exact.py --orders 2000 --lenses 600
+
+1. The real-ray trace alone: the as-worn vergence of many lenses in one vectorised call, and of one lens
+   per call (the engine's case), per lens.
+2. The exact compensation with its geometry coupling, per lens: the tilt stage's own time (from the
+   pipeline's timing) over the benchmark mix with ``[stages.tilt] method = "exact"``, divided by the lenses
+   it compensated — and the same stage with "martin" for comparison. Aim: 10 ms or less per lens.
+3. The engine draining the benchmark mix with "exact" on, against the file-system floor
+   (tests/benchmarks/bench_drain.py's method). Aim: within 2× of the floor.
+
+Never part of the test suite's pass/fail.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import random
+import shutil
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE.parent.parent))
+
+from lenslane.chain.host import start_host  # noqa: E402
+from lenslane.chain.pipeline import Pipeline  # noqa: E402
+from lenslane.config import LabConfig  # noqa: E402
+from lenslane.contract.intake import read_order  # noqa: E402
+from lenslane.plugins.optics.asworn import asworn_vergence, worn_lenses  # noqa: E402
+from tests.benchmarks.bench_drain import bench  # noqa: E402
+from tests.benchmarks.orders import make_order  # noqa: E402
+
+EXACT = {'# method = "martin"': 'method = "exact"'}
+
+
+def trace_cost(count: int) -> tuple[float, float]:
+    """Seconds per lens for the as-worn vergence: all ``count`` lenses in one call, and one lens per call."""
+    rng = np.random.default_rng(16)
+    front = rng.uniform(1.0, 10.0, count)
+    surfacing = np.column_stack([rng.uniform(-8, 8, count), rng.uniform(-1, 1, count), rng.uniform(-8, 8, count)])
+    surfacing[:, 2] = surfacing[:, 0] + rng.uniform(-3, 0, count)
+    theta = np.radians(rng.uniform(0, 25, count))
+    tangential = np.column_stack([np.cos(rng.uniform(0, np.pi, count)), np.ones(count)])
+    lenses = worn_lenses(front, surfacing, rng.uniform(1.0, 8.0, count), 1.6, theta, tangential)
+    started = time.perf_counter()
+    asworn_vergence(lenses)
+    batched = (time.perf_counter() - started) / count
+    single = min(count, 500)
+    started = time.perf_counter()
+    for i in range(single):
+        asworn_vergence(lenses.take([i]))
+    return batched, (time.perf_counter() - started) / single
+
+
+def stage_cost(orders: list[dict], method: str) -> tuple[float, int, float]:
+    """The tilt stage's seconds per compensated lens, the lenses compensated, and the whole chain's seconds."""
+    host = start_host(LabConfig(stages={"tilt": {"method": method}}))
+    pipeline = Pipeline(host)
+    parsed = [read_order(json.dumps(data).encode(), host.settings.materials) for data in orders]
+    pipeline.run(*parsed[0])  # warm up
+    tilt_seconds, lenses, chain = 0.0, 0, 0.0
+    for order, received in parsed:
+        outcome = pipeline.run(order, received)
+        tilt_seconds += outcome.timings["tilt"]
+        chain += sum(outcome.timings.values())
+        lenses += sum(1 for c in outcome.result["changes"] if c["stage"] == "tilt")
+    return tilt_seconds / max(lenses, 1), lenses, chain
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--orders", type=int, default=2000, help="backlog drained with exact on (default 2000)")
+    parser.add_argument("--lenses", type=int, default=600, help="orders of the mix timed in-process (default 600)")
+    parser.add_argument("--keep", action="store_true", help="keep the generated labs")
+    args = parser.parse_args()
+    print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}")
+
+    batched, single = trace_cost(10000)
+    print(f"as-worn trace: {1e6 * batched:.1f} µs per lens with 10 000 lenses in one call, "
+          f"{1e3 * single:.2f} ms per lens one at a time")
+
+    rng = random.Random(20261201)
+    orders = [make_order(i, rng) for i in range(args.lenses)]
+    for method in ("martin", "exact"):
+        per_lens, lenses, chain = stage_cost(orders, method)
+        print(f"tilt stage, method {method}: {1e3 * per_lens:.2f} ms per compensated lens ({lenses} lenses), "
+              f"the whole chain {1e3 * chain / len(orders):.2f} ms per order")
+
+    workdir = Path(tempfile.mkdtemp(prefix="lenslane-bench-exact-", dir=os.environ.get("BENCH_DIR")))
+    try:
+        row = bench(args.orders, workdir, EXACT)
+        print(f"N={row['orders']} with exact on: engine {row['engine_rate']:.0f} orders/s ({row['engine_s']:.1f} s), "
+              f"floor {row['floor_rate']:.0f} orders/s, ratio {row['ratio']:.2f} (aim ≤ 2), "
+              f"published {row['published']}")
+    finally:
+        if not args.keep:
+            shutil.rmtree(workdir, ignore_errors=True)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
