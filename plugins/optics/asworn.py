@@ -319,16 +319,8 @@ def asworn_vergence(lenses: WornLenses) -> np.ndarray:
 def coddington_vergence(lenses: WornLenses) -> np.ndarray:
     """The as-worn vergence matrix on the line of sight by the generalised Coddington equations (no neighbours).
 
-    Parameters
-    ----------
-    lenses : WornLenses
-        Shape (L,).
-
-    Returns
-    -------
-    ndarray, shape (L, 2, 2)
-        D, in the x (right) / y (up) frame, at the back-vertex plane: the
-        same quantity as :func:`asworn_vergence`.
+    Takes and returns what :func:`asworn_vergence` does: lenses (L,) → the
+    vergence matrices (L, 2, 2) in D at the back-vertex plane, x right, y up.
 
     Notes
     -----
