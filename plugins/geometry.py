@@ -376,7 +376,8 @@ def _exact_best_form(view, eye, shape: LensShape, centre, shared: _Shared, param
     inputs = {
         "material": shared.material_key, "stocked_d": list(shared.stocked), "index": index,
         "rotation_distance_mm": params.rotation_distance_mm, "obliquity_deg": math.degrees(theta),
-        "candidates": [{"base_d": base, "score_d": float(score), "center_thickness_mm": float(centre_mm)}
+        "candidates": [{"base_d": base, "score_d": float(score) if math.isfinite(score) else None,
+                        "center_thickness_mm": float(centre_mm)}
                        for base, score, centre_mm in zip(best.bases_d, best.score_d, best.center_mm)],
         "off_axis": off_axis_record(best.errors, chosen),
     }

@@ -29,6 +29,7 @@ from lenslane.plugins.optics.asworn import (
     worn_lenses,
 )
 from lenslane.plugins.optics.power import PowerMatrix
+from lenslane.plugins.optics.raytrace import RayMissedSurface
 from lenslane.plugins.optics.thickness import LensNotMakeable
 from lenslane.plugins.optics.tilt import compensate_tilt, martin_factor, tangential_meridian_deg, tilt_obliquity
 
@@ -196,7 +197,7 @@ def run(view, params: TiltParams):
             try:
                 exact = _exact(view, eye, before, martin, theta, tangential, index, form)
                 method, source = EXACT_METHOD, EXACT_SOURCE
-            except LensNotMakeable as exc:
+            except (LensNotMakeable, RayMissedSurface) as exc:
                 yield Flag("tilt-exact-not-possible", "warning",
                            f"The exact tilt compensation needs the lens's shape, and no lens can be made for this "
                            f"power and frame ({exc}); Martin's formula is used instead.", eye, {})

@@ -41,7 +41,7 @@ import numpy as np
 
 from lenslane.plugins.optics.power import PowerMatrix
 from lenslane.plugins.optics.raytrace import (
-    intersect_sphere, intersect_torus, refract, sphere_normal, torus_normal,
+    RayMissedSurface, intersect_sphere, intersect_torus, refract, sphere_normal, torus_normal,
 )
 from lenslane.plugins.optics.surfaces import back_surface_power, surface_curvature_per_mm
 from lenslane.plugins.optics.tilt import compensate_tilt
@@ -523,7 +523,8 @@ class GazeErrors(NamedTuple):
     """Off-axis errors of lenses (L,) at gaze angles (A,) in the directions (D,) of :data:`GAZE_DIRECTIONS`.
 
     ``mean_d`` the mean power error M, ``cylinder_d`` the astigmatic error
-    2√(J₀² + J₄₅²), both (L, A, D) in dioptres.
+    2√(J₀² + J₄₅²), both (L, A, D) in dioptres; NaN where the pencil does not
+    get through the lens (beyond its edge, or totally reflected).
     """
 
     angles_deg: tuple[float, ...]
@@ -587,7 +588,18 @@ def gaze_errors(lenses: WornLenses, wanted, eyes: Sequence[str],
     frame = np.transpose(turn[:, :, :2], (0, 2, 1))                           # columns e_x, e_y turned
     per_lens = angles.size * len(names)
     repeat = np.repeat(np.arange(count), per_lens)
-    vergence = power_elements(pencil_vergence(lenses.take(repeat), reference, chief, frame))
+    try:
+        vergence = power_elements(pencil_vergence(lenses.take(repeat), reference, chief, frame))
+    except RayMissedSurface:
+        # Some pencil misses (a ray beyond the edge of a steep lens, or totally reflected): each on its own,
+        # NaN for those that do not get through.
+        vergence = np.full((repeat.size, 3), np.nan)
+        for p in range(repeat.size):
+            try:
+                vergence[p] = power_elements(pencil_vergence(lenses.take(repeat[p:p + 1]), reference[p:p + 1],
+                                                             chief[p:p + 1], frame[p:p + 1]))[0]
+            except RayMissedSurface:
+                pass
     error = (vergence - wanted[repeat]).reshape(count, angles.size, len(names), 3)
     mean = 0.5 * (error[..., 0] + error[..., 2])
     cylinder = 2.0 * np.hypot(0.5 * (error[..., 0] - error[..., 2]), error[..., 1])
@@ -600,7 +612,8 @@ def form_score(errors: GazeErrors) -> np.ndarray:
     Returns
     -------
     ndarray, shape (L,)
-        ``√(mean (|M| + cyl/2)²)`` over the angles and directions, D.
+        ``√(mean (|M| + cyl/2)²)`` over the angles and directions, D;
+        infinite for a lens that some pencil does not get through.
 
     References
     ----------
@@ -609,7 +622,8 @@ def form_score(errors: GazeErrors) -> np.ndarray:
     31:3579.
     """
     largest = np.abs(errors.mean_d) + 0.5 * errors.cylinder_d
-    return np.sqrt(np.mean(largest.reshape(largest.shape[0], -1) ** 2, axis=1))
+    score = np.sqrt(np.mean(largest.reshape(largest.shape[0], -1) ** 2, axis=1))
+    return np.where(np.isnan(score), np.inf, score)
 
 
 class BestForm(NamedTuple):
@@ -620,6 +634,11 @@ class BestForm(NamedTuple):
     center_mm: np.ndarray
     errors: GazeErrors
     score_d: np.ndarray
+
+
+def _number(value) -> float | None:
+    """A float for a record, None for NaN (a pencil that did not get through)."""
+    return None if np.isnan(value) else float(value)
 
 
 def off_axis_record(errors: GazeErrors, row: int = 0) -> dict:
@@ -633,8 +652,8 @@ def off_axis_record(errors: GazeErrors, row: int = 0) -> dict:
     """
     record: dict = {"gaze_angles_deg": list(errors.angles_deg)}
     for column, name in enumerate(errors.directions):
-        record[name] = {"mean_d": [float(v) for v in errors.mean_d[row, :, column]],
-                        "cylinder_d": [float(v) for v in errors.cylinder_d[row, :, column]]}
+        record[name] = {"mean_d": [_number(v) for v in errors.mean_d[row, :, column]],
+                        "cylinder_d": [_number(v) for v in errors.cylinder_d[row, :, column]]}
     return record
 
 

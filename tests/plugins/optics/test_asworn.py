@@ -11,7 +11,8 @@ from hypothesis import strategies as st
 
 from lenslane.plugins.optics.asworn import (
     GAZE_DIRECTIONS, WornLenses, asworn_vergence, best_form, coddington_vergence, exact_compensation, form_score, gaze_errors,
-    largest_meridional_error, lens_direction, no_roll_rotation, pencil_vergence, power_elements, worn_lenses,
+    largest_meridional_error, lens_direction, no_roll_rotation, off_axis_record, pencil_vergence, power_elements,
+    worn_lenses,
 )
 from lenslane.plugins.optics.asworn import _through_lens
 from lenslane.plugins.optics.front_curve import tscherning_front_curves
@@ -340,3 +341,17 @@ def test_best_form_leaves_out_bases_that_make_no_lens():
     assert chosen.bases_d == (2.0, 6.0)
     with pytest.raises(ValueError):
         best_form(power_matrix(-2.0), 1.5, 0.0, (0.0, 1.0), "left", [12.0], thickness_of)
+
+
+def test_a_pencil_that_misses_the_lens_is_recorded_as_missing():
+    # Source: geometry of the sphere — a front of radius 10 mm (n 1.6: +60 D) on a plano back cannot be met where
+    # the 30° gaze through a centre of rotation 27 mm behind the back vertex crosses the back, 15.6 mm off the
+    # axis; the error there is unknown (NaN, None in the record), the 5° gaze keeps its numbers, and the form's
+    # score is infinite. The back vertex power of that lens: Fv = F₁/(1 − (t/n)F₁) (Jalie).
+    surfacing = power_matrix(back_vertex_power(60.0, 0.0, 3.0, 1.6))
+    lenses = _worn(60.0, surfacing, 3.0, 1.6)
+    errors = gaze_errors(lenses, [surfacing], ["right"], angles_deg=(5.0, 30.0))
+    assert np.all(np.isfinite(errors.mean_d[0, 0])) and np.all(np.isnan(errors.mean_d[0, 1]))
+    record = off_axis_record(errors)
+    assert record["up"]["mean_d"][1] is None and isinstance(record["up"]["mean_d"][0], float)
+    assert form_score(errors)[0] == np.inf
