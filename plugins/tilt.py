@@ -4,15 +4,15 @@ A tilted lens acts along the line of sight as ``k Sᵀ F S`` (Martin's formula o
 the power matrix). When the order gives a pantoscopic or face-form angle, the
 surfacing power becomes the exact inverse ``F = S⁻ᵀ F_w S⁻¹ / k`` of the wanted
 power ``F_w`` (the surfacing power so far, after vertex compensation), with the
-lens index from the order or the lab's material table. A lab that lowers
-optical centres for pantoscopic tilt instead leaves such designs out of
-``apply_to``. Whatever happens, the result says what was and was not applied,
+lens index from the order or the lab's material table. Pantoscopic tilt and
+face form are compensated for the designs the lab lists for each: a lab that
+lowers single-vision optical centres for pantoscopic tilt leaves single vision
+out of ``pantoscopic_apply_to`` and may still compensate its face form. Whatever happens, the result says what was and was not applied,
 and why.
 """
 from __future__ import annotations
 
 import math
-
 from typing import Literal, NamedTuple
 
 import numpy as np
@@ -23,7 +23,7 @@ from lenslane.plugins.compensation import (
     CompensationParams, Design, matrix_of, no_surfacing, not_applied, power_dict, propose, trade_notation,
 )
 from lenslane.contract.precision import present
-from lenslane.plugins.geometry import GeometryParams, made_lens
+from lenslane.plugins.geometry import GeometryParams, planned_centre_mm, planned_fronts
 from lenslane.plugins.optics.asworn import (
     coddington_vergence, exact_compensation, gaze_errors, largest_meridional_error, off_axis_record, power_elements,
     worn_lenses,
@@ -39,11 +39,6 @@ SOURCE = ("Martin's formula, as given in Jalie, The Principles of Ophthalmic Len
           "System for Ophthalmic Dispensing; power-matrix generalisation: Harris, Optom Vis Sci 2002; "
           "Keating, Optom Vis Sci 1995")
 
-ALL_DESIGNS: list[Design] = ["single_vision", "progressive", "bifocal"]
-#: The solve is repeated at most this often when the solved power makes the geometry choose another front curve.
-_FRONT_ROUNDS = 4
-
-
 EXACT_METHOD = ("the surfacing power whose lens, traced with real rays (vector Snell's law through the spherical "
                 "front and toric back at the centre thickness the lens geometry gives it), tilted by θ about the "
                 "axis perpendicular to t with cos θ = cos p · cos w, has an as-worn vergence at the back-vertex "
@@ -53,15 +48,21 @@ EXACT_SOURCE = ("Spencer & Murty, \"General ray-tracing procedure\", JOSA 52:672
                 "1964 (wavefront curvature about the chief ray); Jalie, The Principles of Ophthalmic Lenses "
                 "(thickness); Thibos, Wheeler & Horner, Optom Vis Sci 74:367, 1997 (off-axis errors)")
 
+ALL_DESIGNS: list[Design] = ["single_vision", "progressive", "bifocal"]
+#: The solve is repeated at most this often when the solved powers make the geometry choose other front curves.
+_FRONT_ROUNDS = 4
+
 
 class TiltParams(CompensationParams):
     """``[stages.tilt]``."""
 
-    apply_to: list[Design] = Field(default_factory=lambda: list(ALL_DESIGNS))
-    """The designs whose surfacing power is compensated for tilt."""
+    pantoscopic_apply_to: list[Design] = Field(default_factory=lambda: list(ALL_DESIGNS))
+    """The designs whose surfacing power is compensated for pantoscopic tilt."""
+    face_form_apply_to: list[Design] = Field(default_factory=lambda: list(ALL_DESIGNS))
+    """The designs whose surfacing power is compensated for face form."""
     method: Literal["martin", "exact"] = "martin"
     """"martin": the inverse of Martin's thin-lens formula; "exact": the lens whose real-ray traced
-    as-worn power equals the wanted power, solved together with its centre thickness."""
+    as-worn power equals the wanted power, solved together with its front curve and centre thickness."""
 
     @model_serializer(mode="wrap")
     def _effective(self, handler):
@@ -80,54 +81,61 @@ class _Exact(NamedTuple):
     inputs: dict
 
 
-def _exact(view, eye: str, before: dict, martin: PowerMatrix, theta: float, tangential, index: float,
-           form: str) -> _Exact:
-    """Solve the surfacing power, the front curve and the thickness the geometry stage will give it, together.
+def _exact_pair(view, befores: dict, martins: dict, tilts: dict, index: float, form: str) -> dict[str, _Exact]:
+    """Solve the surfacing powers, the front curves and the thicknesses the geometry stage will give them, together.
 
-    The front curve is the geometry stage's choice for the surfacing power; the
-    power is solved for that front (the thickness re-derived at every step),
-    and again if the solved power makes the geometry stage choose another
-    front, until the front it chooses is the one solved for.
-    Raises :class:`LensNotMakeable` when no lens can be made.
+    The front curves are the geometry stage's choice for the pair's surfacing
+    powers (matched fronts included); each power is solved for its eye's front
+    (the thickness re-derived at every step), and again if the solved powers
+    make the geometry stage choose other fronts, until the fronts it chooses
+    are the ones solved for. Raises :class:`LensNotMakeable` (no lens can be
+    made) or :class:`RayMissedSurface` (a chief ray cannot get through).
     """
-    geometry = view.settings.stage_params.get("geometry")
-    wanted = matrix_of(before)
-    surfacing, front, solved = martin, None, None
+    geometry = view.settings.stage_params.get("geometry") or GeometryParams()
+    surfacings = dict(martins)
+    fronts, solved = None, {}
+
+    def powers(matrices):
+        return {eye: power_dict(matrix, befores[eye], form) for eye, matrix in matrices.items()}
+
     for _ in range(_FRONT_ROUNDS):
-        chosen, _ = made_lens(view, eye, power_dict(surfacing, before, form), geometry)
-        if chosen == front:
+        chosen = planned_fronts(view, powers(surfacings), geometry)
+        if chosen == fronts:
             break
-        front = chosen
+        fronts = chosen
+        for eye, before in befores.items():
+            theta, tangential = tilts[eye]
 
-        def thickness_of(candidates, front=front):
-            return [made_lens(view, eye, power_dict(PowerMatrix(*c), before, form), geometry, front)[1]
-                    for c in candidates]
+            def thickness_of(candidates, eye=eye):
+                return [planned_centre_mm(view, eye, powers({**surfacings, eye: PowerMatrix(*c)}), fronts[eye],
+                                          geometry) for c in candidates]
 
-        solved = exact_compensation([wanted], front, index, theta, tangential, thickness_of)
-        surfacing = PowerMatrix(*(float(v) for v in solved.surfacing[0]))
+            solved[eye] = exact_compensation([matrix_of(before)], fronts[eye], index, theta, tangential, thickness_of)
+            surfacings[eye] = PowerMatrix(*(float(v) for v in solved[eye].surfacing[0]))
     else:
-        raise LensNotMakeable(f"the solved power keeps changing the front curve the lab would choose "
+        raise LensNotMakeable(f"the solved powers keep changing the front curves the lab would choose "
                               f"({_FRONT_ROUNDS} rounds)")
-    after = power_dict(surfacing, before, form)
-    centre = float(solved.center_mm[0])
-    published = present(after, "surfacing")
-    lenses = worn_lenses([front], [surfacing], centre, index, theta, tangential)
-    as_published = worn_lenses([front], [matrix_of(published)], centre, index, theta, tangential)
-    published_residual = float(largest_meridional_error(
-        np.array(wanted) - power_elements(coddington_vergence(as_published))[0]))
-    rotation = (geometry or GeometryParams()).rotation_distance_mm
-    errors = gaze_errors(lenses, [wanted], [eye], rotation)
-    return _Exact(surfacing, {
-        "method": "exact",
-        "martin_surfacing": power_dict(martin, before, form),
-        "asworn_residual_d": float(solved.residual_d[0]),
-        "published_asworn_residual_d": published_residual,
-        "newton_steps": solved.steps,
-        "front_curve_d": front,
-        "center_thickness_mm": centre,
-        "rotation_distance_mm": rotation,
-        "off_axis": off_axis_record(errors),
-    })
+    exact = {}
+    for eye, before in befores.items():
+        theta, tangential = tilts[eye]
+        wanted, front, centre = matrix_of(before), fronts[eye], float(solved[eye].center_mm[0])
+        published = matrix_of(present(power_dict(surfacings[eye], before, form), "surfacing"))
+        lenses = worn_lenses([front, front], [surfacings[eye], published], centre, index, theta, tangential)
+        published_residual = float(largest_meridional_error(
+            np.array(wanted) - power_elements(coddington_vergence(lenses.take([1])))[0]))
+        errors = gaze_errors(lenses.take([0]), [wanted], [eye], geometry.rotation_distance_mm)
+        exact[eye] = _Exact(surfacings[eye], {
+            "method": "exact",
+            "martin_surfacing": power_dict(martins[eye], before, form),
+            "asworn_residual_d": float(solved[eye].residual_d[0]),
+            "published_asworn_residual_d": published_residual,
+            "newton_steps": solved[eye].steps,
+            "front_curve_d": front,
+            "center_thickness_mm": centre,
+            "rotation_distance_mm": geometry.rotation_distance_mm,
+            "off_axis": off_axis_record(errors),
+        })
+    return exact
 
 
 def _missing_fit(view, params: TiltParams, pantoscopic, face_form):
@@ -164,44 +172,60 @@ def run(view, params: TiltParams):
                                   "surfacing power is not compensated for tilt.")
         yield from _missing_fit(view, params, pantoscopic, face_form)
         return
-    if design not in params.apply_to:
+    left_out = [(name, key, value) for name, key, value, designs in (
+        ("pantoscopic tilt", "pantoscopic_apply_to", pantoscopic, params.pantoscopic_apply_to),
+        ("face form", "face_form_apply_to", face_form, params.face_form_apply_to)) if design not in designs]
+    if len(left_out) == 2:
         yield not_applied(
             "tilt",
-            f"The lab's tilt policy does not compensate {design.replace('_', '-')} lenses (apply_to: "
-            f"{', '.join(params.apply_to) or 'none'}), so the surfacing power is not changed for the tilt "
-            "of the frame.",
-            values={"design": design, "apply_to": list(params.apply_to)},
+            f"The lab's tilt policy compensates {design.replace('_', '-')} lenses neither for pantoscopic tilt "
+            f"(pantoscopic_apply_to: {', '.join(params.pantoscopic_apply_to) or 'none'}) nor for face form "
+            f"(face_form_apply_to: {', '.join(params.face_form_apply_to) or 'none'}), so the surfacing power is "
+            "not changed for the tilt of the frame.",
+            values={"design": design, "pantoscopic_apply_to": list(params.pantoscopic_apply_to),
+                    "face_form_apply_to": list(params.face_form_apply_to)},
         )
         return
     yield from _missing_fit(view, params, pantoscopic, face_form)
     assumptions = [f"{name} 0° (not given)" for name, value in
                    (("pantoscopic tilt", pantoscopic), ("face form", face_form)) if value is None]
-    pantoscopic, face_form = pantoscopic or 0.0, face_form or 0.0
+    for name, key, value in left_out:
+        if value:
+            assumptions.append(f"{name} {value:.1f}° not compensated for {design.replace('_', '-')} lenses "
+                               f"(the lab's {key})")
+    pantoscopic = 0.0 if "pantoscopic_apply_to" in (key for _, key, _ in left_out) else pantoscopic or 0.0
+    face_form = 0.0 if "face_form_apply_to" in (key for _, key, _ in left_out) else face_form or 0.0
     if pantoscopic == 0.0 and face_form == 0.0:
-        yield not_applied("tilt", "The pantoscopic tilt and face form are 0°: the lens is not tilted and needs no "
-                                  "compensation.", values={"pantoscopic_deg": 0.0, "face_form_deg": 0.0})
+        reason = ("The pantoscopic tilt and face form are 0°: the lens is not tilted and needs no compensation."
+                  if not left_out else
+                  f"The tilt left to compensate is 0° ({'; '.join(assumptions)}), so the surfacing power is not "
+                  "changed for the tilt of the frame.")
+        yield not_applied("tilt", reason, values={"pantoscopic_deg": 0.0, "face_form_deg": 0.0,
+                                                  "assumptions": assumptions})
         return
     index, index_from = _index(view)
     form = view.settings.cylinder_form
     angles = (f"pantoscopic tilt {pantoscopic:.1f}°, face form {face_form:.1f}°"
               + (f" ({'; '.join(assumptions)})" if assumptions else ""))
-    for eye in view.eyes:
-        before = view.get(f"lenses.{eye}.surfacing")
+    befores = {eye: view.get(f"lenses.{eye}.surfacing") for eye in view.eyes}
+    tilts = {eye: tilt_obliquity(pantoscopic, face_form, eye) for eye in view.eyes}
+    martins = {eye: compensate_tilt(matrix_of(before), *tilts[eye], index)
+               for eye, before in befores.items() if before is not None}
+    exact: dict[str, _Exact] = {}
+    if params.method == "exact" and martins:
+        try:
+            exact = _exact_pair(view, {eye: befores[eye] for eye in martins}, martins, tilts, index, form)
+        except (LensNotMakeable, RayMissedSurface) as exc:
+            yield Flag("tilt-exact-not-possible", "warning",
+                       f"The exact tilt compensation needs the lenses' shape, and no lens can be made for these "
+                       f"powers and this frame ({exc}); Martin's formula is used instead.", None, {})
+    for eye, before in befores.items():
         if before is None:
             yield no_surfacing("tilt", eye)
             continue
-        theta, tangential = tilt_obliquity(pantoscopic, face_form, eye)
-        martin = compensate_tilt(matrix_of(before), theta, tangential, index)
-        method, source, exact = METHOD, SOURCE, None
-        if params.method == "exact":
-            try:
-                exact = _exact(view, eye, before, martin, theta, tangential, index, form)
-                method, source = EXACT_METHOD, EXACT_SOURCE
-            except (LensNotMakeable, RayMissedSurface) as exc:
-                yield Flag("tilt-exact-not-possible", "warning",
-                           f"The exact tilt compensation needs the lens's shape, and no lens can be made for this "
-                           f"power and frame ({exc}); Martin's formula is used instead.", eye, {})
-        after = power_dict(martin if exact is None else exact.matrix, before, form)
+        theta, tangential = tilts[eye]
+        method, source = (METHOD, SOURCE) if eye not in exact else (EXACT_METHOD, EXACT_SOURCE)
+        after = power_dict(martins[eye] if eye not in exact else exact[eye].matrix, before, form)
         obliquity_deg = math.degrees(theta)
         meridian = tangential_meridian_deg(tangential)
         inputs = {
@@ -222,12 +246,12 @@ def run(view, params: TiltParams):
             f"{meridian:.0f}° meridian (index {index:.3f}), so it is made {trade_notation(before)} → "
             f"{trade_notation(after)} for its tilted effect to equal the wanted power."
         )
-        if exact is not None:
-            inputs.update(exact.inputs)
+        if eye in exact:
+            inputs.update(exact[eye].inputs)
             reason = reason[:-1] + (
-                f", traced with real rays through its front of {exact.inputs['front_curve_d']:.2f} D and centre "
-                f"thickness of {exact.inputs['center_thickness_mm']:.1f} mm (Martin's thin-lens formula would "
-                f"give {trade_notation(exact.inputs['martin_surfacing'])}).")
+                f", traced with real rays through its front of {exact[eye].inputs['front_curve_d']:.2f} D and "
+                f"centre thickness of {exact[eye].inputs['center_thickness_mm']:.1f} mm (Martin's thin-lens "
+                f"formula would give {trade_notation(exact[eye].inputs['martin_surfacing'])}).")
         yield from propose(
             "tilt", eye, before, after, params, reason=reason, method=method, source=source, inputs=inputs,
             described=f"Tilt compensation for {angles} (obliquity {obliquity_deg:.1f}°)",
