@@ -44,6 +44,7 @@ chromium:
 bench: $(STAMP) bytecode
 	$(BIN)/python tests/benchmarks/bench_drain.py
 	$(BIN)/python tests/benchmarks/bench_latency.py
+	$(BIN)/python tests/benchmarks/bench_exact.py
 
 clean:
 	rm -rf $(VENV) $(LAB) .pytest_cache test-output

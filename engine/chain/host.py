@@ -144,6 +144,7 @@ def start_host(config: LabConfig, trace: bool | None = None, plugins: dict[str, 
     chain: list[ChainLink] = []
     disabled: list[str] = []
     effective_stages: dict[str, Any] = {}
+    stage_params: dict[str, BaseModel | None] = {}
     seen: set[str] = set()
     for position, name in enumerate(config.engine.chain):
         if name in seen:
@@ -157,7 +158,7 @@ def start_host(config: LabConfig, trace: bool | None = None, plugins: dict[str, 
         if not isinstance(enabled, bool):
             raise ConfigError(f"stages.{name}.enabled: must be true or false")
         stage = stages[name].stage
-        params = _stage_params(stage, table)
+        params = stage_params[name] = _stage_params(stage, table)
         effective_stages[name] = {"enabled": enabled, **(params.model_dump(mode="json") if params else {})}
         if enabled:
             chain.append(ChainLink(stage, params))
@@ -173,7 +174,8 @@ def start_host(config: LabConfig, trace: bool | None = None, plugins: dict[str, 
         stages=stages,
         chain=chain,
         disabled=disabled,
-        settings=LabSettings(cylinder_form=config.engine.cylinder_form, materials=materials),
+        settings=LabSettings(cylinder_form=config.engine.cylinder_form, materials=materials,
+                             stage_params=stage_params),
         config_sha256=config_sha256(effective),
         effective_config=effective,
     )

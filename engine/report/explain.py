@@ -444,6 +444,11 @@ def _render_stages(stages: list[dict[str, Any]]) -> list[str]:
             lines.append(f"      why:    {change['reason']}")
             lines.append(f"      inputs: {change['inputs_text']}")
             lines.append(f"      method: {change['method']} — source: {change['source']}")
+            inputs = change["inputs"]
+            if "martin_surfacing" in inputs and "asworn_residual_d" in inputs:
+                lines.append(f"      compare: Martin's formula would give {power_text(inputs['martin_surfacing'])}; "
+                             f"traced as worn, the solved lens is {inputs['asworn_residual_d']:.1e} D from the wanted "
+                             f"power, as published (rounded) {inputs['published_asworn_residual_d']:.3f} D")
     return lines
 
 

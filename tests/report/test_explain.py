@@ -191,3 +191,26 @@ def test_prism_and_geometry_are_written_with_their_units():
                 "blank_min_diameter_mm": 62.0, "weight_g": 11.4}
     assert geometry_text(geometry) == ("front curve +4.00 D, centre thickness 1.0 mm, edge 3.9–6.8 mm, "
                                        "minimum blank diameter 62.0 mm, weight 11.4 g")
+
+
+def test_explain_shows_the_exact_tilt_compensation_beside_martins(make_lab, drop, order_dict, capsys):
+    # Source: issue 16 — each compensated lens's change record carries the as-worn residual and the value Martin's
+    # formula would have given, and explain shows both.
+    lab = make_lab({"stages": {"tilt": {"method": "exact"}}})
+    order = copy.deepcopy(order_dict)
+    order["order_id"] = "EXA-0001"
+    order["rx"] = {"right": {"sphere": 5.00, "cylinder": -1.00, "axis": 80}, "left": {"sphere": 4.50}}
+    order["fit"].update({"pantoscopic_deg": 12.0, "face_form_deg": 10.0})
+    drop(lab, order)
+    lab.drain()
+    code, out, _ = explain(lab, "EXA-0001", capsys)
+    assert code == 0
+    compare = [line for line in out.splitlines() if "Martin's formula would give" in line]
+    assert len(compare) == 2  # one per lens
+    for line in compare:
+        assert f"{MINUS}1" in line or "+" in line
+        assert " D from the wanted power, as published (rounded) 0.0" in line
+    code, out, _ = explain(lab, "EXA-0001", capsys, "--json")
+    changes = [c for s in json.loads(out)["processings"][0]["stages"] for c in s["changes"]
+               if c["field"].endswith("surfacing") and s["stage"] == "tilt"]
+    assert all(c["inputs"]["asworn_residual_d"] < 1e-9 and "martin_surfacing" in c["inputs"] for c in changes)
