@@ -20,6 +20,7 @@ from lenslane.plugins.compensation import (
     CompensationParams, Design, matrix_of, no_surfacing, not_applied, power_dict, propose, trade_notation,
 )
 from lenslane.plugins.optics.tilt import compensate_tilt, martin_factor, tangential_meridian_deg, tilt_obliquity
+from lenslane.vocabulary import DESIGNS
 
 METHOD = ("exact inverse of Martin's tilt formula on the power matrix, F = S⁻ᵀ F_w S⁻¹ / k, "
           "k = 1 + sin²θ/(2n), S = I + (sec θ − 1) t tᵀ, cos θ = cos p · cos w")
@@ -27,7 +28,7 @@ SOURCE = ("Martin's formula, as given in Jalie, The Principles of Ophthalmic Len
           "System for Ophthalmic Dispensing; power-matrix generalisation: Harris, Optom Vis Sci 2002; "
           "Keating, Optom Vis Sci 1995")
 
-ALL_DESIGNS: list[Design] = ["single_vision", "progressive", "bifocal"]
+ALL_DESIGNS: list[Design] = list(DESIGNS)
 
 
 class TiltParams(CompensationParams):
