@@ -38,7 +38,6 @@ from typing import Any, Callable, ContextManager
 
 import orjson
 
-from lenslane import __version__
 from lenslane.audit.log import AUDIT_NAME, AuditError, AuditLog, canonical, iter_records
 from lenslane.config import CONFIG_NAME, LabConfig, template_text
 from lenslane.lab.files import (
@@ -257,8 +256,7 @@ class Lab:
         self._inbox, self._work, self._outbox = (os.path.join(self._root, n) for n in ("inbox", "work", "outbox"))
         # Opened by recover(), under the lab's lock: opening may close a torn last line.
         self.audit: AuditLog | None = None
-        self.engine_fields = {"engine_version": __version__, "config_sha256": host.config_sha256,
-                              "stages": [link.stage.name for link in host.chain]}
+        self.engine_fields = host.provenance
         watch = host.config.watch
         self.quiet_seconds = watch.quiet_seconds
         self.young_seconds = watch.young_seconds
@@ -495,7 +493,7 @@ class Lab:
             with self.time_limit():
                 outcome = self.pipeline.run(examined.order, examined.parsed)
         except StageFailure as exc:
-            problems = [{"field": f"(stage {exc.stage})", "message": exc.message}]
+            problems = [{"field": exc.field, "message": exc.message}]
             return self._reject(name, claim, received, problems, order_id, redo)
         except (OrderTimeLimit, StageWontStop) as exc:
             problems = [{"field": "(stage unknown)", "message": str(exc)}]

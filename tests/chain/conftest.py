@@ -8,6 +8,8 @@ from pathlib import Path
 import pytest
 from plugin_dists import write_distribution, write_example_distribution
 
+from lenslane.chain.host import NO_AUTOLOAD_VARIABLE
+
 _unique = itertools.count(1)
 
 
@@ -21,6 +23,7 @@ def install_plugin(tmp_path, monkeypatch):
     site = tmp_path / "site"
     site.mkdir()
     monkeypatch.syspath_prepend(str(site))
+    monkeypatch.delenv(NO_AUTOLOAD_VARIABLE)  # these tests are about installed plugins
 
     def install(entry_name: str, source: str, project: str | None = None, version: str = "0.1.0") -> str:
         module = f"lenslane_test_plugin_{next(_unique)}_{os.getpid()}"
