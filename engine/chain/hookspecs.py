@@ -34,7 +34,7 @@ HOOK_API_VERSION: tuple[int, int] = (1, 0)
 
 
 @hookspec
-def lenslane_stages() -> "Iterable[Stage]":
+def lenslane_stages() -> "Iterable[Stage] | None":
     """Contribute stages to the lab's chain.
 
     Called once when the engine starts. Return the :class:`lenslane.Stage`
@@ -61,7 +61,7 @@ def lenslane_stages() -> "Iterable[Stage]":
 
 
 @hookspec
-def lenslane_materials() -> "Mapping[str, Mapping[str, float]]":
+def lenslane_materials() -> "Mapping[str, Mapping[str, float]] | None":
     """Contribute lens materials to the lab's material table.
 
     Called once at start. Return a mapping of material key to

@@ -7,7 +7,8 @@ proposals; the pipeline applies the changes in order and records each one.
 from __future__ import annotations
 
 import copy
-from dataclasses import dataclass, field
+import dataclasses
+from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Callable, Iterable, Mapping
 
 from lenslane.vocabulary import EYES, Eye, Level
@@ -45,7 +46,7 @@ class Change:
     reason: str
     method: str
     source: str
-    inputs: Mapping[str, Any] = field(default_factory=dict)
+    inputs: Mapping[str, Any] = dataclasses.field(default_factory=dict)
 
 
 @dataclass(frozen=True, slots=True)
@@ -61,7 +62,7 @@ class Flag:
     level: Level
     message: str
     eye: Eye | None = None
-    values: Mapping[str, Any] = field(default_factory=dict)
+    values: Mapping[str, Any] = dataclasses.field(default_factory=dict)
 
 
 Proposal = Change | Flag

@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -70,6 +71,10 @@ OLDER_CAUTIONS = [
 
 
 def install(source: Path, target: Path) -> None:
+    # From a copy: a build/ folder left in the source by an earlier build could bring files since deleted.
+    copy = target.with_name(target.name + "-source")
+    shutil.copytree(source, copy, ignore=shutil.ignore_patterns(".venv", ".git", "build", "*.egg-info", "__pycache__"))
+    source = copy
     subprocess.run([sys.executable, "-m", "pip", "install", "--quiet", "--no-deps", "--no-build-isolation",
                     "--target", str(target), str(source)], check=True, cwd=target.parent)
 
