@@ -15,8 +15,6 @@ from pathlib import Path
 
 import pytest
 
-from lenslane.chain.host import NO_AUTOLOAD_VARIABLE
-
 REPO = Path(__file__).resolve().parent.parent
 
 AUTHOR_PLUGIN = '''
@@ -103,9 +101,8 @@ def test_the_installed_copy_inits_a_lab_drains_it_and_explains_an_order(installe
 def test_the_author_api_passes_mypy_strict(installed, tmp_path):
     # mypy cannot follow an editable install's import hook; the installed copy is read through MYPYPATH.
     (tmp_path / "wide_plugin.py").write_text(AUTHOR_PLUGIN, encoding="utf-8")
-    env = {k: v for k, v in os.environ.items() if k != NO_AUTOLOAD_VARIABLE}
     checked = subprocess.run([sys.executable, "-m", "mypy", "--strict", "--no-incremental", "--cache-dir",
-                              os.devnull, "wide_plugin.py"], cwd=tmp_path, env=dict(env, MYPYPATH=str(installed)),
+                              os.devnull, "wide_plugin.py"], cwd=tmp_path, env=dict(os.environ, MYPYPATH=str(installed)),
                              capture_output=True, text=True, check=False)
     assert checked.returncode == 0, checked.stdout + checked.stderr
     assert "Success: no issues found" in checked.stdout

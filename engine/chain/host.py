@@ -26,9 +26,11 @@ from lenslane.config import ConfigError, LabConfig, LabSettings, Material, confi
 ENTRY_POINT_GROUP = "lenslane.plugins"
 #: The engine's own distribution: the one the built-in plugins come with.
 ENGINE_DISTRIBUTION = "lenslane"
-#: Set (to anything but "" or "0") to load only the built-in plugins, not the installed ones, as
-#: pytest's PYTEST_DISABLE_PLUGIN_AUTOLOAD does. The engine's own tests set it.
+#: Set (to anything but "" or "0") to load only the built-in plugins, and of the installed ones only those
+#: named in LENSLANE_PLUGINS (comma-separated entry-point names), as pytest's PYTEST_DISABLE_PLUGIN_AUTOLOAD
+#: and PYTEST_PLUGINS do. The engine's own tests set it, so an installed plugin changes none of them.
 NO_AUTOLOAD_VARIABLE = "LENSLANE_DISABLE_PLUGIN_AUTOLOAD"
+PLUGINS_VARIABLE = "LENSLANE_PLUGINS"
 
 #: The built-in plugins, registered under these names (the names ``engine.blocked`` uses).
 BUILTIN_PLUGINS: tuple[tuple[str, str], ...] = (
@@ -129,9 +131,11 @@ class Host:
         }
 
 
-def autoload_installed() -> bool:
-    """Whether installed plugins are loaded (see :data:`NO_AUTOLOAD_VARIABLE`)."""
-    return os.environ.get(NO_AUTOLOAD_VARIABLE, "") in ("", "0")
+def installed_to_load() -> set[str] | None:
+    """The installed plugins to load by name, or None for all (see :data:`NO_AUTOLOAD_VARIABLE`)."""
+    if os.environ.get(NO_AUTOLOAD_VARIABLE, "") in ("", "0"):
+        return None
+    return {name.strip() for name in os.environ.get(PLUGINS_VARIABLE, "").split(",") if name.strip()}
 
 
 def start_host(config: LabConfig, trace: bool | None = None, plugins: dict[str, object] | None = None,
@@ -141,7 +145,8 @@ def start_host(config: LabConfig, trace: bool | None = None, plugins: dict[str, 
     ``plugins`` registers further plugin objects by name, beside the built-in
     and installed ones (for a program that embeds the engine, and for tests).
     ``installed`` says whether the plugins installed through entry points are
-    loaded (default: yes, unless :data:`NO_AUTOLOAD_VARIABLE` is set).
+    loaded: True all, False none, None (the default) all unless
+    :data:`NO_AUTOLOAD_VARIABLE` is set.
 
     Raises
     ------
@@ -165,8 +170,8 @@ def start_host(config: LabConfig, trace: bool | None = None, plugins: dict[str, 
         if name not in blocked:
             _register(pm, infos, importlib.import_module(module_name),
                       PluginInfo(name, ENGINE_DISTRIBUTION, __version__, builtin=True))
-    if installed if installed is not None else autoload_installed():
-        known += _load_installed(pm, infos, blocked)
+    wanted = installed_to_load() if installed is None else (None if installed else set())
+    known += _load_installed(pm, infos, blocked, wanted)
     for name, plugin in (plugins or {}).items():
         known.append(name)
         if name not in blocked:
@@ -229,12 +234,13 @@ def _register(pm: pluggy.PluginManager, infos: dict[str, PluginInfo], plugin: ob
     infos[info.name] = PluginInfo(info.name, info.distribution, info.version, info.builtin, info.entry_point, hooks)
 
 
-def _load_installed(pm: pluggy.PluginManager, infos: dict[str, PluginInfo], blocked: list[str]) -> list[str]:
-    """Register every installed plugin that is not blocked; returns the names of all of them."""
+def _load_installed(pm: pluggy.PluginManager, infos: dict[str, PluginInfo], blocked: list[str],
+                    wanted: set[str] | None) -> list[str]:
+    """Register every installed plugin that is wanted (None: all) and not blocked; returns all their names."""
     names = []
     for entry_point in metadata.entry_points(group=ENTRY_POINT_GROUP):
         names.append(entry_point.name)
-        if entry_point.name in blocked:
+        if entry_point.name in blocked or (wanted is not None and entry_point.name not in wanted):
             continue  # not even imported
         dist = entry_point.dist
         info = PluginInfo(entry_point.name, dist.metadata["Name"] if dist else "unknown distribution",

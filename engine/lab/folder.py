@@ -48,6 +48,7 @@ from lenslane.chain.host import Host
 from lenslane.contract.intake import OrderRejected, read_order
 from lenslane.contract.models import ORDER_ID_RE, LensOrder
 from lenslane.chain.pipeline import Pipeline, StageFailure
+from lenslane.vocabulary import OUTCOMES
 
 FOLDERS = ("inbox", "outbox", "rejected", "archive", "work", "held")
 ERRORS_SUFFIX = ".errors.json"
@@ -55,7 +56,7 @@ HELD_SUFFIX = ".held.json"
 #: Results are written compact (a person reads them through `lenslane explain` or any JSON viewer):
 #: an order's result is some 20 kB, and every byte is written and flushed once per order.
 _RESULT_JSON = orjson.OPT_SERIALIZE_NUMPY
-FINAL_EVENTS = ("published", "rejected", "held", "skipped")
+FINAL_EVENTS = OUTCOMES
 
 #: Tests only: ``LENSLANE_FAULT_AFTER=<step>[:<n>]`` ends the process abruptly right after the
 #: n-th time (default the first) a step of the publish sequence completes, as a crash would.

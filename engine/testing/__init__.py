@@ -64,11 +64,13 @@ def sample_order(**sections: Any) -> dict[str, Any]:
 
 def host_for(chain: list[str] | None = None, stages: dict[str, dict[str, Any]] | None = None,
              plugins: dict[str, object] | None = None, config: dict[str, Any] | None = None,
-             installed: bool = True) -> Host:
+             installed: bool | None = None) -> Host:
     """An engine host as a lab's start makes it: ``chain`` (default: the default chain), ``[stages.*]`` tables.
 
     ``config`` gives any further sections of ``lenslane.toml`` as a dict;
-    ``installed=False`` loads only the built-in plugins and those in ``plugins``.
+    ``installed=False`` loads only the built-in plugins and those in ``plugins``;
+    by default every installed plugin is loaded, unless ``LENSLANE_DISABLE_PLUGIN_AUTOLOAD``
+    limits them to those named in ``LENSLANE_PLUGINS``.
     Raises :class:`lenslane.config.ConfigError` as the engine's start would.
     """
     settings = dict(config or {})
@@ -106,7 +108,7 @@ class ChainRun:
 
 def run_chain(order: dict[str, Any], chain: list[str] | None = None, stages: dict[str, dict[str, Any]] | None = None,
               plugins: dict[str, object] | None = None, config: dict[str, Any] | None = None,
-              installed: bool = True) -> ChainRun:
+              installed: bool | None = None) -> ChainRun:
     """Run one order (a dict, as a file would hold it) through a chain; see :func:`host_for`.
 
     The order is read exactly as the inbox reads it; a refused order raises

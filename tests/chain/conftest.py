@@ -8,7 +8,7 @@ from pathlib import Path
 import pytest
 from plugin_dists import write_distribution, write_example_distribution
 
-from lenslane.chain.host import NO_AUTOLOAD_VARIABLE
+from lenslane.chain.host import PLUGINS_VARIABLE
 
 _unique = itertools.count(1)
 
@@ -23,13 +23,15 @@ def install_plugin(tmp_path, monkeypatch):
     site = tmp_path / "site"
     site.mkdir()
     monkeypatch.syspath_prepend(str(site))
-    monkeypatch.delenv(NO_AUTOLOAD_VARIABLE)  # these tests are about installed plugins
 
     def install(entry_name: str, source: str, project: str | None = None, version: str = "0.1.0") -> str:
         module = f"lenslane_test_plugin_{next(_unique)}_{os.getpid()}"
         (site / f"{module}.py").write_text(source, encoding="utf-8")
         write_distribution(site, project or f"lenslane-test-{entry_name.replace('_', '-')}", version,
                            {entry_name: module})
+        # Installed plugins load only by name in the engine's tests (see tests/conftest.py): this one is asked for.
+        wanted = [n for n in os.environ.get(PLUGINS_VARIABLE, "").split(",") if n]
+        monkeypatch.setenv(PLUGINS_VARIABLE, ",".join([*wanted, entry_name]))
         return module
 
     return install

@@ -9,7 +9,7 @@ import sys
 import sysconfig
 
 import pytest
-from plugin_dists import EXAMPLE, EXAMPLE_SOURCE, run_lenslane
+from plugin_dists import EXAMPLE, EXAMPLE_SOURCE, example_only, run_lenslane
 
 from lenslane.lab.folder import init_lab
 
@@ -123,8 +123,7 @@ def test_trace_hooks_prints_every_hook_call_of_the_example(lab, example_site, tm
 
 
 def test_the_example_packages_own_tests_pass(example_site, tmp_path):
-    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(example_site), str(EXAMPLE_SOURCE)]))
-    env.pop("LENSLANE_DISABLE_PLUGIN_AUTOLOAD", None)  # the example's tests find it installed
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(example_site), str(EXAMPLE_SOURCE)]), **example_only())
     ran = subprocess.run([sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider", str(EXAMPLE / "tests")],
                          cwd=tmp_path, env=env, capture_output=True, text=True, check=False)
     assert ran.returncode == 0, ran.stdout + ran.stderr
@@ -152,7 +151,7 @@ def test_pip_install_editable_into_a_temporary_environment(tmp_path):
     lab = tmp_path / "lab"
     init_lab(lab)
     (lab / "lenslane.toml").write_text(CONFIG.format(blocked=""), encoding="utf-8")
-    env = {k: v for k, v in os.environ.items() if k != "LENSLANE_DISABLE_PLUGIN_AUTOLOAD"}
+    env = dict(os.environ, **example_only())
     listed = subprocess.run([str(python), "-m", "lenslane.cli", "plugins", "--lab", str(lab)],
                             capture_output=True, text=True, check=False, cwd=tmp_path, env=env)
     assert listed.returncode == 0, listed.stderr

@@ -8,7 +8,7 @@ import pytest
 
 from lenslane import __version__
 from lenslane.audit.log import iter_records
-from lenslane.chain.host import NO_AUTOLOAD_VARIABLE, PluginError, start_host
+from lenslane.chain.host import NO_AUTOLOAD_VARIABLE, PLUGINS_VARIABLE, PluginError, start_host
 from lenslane.chain.pipeline import HookFailure, Pipeline
 from lenslane.config import ConfigError, LabConfig
 from lenslane.contract.intake import read_order
@@ -228,8 +228,13 @@ def test_results_and_published_records_name_each_stages_distribution_and_version
     assert "Stage 2 of 2: probe (lenslane-probe 2.3.4)" in render_text(order_story(lab.root, "TST-0001"))
 
 
-def test_installed_plugins_are_not_loaded_when_autoload_is_off(install_plugin, monkeypatch):
+def test_with_autoload_off_only_the_installed_plugins_named_are_loaded(install_plugin, monkeypatch):
     install_plugin("probe", PROBE)
+    install_plugin("observer", OBSERVER)
     monkeypatch.setenv(NO_AUTOLOAD_VARIABLE, "1")
-    assert "probe" not in start_host(LabConfig()).stages
+    monkeypatch.setenv(PLUGINS_VARIABLE, "observer")
+    host = start_host(LabConfig())
+    assert "probe" not in host.stages and "observer" in host.plugins
     assert "probe" in start_host(LabConfig(), installed=True).stages
+    monkeypatch.setenv(NO_AUTOLOAD_VARIABLE, "0")
+    assert "probe" in start_host(LabConfig()).stages
