@@ -50,7 +50,8 @@ from lenslane.contract.models import ORDER_ID_RE, LensOrder
 from lenslane.chain.pipeline import Pipeline, StageFailure
 from lenslane.vocabulary import OUTCOMES
 
-FOLDERS = ("inbox", "outbox", "rejected", "archive", "work", "held")
+#: review/ holds results that wait for a person and decisions/ the requests of ``lenslane decide`` (lenslane.decide).
+FOLDERS = ("inbox", "outbox", "review", "rejected", "archive", "work", "held", "decisions")
 ERRORS_SUFFIX = ".errors.json"
 HELD_SUFFIX = ".held.json"
 #: Results are written compact (a person reads them through `lenslane explain` or any JSON viewer):
@@ -223,6 +224,11 @@ def _content_key(content_sha256: str | None) -> bytes | None:
     return bytes.fromhex(content_sha256)[:16] if content_sha256 else None
 
 
+def note_published(lab: "Lab", order_id: str, content_sha256: str | None) -> None:
+    """An order id published with this content by something other than the inbox (a person's replace)."""
+    lab.published[order_id] = _content_key(content_sha256)
+
+
 def _report_bytes(report: dict[str, Any]) -> bytes:
     return json.dumps(report, ensure_ascii=False, indent=1).encode("utf-8", "backslashreplace") + b"\n"
 
@@ -246,22 +252,15 @@ class Lab:
 
     def __init__(self, root: Path, host: Host):
         self.root = Path(root)
-        self.host = host
-        self.config: LabConfig = host.config
-        self.pipeline = Pipeline(host)
+        # Opened by recover(), under the lab's lock: opening may close a torn last line.
+        self.audit: AuditLog | None = None
+        self.use_host(host)
         for name in FOLDERS:
             setattr(self, name, self.root / name)
             (self.root / name).mkdir(exist_ok=True)
         # The same folders as plain strings: joining them costs far less per order than pathlib does.
         self._root = os.fspath(self.root)
         self._inbox, self._work, self._outbox = (os.path.join(self._root, n) for n in ("inbox", "work", "outbox"))
-        # Opened by recover(), under the lab's lock: opening may close a torn last line.
-        self.audit: AuditLog | None = None
-        self.engine_fields = host.provenance
-        watch = host.config.watch
-        self.quiet_seconds = watch.quiet_seconds
-        self.young_seconds = watch.young_seconds
-        self.max_order_bytes = watch.max_order_bytes
         self.time_limit: Callable[[], ContextManager[Any]] = contextlib.nullcontext
         self.published: dict[str, bytes | None] = {}  # order id → content key, from the audit log
         self.stage_seconds: dict[str, float] = {}  # time spent in each stage, summed over the run
@@ -274,6 +273,20 @@ class Lab:
         self._watching: dict[str, _Seen] = {}
         self._fault = _fault_from_environment()
         self._fault_count = 0
+
+    def use_host(self, host: Host) -> None:
+        """Work with ``host`` (its config and chain) from the next order on: at start, and on a reload."""
+        self.host = host
+        self.config: LabConfig = host.config
+        self.pipeline = Pipeline(host)
+        self.engine_fields = host.provenance
+        watch = host.config.watch
+        self.quiet_seconds = watch.quiet_seconds
+        self.young_seconds = watch.young_seconds
+        self.max_order_bytes = watch.max_order_bytes
+        if self.audit is not None:
+            self.audit.rotate_bytes = host.config.audit.rotate_bytes
+            self.audit.rotate_period = host.config.audit.rotate_period
 
     def _open_audit(self) -> AuditLog:
         audit = self.config.audit
@@ -291,7 +304,7 @@ class Lab:
         final record.
         """
         self.audit = self._open_audit()
-        for folder in (self.outbox, self.rejected, self.held, self.archive):
+        for folder in (self.outbox, self.review, self.rejected, self.held, self.archive):
             remove_temp_leftovers(folder)
         names = sorted(os.listdir(self.work))
         claims = {}
@@ -513,7 +526,9 @@ class Lab:
         if not ORDER_ID_RE.match(order_id):  # validated by the contract already; never a path
             raise ValueError(f"order id {order_id!r} cannot name a file")
         data = result_bytes(result)
-        target = f"{self._outbox}/{order_id}.json"
+        # A result that needs a person waits in review/, never in outbox/ (lenslane decide approves or refuses it).
+        folder = "review" if result["status"] == "review" else "outbox"
+        target = f"{self._root}/{folder}/{order_id}.json"
         try:
             self._unpublished.append((write_unsynced(target, data), target))  # made durable by commit()
         except OSError as exc:
@@ -522,7 +537,7 @@ class Lab:
         events: list[Any] = [received]
         events += order_events(result)
         events.append({"event": "published", "order_id": order_id, "file": printable(name),
-                       "status": result["status"], "result": f"outbox/{order_id}.json",
+                       "status": result["status"], "result": f"{folder}/{order_id}.json",
                        "result_sha256": hashlib.sha256(data).hexdigest(), "lenses": result["lenses"],
                        "content_sha256": examined.content_sha256, "claim": claim, "input": destination,
                        **self.engine_fields})
@@ -647,7 +662,7 @@ class Lab:
             except OSError as exc:
                 raise OutputBlocked("publish", target, exc, claimed=True) from exc
             unit.unpublished.pop(0)
-            unit.folders.add(self._outbox)
+            unit.folders.add(os.path.dirname(target))  # outbox/, or review/
             self._reached("published")
         while unit.folders:
             folder = next(iter(unit.folders))

@@ -14,9 +14,14 @@ def render_text(story: dict[str, Any]) -> str:
     count = len(story["processings"])
     lines = [f"Order {story['order_id']} — from the audit log of {story['lab']}",
              "Processed once." if count == 1 else f"Processed {count} times; each is told below, oldest first."]
+    decisions = list(story.get("decisions") or [])
     for number_, processing in enumerate(story["processings"], start=1):
+        while decisions and processing["seq"] and decisions[0]["seq"] < processing["seq"][0]:
+            lines += [""] + _render_decision(decisions.pop(0))
         lines.append("")
         lines += _render_processing(processing, number_, count)
+    for decision in decisions:
+        lines += [""] + _render_decision(decision)
     lines += ["", story["caution"]]
     return "\n".join(lines)
 
@@ -87,10 +92,37 @@ def _render_flags(flags: list[dict[str, Any]]) -> list[str]:
     return lines
 
 
+def _render_decision(decision: dict[str, Any]) -> list[str]:
+    """A person's decision, as the audit chain holds it."""
+    applies = decision.get("applies_to") or {}
+    lines = [f"== Decision: {decision['action']} by {decision['by']}, {decision['decided_at']} (audit seq "
+             f"{decision['seq']}, recorded {decision['recorded_at']}) ==",
+             f"Why:      {decision['note']}",
+             f"On:       {applies.get('path')}, sha256 {applies.get('sha256')}"]
+    if decision.get("flags_acknowledged"):
+        lines.append("Flags acknowledged: " + ", ".join(decision["flags_acknowledged"]))
+    if decision.get("result"):
+        now = f"; {decision['result_now']}" if decision.get("result_now") else ""
+        lines.append(f"Result:   {decision['result']}, status {decision.get('status')}, sha256 "
+                     f"{decision['result_sha256']}{now}")
+    for reason in decision.get("reasons") or []:
+        lines.append(f"  {reason.get('field')}: {reason.get('message')}")
+    superseded = decision.get("supersedes")
+    if superseded:
+        kept = f", kept as {superseded['archived']}" if superseded.get("archived") else ""
+        lines.append(f"Replaces: {superseded['path']}, sha256 {superseded['sha256']}{kept}; the next processing is "
+                     f"revision {decision.get('revision')}")
+    elif decision["action"] == "replace" and decision.get("outcome") == "rejected":
+        lines.append("The new version was refused by the chain (see the next processing); the published result stays")
+    return lines
+
+
 def _render_outcome(outcome: dict[str, Any]) -> list[str]:
     if outcome["event"] == "published":
         now = f"; {outcome['result_now']}" if outcome.get("result_now") else ""
-        lines = [f"Outcome:  published, status {outcome['status']}, recorded {outcome['recorded_at']}",
+        revision = f", revision {outcome['revision']} (supersedes sha256 {outcome.get('supersedes')})" \
+            if outcome.get("revision") else ""
+        lines = [f"Outcome:  published, status {outcome['status']}{revision}, recorded {outcome['recorded_at']}",
                  f"Result:   {outcome['result']}, sha256 {outcome['result_sha256']}{now}"]
         return lines + ([f"Input:    now {outcome['input']}"] if outcome.get("input") else [])
     if outcome["event"] is not None:

@@ -38,6 +38,7 @@ from lenslane.lab.files import LabLocked, filesystem_type, is_network_file_syste
 from lenslane.lab.folder import (
     Interrupted, Lab, OrderTimeLimit, OutputBlocked, Processed, StageWontStop, Wait, is_order_name,
 )
+from lenslane.decide.desk import Desk
 from lenslane.watch.log import configure_logging
 
 EXIT_OK = 0
@@ -258,6 +259,22 @@ def start_observer(setting: str, inbox: str, handler: InboxEvents,
 # --------------------------------------------------------------------------
 
 
+#: A `lenslane decide` applying a decision while no engine runs holds the lab's lock for a moment
+#: (well under a second): an engine starting meanwhile waits this long for it before giving up (s).
+LOCK_WAIT_SECONDS = 3.0
+
+
+def _lock_waiting(root: Any) -> int:
+    deadline = time.monotonic() + LOCK_WAIT_SECONDS
+    while True:
+        try:
+            return lock_lab(root)
+        except LabLocked:
+            if time.monotonic() >= deadline:
+                raise
+            time.sleep(0.05)
+
+
 class Daemon:
     """One lab's loop; :meth:`run` returns the process exit code."""
 
@@ -288,6 +305,7 @@ class Daemon:
         self.next_supervise = 0.0
         self.log: Any = None
         self.started: dict[int, float] = {}  # processed, not yet committed: when its handling started
+        self.desk: Desk | None = None
 
     # -- start and stop ----------------------------------------------------------
 
@@ -295,13 +313,18 @@ class Daemon:
         # Bound once: a logger proxy would bind itself again on every line.
         self.log = configure_logging(sys.stderr if self.once else sys.stdout).bind()
         try:
-            lock = lock_lab(self.lab.root)
+            lock = _lock_waiting(self.lab.root)
         except LabLocked as exc:
             self.log.error("lab locked", lab=str(self.lab.root), lock=str(exc.path), holder_pid=exc.holder,
                            message="another lenslane watch is working on this lab; refusing to start")
             return EXIT_LAB_LOCKED
         previous = {number: signal.signal(number, self._on_stop) for number in (signal.SIGTERM, signal.SIGINT)}
         previous[signal.SIGALRM] = signal.signal(signal.SIGALRM, self.clock.on_alarm)
+        # People's decisions (SIGUSR1 from lenslane decide) and config reloads (SIGHUP): lenslane.decide.desk.
+        self.desk = Desk(self.lab, self.log, self._use_config)
+        previous[signal.SIGUSR1] = signal.signal(signal.SIGUSR1, lambda *_: self._wake(self.desk.wake))
+        if not self.once:
+            previous[signal.SIGHUP] = signal.signal(signal.SIGHUP, lambda *_: self._wake(self.desk.ask_reload))
         self.lab.time_limit = self.clock
         try:
             return self._run_locked()
@@ -370,10 +393,29 @@ class Daemon:
         self.clock.shutdown(SHUTDOWN_GRACE_SECONDS)
         self.hints.put((_WAKE, ""))  # SimpleQueue.put may be called from a signal handler
 
+    def _wake(self, ask: Callable[[], None]) -> None:
+        ask()
+        self.hints.put((_WAKE, ""))  # SimpleQueue.put may be called from a signal handler
+
+    def _use_config(self, config: Any) -> None:
+        """A reloaded configuration (lenslane.decide.desk): the loop's own settings."""
+        watch = config.watch
+        self.rescan_seconds = watch.rescan_seconds
+        self.retry_max_seconds = watch.retry_max_seconds
+        self.clock.limit_seconds = watch.order_time_limit_seconds
+        if watch.observer != self.observer_setting:
+            self.observer_setting = watch.observer
+            if self.observer is not None:
+                self._stop_observer()  # rebuilt with the new setting by the next supervision
+
     def _loop(self) -> int:
         while not self.stopping:
             now = time.monotonic()
             self._take_hints(now)
+            if self.desk.due(now):  # between batches: decisions and config reloads (lenslane.decide.desk)
+                if self._commit() is _STOPPED:
+                    break
+                self.desk.run(now)
             if not self.once:
                 if now >= self.next_scan:
                     self._scan(now)
@@ -397,7 +439,7 @@ class Daemon:
                     break
                 self._wait(upcoming - now)
             else:
-                self._wait(min(self.next_scan, self.next_supervise, upcoming) - now)
+                self._wait(min(self.next_scan, self.next_supervise, upcoming, self.desk.next_due()) - now)
         return EXIT_OK
 
     def _look_at(self, name: str) -> Any:
