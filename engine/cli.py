@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 
 from lenslane import __version__
-from lenslane.contract.models import CAUTION
+from lenslane.vocabulary import CAUTION
 
 
 def _host(lab: Path | None, trace: bool = False):
@@ -46,7 +46,7 @@ def cmd_audit_verify(args) -> int:
 
 
 def cmd_explain(args) -> int:
-    from lenslane.report.explain import order_story, render
+    from lenslane.report import order_story, render_text
 
     story = order_story(Path(args.lab), args.order_id)
     if args.html and story["found"]:
@@ -57,9 +57,9 @@ def cmd_explain(args) -> int:
     elif args.json:
         print(json.dumps(story, indent=1, ensure_ascii=False))
     elif story["found"]:
-        print(render(story))
+        print(render_text(story))
     else:
-        print(f"lenslane: {render(story)}", file=sys.stderr)
+        print(f"lenslane: {render_text(story)}", file=sys.stderr)
     return 0 if story["found"] else 1
 
 
@@ -84,13 +84,12 @@ def cmd_preview(args) -> int:
     raw = Path(args.file).read_bytes()
     try:
         order, parsed = read_order(raw, host.settings.materials)
-        result = Pipeline(host).run(order, parsed).result
+        # Writes nothing and tells nobody: no hook with side effects (lenslane_result_ready) runs.
+        result = Pipeline(host, side_effects=False).run(order, parsed).result
     except OrderRejected as exc:
         problems = exc.problems
     except StageFailure as exc:
-        problems = [{"field": f"(stage {exc.stage})", "message": exc.message}]
-    except Exception as exc:  # e.g. a result_ready hook that raised: the same verdict as the inbox gives
-        problems = [{"field": "(engine)", "message": f"{type(exc).__name__}: {exc}"}]
+        problems = [{"field": exc.field, "message": exc.message}]
     else:
         print(json.dumps(result, indent=1, ensure_ascii=False))
         return 0
@@ -109,14 +108,26 @@ def cmd_plugins(args) -> int:
             position, enabled = str(host.config.engine.chain.index(name) + 1), "no (disabled)"
         else:
             position, enabled = "-", "no (not in engine.chain)"
-        rows.append((name, position, enabled, info.origin, info.version, info.plugin))
+        rows.append((name, position, enabled, info.origin, info.version, info.plugin.name))
     rows[1:] = sorted(rows[1:], key=lambda r: (r[1] == "-", int(r[1]) if r[1] != "-" else 0, r[0]))
-    widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
-    for row in rows:
-        print("  ".join(cell.ljust(width) for cell, width in zip(row, widths)).rstrip())
+    _print_table(rows)
+    with_stages = {info.plugin.name for info in host.stages.values()}
+    hook_only = [info for name, info in host.plugins.items() if name not in with_stages]
+    if hook_only:
+        print()
+        print("plugins without stages (hooks only):")
+        _print_table([("plugin", "from", "version", "hooks")] + [
+            (info.name, "built-in" if info.builtin else info.distribution, info.version, ", ".join(info.hooks))
+            for info in hook_only])
     if host.config.engine.blocked:
         print("blocked (not loaded): " + ", ".join(host.config.engine.blocked))
     return 0
+
+
+def _print_table(rows: list[tuple[str, ...]]) -> None:
+    widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
+    for row in rows:
+        print("  ".join(cell.ljust(width) for cell, width in zip(row, widths)).rstrip())
 
 
 def cmd_watch(args) -> int:
@@ -195,7 +206,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     sub = commands.add_parser("plugins", help="list the stages and where they come from",
                               description="List every stage: its place in the chain, whether it is enabled, "
-                              "the distribution that provides it and its version.")
+                              "the distribution that provides it and its version; then the plugins that "
+                              "take part through hooks only.")
     sub.add_argument("--lab", metavar="LAB", help="use this lab's config (default: the built-in defaults)")
     sub.set_defaults(func=cmd_plugins)
 
@@ -266,11 +278,15 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
+    from lenslane.chain.host import PluginError
     from lenslane.config import ConfigError
 
     args = build_parser().parse_args(argv)
     try:
         return args.func(args)
+    except PluginError as exc:
+        print(f"lenslane: bad plugin: {exc}", file=sys.stderr)
+        return 2
     except ConfigError as exc:
         print(f"lenslane: bad config: {exc}", file=sys.stderr)
         return 2

@@ -68,6 +68,8 @@ class LabConfig(_Section):
     audit: AuditSettings = AuditSettings()
     materials: dict[str, Material] = Field(default_factory=dict)
     stages: dict[str, dict[str, Any]] = Field(default_factory=dict)
+    #: ``[plugins.<name>]``: the settings of a plugin, handed to its ``lenslane_configure`` hook.
+    plugins: dict[str, dict[str, Any]] = Field(default_factory=dict)
 
 
 @dataclass(frozen=True)

@@ -32,6 +32,7 @@ from lenslane.plugins.optics.power import PowerMatrix
 from lenslane.plugins.optics.raytrace import RayMissedSurface
 from lenslane.plugins.optics.thickness import LensNotMakeable
 from lenslane.plugins.optics.tilt import compensate_tilt, martin_factor, tangential_meridian_deg, tilt_obliquity
+from lenslane.vocabulary import DESIGNS
 
 METHOD = ("exact inverse of Martin's tilt formula on the power matrix, F = S⁻ᵀ F_w S⁻¹ / k, "
           "k = 1 + sin²θ/(2n), S = I + (sec θ − 1) t tᵀ, cos θ = cos p · cos w")
@@ -48,7 +49,7 @@ EXACT_SOURCE = ("Spencer & Murty, \"General ray-tracing procedure\", JOSA 52:672
                 "1964 (wavefront curvature about the chief ray); Jalie, The Principles of Ophthalmic Lenses "
                 "(thickness); Thibos, Wheeler & Horner, Optom Vis Sci 74:367, 1997 (off-axis errors)")
 
-ALL_DESIGNS: list[Design] = ["single_vision", "progressive", "bifocal"]
+ALL_DESIGNS: list[Design] = list(DESIGNS)
 #: The solve is repeated at most this often when the solved powers make the geometry choose other front curves.
 _FRONT_ROUNDS = 4
 

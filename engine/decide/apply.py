@@ -173,7 +173,7 @@ class Applier:
                     outcome = lab.pipeline.run(examined.order, examined.parsed)
                 result = outcome.result
             except StageFailure as exc:
-                reasons = [{"field": f"(stage {exc.stage})", "message": exc.message}]
+                reasons = [{"field": exc.field, "message": exc.message}]
             except (Exception, StageWontStop) as exc:  # a stage or hook that fails, the time limit: refused
                 reasons = [{"field": "(engine)", "message": f"{type(exc).__name__}: {exc}"}]
         revision = log.revision + 1

@@ -38,7 +38,6 @@ from typing import Any, Callable, ContextManager
 
 import orjson
 
-from lenslane import __version__
 from lenslane.audit.log import AUDIT_NAME, AuditError, AuditLog, canonical, iter_records
 from lenslane.config import CONFIG_NAME, LabConfig, template_text
 from lenslane.lab.files import (
@@ -49,6 +48,7 @@ from lenslane.chain.host import Host
 from lenslane.contract.intake import OrderRejected, read_order
 from lenslane.contract.models import ORDER_ID_RE, LensOrder
 from lenslane.chain.pipeline import Pipeline, StageFailure
+from lenslane.vocabulary import OUTCOMES
 
 #: review/ holds results that wait for a person and decisions/ the requests of ``lenslane decide`` (lenslane.decide).
 FOLDERS = ("inbox", "outbox", "review", "rejected", "archive", "work", "held", "decisions")
@@ -57,7 +57,7 @@ HELD_SUFFIX = ".held.json"
 #: Results are written compact (a person reads them through `lenslane explain` or any JSON viewer):
 #: an order's result is some 20 kB, and every byte is written and flushed once per order.
 _RESULT_JSON = orjson.OPT_SERIALIZE_NUMPY
-FINAL_EVENTS = ("published", "rejected", "held", "skipped")
+FINAL_EVENTS = OUTCOMES
 
 #: Tests only: ``LENSLANE_FAULT_AFTER=<step>[:<n>]`` ends the process abruptly right after the
 #: n-th time (default the first) a step of the publish sequence completes, as a crash would.
@@ -279,8 +279,7 @@ class Lab:
         self.host = host
         self.config: LabConfig = host.config
         self.pipeline = Pipeline(host)
-        self.engine_fields = {"engine_version": __version__, "config_sha256": host.config_sha256,
-                              "stages": [link.stage.name for link in host.chain]}
+        self.engine_fields = host.provenance
         watch = host.config.watch
         self.quiet_seconds = watch.quiet_seconds
         self.young_seconds = watch.young_seconds
@@ -508,7 +507,7 @@ class Lab:
             with self.time_limit():
                 outcome = self.pipeline.run(examined.order, examined.parsed)
         except StageFailure as exc:
-            problems = [{"field": f"(stage {exc.stage})", "message": exc.message}]
+            problems = [{"field": exc.field, "message": exc.message}]
             return self._reject(name, claim, received, problems, order_id, redo)
         except (OrderTimeLimit, StageWontStop) as exc:
             problems = [{"field": "(stage unknown)", "message": str(exc)}]

@@ -30,7 +30,7 @@ from lenslane.plugins.optics.power import PowerMatrix, power_matrix, principal_p
 from lenslane.plugins.optics.prism import resultant_prism
 from lenslane.plugins.optics.surfaces import sag_mm, surface_curvature_per_mm
 from lenslane.plugins.optics.thickness import LensShape, thickness_mm
-from lenslane.report.explain import number, power_text
+from lenslane.report.notation import number, power_text
 
 #: Step of the thickness map's grid, mm.
 GRID_MM = 1.0

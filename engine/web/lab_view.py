@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import Any, NamedTuple
 
 from lenslane.audit.log import iter_records
-from lenslane.report.explain import OUTCOMES
+from lenslane.vocabulary import OUTCOMES
 
 #: At most this many search hits are listed.
 SEARCH_LIMIT = 100

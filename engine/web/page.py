@@ -21,7 +21,9 @@ from markupsafe import Markup
 from lenslane import __version__
 from lenslane.contract.models import CAUTION, ORDER_ID_RE
 from lenslane.plugins.optics.outline import DEFAULT_EXPONENT
-from lenslane.report.explain import DECISIONS, geometry_text, inputs_text, number, order_story, value_text
+from lenslane.report.notation import geometry_text, inputs_text, number, value_text
+from lenslane.report.story import order_story
+from lenslane.vocabulary import WHAT_TO_DECIDE
 from lenslane.report.pictures import eye_pictures
 
 #: What an order is once a person's decision came after its last processing.
@@ -137,7 +139,7 @@ def _flags_by_level(flags: list[dict[str, Any]]) -> list[dict[str, Any]]:
     for level in LEVELS + tuple(sorted({f["level"] for f in flags} - set(LEVELS))):
         found = [f for f in flags if f["level"] == level]
         if found:
-            groups.append({"level": level, "decide": DECISIONS.get(level, "decide as the message says"),
+            groups.append({"level": level, "decide": WHAT_TO_DECIDE.get(level, "decide as the message says"),
                            "flags": found})
     return groups
 

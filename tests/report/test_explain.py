@@ -8,8 +8,8 @@ import json
 import pytest
 
 from lenslane.cli import main
-from lenslane.report.explain import geometry_text, power_text, prism_text
-from lenslane.contract.models import CAUTION
+from lenslane.report.notation import geometry_text, power_text, prism_text
+from lenslane.vocabulary import CAUTION
 
 MINUS = "\u2212"  # Source: Unicode U+2212 MINUS SIGN, the sign printed in the trade's notation
 
@@ -100,11 +100,12 @@ def test_explain_json_gives_the_same_story_as_data(make_lab, drop, compensated, 
     assert code == 0 and story["found"] and story["caution"] == CAUTION
     [processing] = story["processings"]
     assert processing["lenses"]["right"]["surfacing"]["sphere"] == -8.13
-    assert processing["lenses_text"]["left"]["surfacing"] == f"{MINUS}4.29 {MINUS}1.27 × 170"
+    assert processing["lenses"]["left"]["surfacing"] == {"sphere": -4.29, "cylinder": -1.27, "axis": 170}
+    assert processing["prescription"]["right"] == processing["lenses"]["right"]["rx"]
     vertex = [s for s in processing["stages"] if s["stage"] == "vertex"][0]
     change = [c for c in vertex["changes"] if c["field"] == "lenses.right.surfacing"][0]
     assert (change["before"]["sphere"], change["after"]["sphere"]) == (-8.0, -8.13)
-    assert change["after_text"] == f"{MINUS}8.13 DS" and change["method"] and change["source"]
+    assert change["method"] and change["source"]
     assert processing["outcome"]["event"] == "published"
     published = (lab.outbox / "CMP-0001.json").read_bytes()
     assert processing["outcome"]["result_sha256"] == hashlib.sha256(published).hexdigest()

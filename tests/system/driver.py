@@ -20,6 +20,7 @@ from typing import Any, Callable, Iterable
 
 import pytest
 
+from lenslane.chain.host import NO_AUTOLOAD_VARIABLE, PLUGINS_VARIABLE
 from lenslane.audit.log import iter_records, verify
 from lenslane.config import DEFAULT_CHAIN
 from lenslane.lab.folder import init_lab
@@ -179,7 +180,8 @@ class Watch:
 
 
 def environment(extra: dict[str, str] | None = None) -> dict[str, str]:
-    env = {k: v for k, v in os.environ.items() if not k.startswith("LENSLANE_")}
+    # Kept: the suite's own setting that the engine loads no installed plugin but those a test names.
+    env = {k: v for k, v in os.environ.items() if not k.startswith("LENSLANE_") or k == NO_AUTOLOAD_VARIABLE}
     env.update(extra or {})
     return env
 
@@ -251,7 +253,7 @@ def fault_plugin(tmp_path) -> dict[str, str]:
     (dist_info / "entry_points.txt").write_text("[lenslane.plugins]\nfault_stages = lenslane_fault_stages\n")
     (dist_info / "RECORD").write_text("")
     path = os.pathsep.join(filter(None, [str(site), os.environ.get("PYTHONPATH")]))
-    return {"PYTHONPATH": path}
+    return {"PYTHONPATH": path, PLUGINS_VARIABLE: "fault_stages"}
 
 
 FAULT_CHAIN = [*DEFAULT_CHAIN, "on_request"]
