@@ -19,7 +19,8 @@ from jinja2 import Environment, PackageLoader, select_autoescape
 from markupsafe import Markup
 
 from lenslane import __version__
-from lenslane.contract.models import CAUTION, ORDER_ID_RE
+from lenslane.contract.models import ORDER_ID_RE
+from lenslane.vocabulary import CAUTION
 from lenslane.plugins.optics.outline import DEFAULT_EXPONENT
 from lenslane.report.notation import geometry_text, inputs_text, number, value_text
 from lenslane.report.story import order_story

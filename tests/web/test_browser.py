@@ -15,7 +15,7 @@ from pathlib import Path
 
 import pytest
 
-from lenslane.contract.models import CAUTION
+from lenslane.vocabulary import CAUTION
 from tests.conftest import REPO
 
 pytestmark = pytest.mark.slow

@@ -8,7 +8,7 @@ import re
 import pytest
 
 from lenslane.cli import main
-from lenslane.contract.models import CAUTION
+from lenslane.vocabulary import CAUTION
 from lenslane.web.app import create_app
 from lenslane.web.page import inside_lab, render_order_page
 from lenslane.web.serve import MIN_TOKEN_LENGTH, TOKEN_VARIABLE, ServeRefused, access_token, is_loopback
