@@ -102,12 +102,9 @@ def cmd_plugins(args) -> int:
 
 
 def cmd_watch(args) -> int:
-    from lenslane.lab.folder import Lab
+    from lenslane.watch.daemon import run
 
-    lab = Lab(Path(args.lab), _host(Path(args.lab), args.trace_hooks))
-    from lenslane.watch.daemon import run_daemon, run_once
-
-    return run_once(lab, stats=args.stats) if args.once else run_daemon(lab)
+    return run(Path(args.lab), _host(Path(args.lab), args.trace_hooks), once=args.once, stats=args.stats)
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -149,7 +149,7 @@ def _remove_quietly(path: str | Path) -> None:
         pass
 
 
-def remove_temp_leftovers(folder: Path) -> list[str]:
+def remove_temp_leftovers(folder: str | Path) -> list[str]:
     """Delete ``.<name>.tmp`` files a crash left behind (never published); returns their names."""
     removed = []
     try:
@@ -158,7 +158,7 @@ def remove_temp_leftovers(folder: Path) -> list[str]:
         return removed
     for name in names:
         if name.startswith(".") and name.endswith(TEMP_SUFFIX):
-            _remove_quietly(folder / name)
+            _remove_quietly(os.path.join(folder, name))
             removed.append(name)
     return removed
 

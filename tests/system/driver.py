@@ -189,6 +189,12 @@ def run_once(lab: Path, env: dict[str, str] | None = None, extra_args: list[str]
                           capture_output=True, text=True, cwd=REPO, env=environment(env), timeout=WAIT_SECONDS)
 
 
+def run_crashing(lab: Path, step: str) -> subprocess.CompletedProcess:
+    """``watch --once`` that crashes right after ``step`` (``STEP[:N]``, see tests/system/crashing.py)."""
+    return subprocess.run([sys.executable, "-m", "tests.system.crashing", str(lab), step],
+                          capture_output=True, text=True, cwd=REPO, env=environment(), timeout=WAIT_SECONDS)
+
+
 def temp_leftovers(lab: Path) -> list[str]:
     return [f"{folder}/{name}" for folder in ("inbox", "outbox", "rejected", "held", "archive", "work")
             for name in os.listdir(lab / folder) if name.startswith(".") and name.endswith(".tmp")]
