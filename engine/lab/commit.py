@@ -19,7 +19,7 @@ from typing import TYPE_CHECKING, Any, Callable
 
 from lenslane.audit.log import AuditError, AuditLog
 from lenslane.lab.errors import OutputBlocked
-from lenslane.lab.files import fsync_dir, make_durable
+from lenslane.lab.files import fsync_dir, make_durable, publish_file, rename_noreplace
 from lenslane.lab.history import FinalRecord, History
 
 if TYPE_CHECKING:
@@ -81,10 +81,21 @@ class GroupCommit:
     def defer(self, pending: Pending) -> None:
         self._next.orders.append(pending)
 
+    def _batches(self) -> list[_Batch]:
+        return [self._next] if self._committing is None else [self._next, self._committing]
+
+    def destinations(self) -> set[str]:
+        """Where the inputs waiting for a commit will go (relative to the lab): names no other input may take."""
+        return {pending.final.input for batch in self._batches() for pending in batch.orders}
+
+    def set_aside(self, work_name: str) -> None:
+        """Leave ``work/<work_name>`` where it is: its records are written, its move is given up until a restart."""
+        for batch in self._batches():
+            batch.orders[:] = [pending for pending in batch.orders if pending.work_name != work_name]
+
     def is_pending(self, processed: "Processed") -> bool:
         """Whether ``processed`` still waits for :meth:`commit`."""
-        batches = [self._next] if self._committing is None else [self._next, self._committing]
-        return any(pending.processed is processed for batch in batches for pending in batch.orders)
+        return any(pending.processed is processed for batch in self._batches() for pending in batch.orders)
 
     @property
     def uncommitted(self) -> int:
@@ -128,7 +139,7 @@ class GroupCommit:
         while batch.unpublished:
             temp, target = batch.unpublished[0]
             try:
-                os.replace(temp, target)
+                publish_file(temp, target)  # a redo's result is already there, byte for byte: kept as it is
             except OSError as exc:
                 raise OutputBlocked("publish", target, exc, first) from exc
             batch.unpublished.pop(0)
@@ -166,7 +177,7 @@ class GroupCommit:
         """Move a finished input out of ``work/`` to where its final record says."""
         target = f"{self.root}/{destination}"
         try:
-            os.rename(f"{self.work}/{work_name}", target)
+            rename_noreplace(f"{self.work}/{work_name}", target)
         except FileNotFoundError:
             pass  # already moved, or removed by hand: nothing is left to do
         except OSError as exc:

@@ -28,6 +28,7 @@ from lenslane.chain.host import Host
 from lenslane.chain.pipeline import Pipeline, StageFailure
 from lenslane.config import CONFIG_NAME, LabConfig, template_text
 from lenslane.lab.arrival import Arrivals, Complete, Wait, is_order_name, order_names
+from lenslane.lab.aside import Aside, SetAside
 from lenslane.lab.claim import Claims
 from lenslane.lab.commit import GroupCommit
 from lenslane.lab.errors import Interrupted, OrderTimeLimit, OutputBlocked, StageWontStop
@@ -93,6 +94,7 @@ class Lab:
         self._on_step = on_step or (lambda step: None)
         self.stage_seconds: dict[str, float] = {}  # time spent in each stage, summed over the run
         self.history = History(self.root)
+        self.aside = Aside()  # entries that could not be taken, left where they are
         self.arrivals = Arrivals(os.path.join(root_text, "inbox"), self.config.watch, self.examine)
         self.claims = Claims(os.path.join(root_text, "inbox"), self._work)
         self.commits = GroupCommit(root_text, self.history, self._open_audit, self._on_step)
@@ -117,9 +119,29 @@ class Lab:
         """Order names in the inbox, oldest name first."""
         return order_names(self.arrivals.inbox)
 
-    def forget_missing(self, present: set[str]) -> None:
-        """Drop what was remembered about entries no longer in the inbox."""
+    def forget_missing(self, present: set[str]) -> bool:
+        """Drop what was remembered about entries no longer in the inbox; True when one set aside is gone."""
         self.arrivals.forget_missing(present)
+        return self.aside.forget_missing(present)
+
+    def set_aside(self, blocked: OutputBlocked, tries: int) -> SetAside:
+        """Give up on the entry a step failed for: it is left where it is, and not tried again while unchanged.
+
+        An input whose move out of ``work/`` failed leaves the batch (its records are written; the
+        next start moves it).
+        """
+        error = blocked.error
+        reason = f"{getattr(error, 'strerror', None) or error}: {blocked.path}"
+        if blocked.work_name is not None:
+            folder, name, path = "work", blocked.work_name, f"{self._work}/{blocked.work_name}"
+            self.commits.set_aside(blocked.work_name)
+        else:
+            folder, name, path = "inbox", os.path.basename(os.fspath(blocked.path)), os.fspath(blocked.path)
+        try:
+            info = os.lstat(path)
+        except OSError:
+            info = None
+        return self.aside.add(folder, printable(name), blocked.step, reason, tries, info)
 
     def examine(self, raw: bytes) -> Examined:
         """Parse and validate the bytes of one order (no file is touched)."""
@@ -135,6 +157,8 @@ class Lab:
         writing (so no quiet time is waited). Returns ``None`` when the entry is
         gone (taken by someone else, deleted).
         """
+        if self.aside.entries and self._still_aside(name):
+            return None
         seen = self.arrivals.look(name, moved, closed)
         if not isinstance(seen, Complete):
             return seen
@@ -149,6 +173,12 @@ class Lab:
                 opened.st_ino, opened.st_size, opened.st_mtime_ns):
             examined = None  # not the bytes that were read: read the claimed file itself
         return self.process_claimed(work_name, info, examined)
+
+    def _still_aside(self, name: str) -> bool:
+        try:
+            return self.aside.holds(name, os.lstat(f"{self.arrivals.inbox}/{name}"))
+        except OSError:
+            return False
 
     def process_claimed(self, work_name: str, info: os.stat_result | None = None,
                         examined: Examined | None = None, redo: bool = False) -> Processed | None:

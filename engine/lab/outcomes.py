@@ -20,7 +20,7 @@ from lenslane.contract.models import ORDER_ID_RE
 from lenslane.lab.commit import GroupCommit, Pending
 from lenslane.lab.errors import OutputBlocked
 from lenslane.lab.examine import Examined
-from lenslane.lab.files import claim_tag, free_name, printable, write_durably, write_unsynced
+from lenslane.lab.files import claim_tag, free_name, holds, printable, write_durably, write_unsynced
 from lenslane.lab.history import FinalRecord, History
 
 ERRORS_SUFFIX = ".errors.json"
@@ -100,6 +100,11 @@ class Outcomes:
             raise ValueError(f"order id {order_id!r} cannot name a file")
         data = result_bytes(result)
         target = f"{self.outbox}/{order_id}.json"
+        if os.path.lexists(target) and not holds(target, data):
+            return self.hold(claimed, received, examined, [{"field": "order_id", "message": (
+                f"outbox/{order_id}.json is already there, and not as this order makes it (a result the audit log "
+                "does not know, or one made before a crash with other settings); it is kept as it is, and this "
+                "copy is held for a person to decide — nothing was published")}])
         try:
             self.commit.result_written(write_unsynced(target, data), target)
         except OSError as exc:
@@ -115,9 +120,10 @@ class Outcomes:
         return self.settle(claimed, received, "rejected", order_id, {"reasons": problems},
                            report={"rejected": True, "problems": problems}, reasons=problems)
 
-    def hold(self, claimed: Claimed, received: dict[str, Any], examined: Examined) -> Processed:
+    def hold(self, claimed: Claimed, received: dict[str, Any], examined: Examined,
+             reasons: list[dict[str, str]] | None = None) -> Processed:
         order_id = examined.order_id
-        reasons = [{"field": "order_id", "message": (
+        reasons = reasons or [{"field": "order_id", "message": (
             f"order {order_id} was already published (outbox/{order_id}.json) with different content; this "
             "copy is held for a person to compare the two and decide — it was not processed")}]
         return self.settle(claimed, received, "held", order_id,
@@ -137,13 +143,25 @@ class Outcomes:
                status: str | None = None, reasons: list[dict[str, str]] | None = None) -> Processed:
         """The one ending: choose where the input goes, write the report if any, queue the records."""
         kind = KINDS[outcome]
-        target = free_name(os.path.join(self.root, kind.folder), claimed.name, claim_tag(claimed.claim),
-                           kind.report_suffix)
-        destination = f"{kind.folder}/{target}"
+        folder = os.path.join(self.root, kind.folder)
         name = printable(claimed.name)
+        waiting = self.commit.destinations()
+
+        def report_bytes(target: str) -> bytes:
+            return _report_bytes({"file": name, **(report or {}), "input": printable(f"{kind.folder}/{target}")})
+
+        def taken(target: str) -> bool:
+            """An input is there or on its way there, or a report of other bytes (a redo's own is the same)."""
+            report_path = os.path.join(folder, f"{target}{kind.report_suffix}")
+            return (f"{kind.folder}/{target}" in waiting or os.path.lexists(os.path.join(folder, target))
+                    or (report is not None and os.path.lexists(report_path)
+                        and not holds(report_path, report_bytes(target))))
+
+        target = free_name(folder, claimed.name, claim_tag(claimed.claim), kind.report_suffix, taken)
+        destination = f"{kind.folder}/{target}"
         if report is not None:
-            self._write_report(kind.step, os.path.join(self.root, kind.folder, f"{target}{kind.report_suffix}"),
-                               {"file": name, **report, "input": printable(destination)}, claimed)
+            self._write_report(kind.step, os.path.join(folder, f"{target}{kind.report_suffix}"),
+                               report_bytes(target), claimed)
         final = {"event": outcome, "order_id": order_id, "file": name, **fields, "claim": claimed.claim,
                  "input": printable(destination), **self.engine_fields}
         processed = Processed(name, outcome, order_id, status, reasons, redo=claimed.redo)
@@ -151,9 +169,9 @@ class Outcomes:
                                   FinalRecord(destination, outcome, order_id, status), processed))
         return processed
 
-    def _write_report(self, step: str, path: str, report: dict[str, Any], claimed: Claimed) -> None:
+    def _write_report(self, step: str, path: str, data: bytes, claimed: Claimed) -> None:
         try:
-            write_durably(path, _report_bytes(report), sync_folder=False)  # the folder is fsynced by the commit
+            write_durably(path, data, sync_folder=False)  # the folder is fsynced by the commit
         except OSError as exc:
             raise OutputBlocked(step, path, exc, claimed.work_name) from exc
         self.commit.folder_written(os.path.dirname(path))

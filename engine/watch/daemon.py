@@ -25,13 +25,14 @@ import os
 import signal
 import sys
 import time
+from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Callable
 
 from lenslane import __version__
 from lenslane.chain.host import Host
 from lenslane.lab.errors import Interrupted, OutputBlocked
-from lenslane.lab.files import LabLocked, lock_lab, printable
+from lenslane.lab.files import LabLocked, lock_lab, printable, write_lock_state
 from lenslane.lab.folder import Lab, Processed, Wait
 from lenslane.watch.clock import StageClock
 from lenslane.watch.log import configure_logging
@@ -46,6 +47,9 @@ EXIT_LAB_LOCKED = 3
 
 #: After SIGTERM/SIGINT, how long a running stage may still take before it is interrupted (s).
 SHUTDOWN_GRACE_SECONDS = 3.0
+#: Steps that fail for one entry (not for the whole lab): tried this many times, then the entry is set aside.
+ENTRY_STEPS = frozenset({"claim", "read", "archive"})
+ENTRY_TRIES = 5
 #: Group commit: at most this many orders share one folder fsync and one audit fsync. Only orders
 #: already due are batched, so a lone order is committed at once and latency does not grow.
 BATCH_MAX = 64
@@ -75,6 +79,9 @@ class Daemon:
         self.inbox_missing = False
         self.next_scan = 0.0
         self.log: Any = None
+        self.lock: int | None = None
+        self.since = ""
+        self.entry_tries: dict[str, Backoff] = {}  # inbox names whose claim or read failed, with their waits
 
     # -- start and stop ----------------------------------------------------------
 
@@ -83,7 +90,7 @@ class Daemon:
         self.log = configure_logging(sys.stderr if self.once else sys.stdout).bind()
         self.tally = Tally(self.log)
         try:
-            lock = lock_lab(self.lab.root)
+            lock = self.lock = lock_lab(self.lab.root)
         except LabLocked as exc:
             self.log.error("lab locked", lab=str(self.lab.root), lock=str(exc.path), holder_pid=exc.holder,
                            message="another lenslane watch is working on this lab; refusing to start")
@@ -102,6 +109,8 @@ class Daemon:
 
     def _run_locked(self) -> int:
         lab = self.lab
+        self.since = datetime.now(timezone.utc).isoformat(timespec="seconds").replace("+00:00", "Z")
+        self._write_state()
         self.log.info("starting", lab=str(lab.root), mode="once" if self.once else "watch", version=__version__,
                       pid=os.getpid(), watch=lab.config.watch.model_dump())
         self.log.info("chain", stages=[link.stage.name for link in lab.host.chain], disabled=lab.host.disabled,
@@ -181,6 +190,18 @@ class Daemon:
     def _look_at(self, name: str, flags: int) -> Any:
         result = self._handle(name, lambda: self.lab.consider(name, moved=bool(flags & MOVED),
                                                               closed=bool(flags & CLOSED)))
+        if isinstance(result, OutputBlocked):  # this entry could not be claimed or read: the others go on
+            backoff = self.entry_tries.setdefault(name, Backoff(self.retry_max_seconds, ENTRY_TRIES))
+            delay = backoff.failed()
+            if delay is None:
+                del self.entry_tries[name]
+                self._set_aside(result, backoff.failures)
+            else:
+                self._blocked(result, delay, file=printable(name), message="cannot take this entry; it stays in "
+                              "the inbox and is tried again, the other orders meanwhile")
+                self.schedule.at(name, time.monotonic() + delay)
+            return result
+        self.entry_tries.pop(name, None)
         if isinstance(result, Wait):
             if self.once:
                 first = self.put_off.setdefault(name, time.monotonic())
@@ -209,7 +230,8 @@ class Daemon:
         for name in names:
             if name not in self.left:
                 self.schedule.at(name, now)
-        self.lab.forget_missing(set(names))
+        if self.lab.forget_missing(set(names)):
+            self._write_state()
 
     def _sleep(self, seconds: float) -> bool:
         """Wait, still noting hints; True when a stop was asked."""
@@ -224,17 +246,34 @@ class Daemon:
     # -- one order, and the commit, with retries -----------------------------------------
 
     def _retrying(self, attempt: Callable[[], Any], blocked: Callable[[OutputBlocked, float], None],
-                  resume: Callable[[OutputBlocked], Callable[[], Any] | None] = lambda exc: None) -> Any:
+                  resume: Callable[[OutputBlocked], Callable[[], Any] | None] = lambda exc: None,
+                  goes_on: bool = False) -> Any:
         """Run ``attempt``; while its output is blocked, wait (0.5 s, 1 s, 2 s … up to the setting) and retry.
 
-        ``resume`` may give what to retry instead (the claimed input, once an entry is claimed).
+        A failed write of the lab's (disk full, no permission) is retried for as
+        long as it takes. A step that failed for one entry only is retried
+        :data:`ENTRY_TRIES` times and the entry is set aside: one still in the
+        inbox at once (returned, for the caller to put off), one in ``work/``
+        after its tries (then ``None`` is returned, or with ``goes_on`` the
+        attempt goes on without it). ``resume`` may give what to retry instead
+        (the claimed input, once an entry is claimed).
         """
-        backoff = Backoff(self.retry_max_seconds)
+        waits: dict[Any, Backoff] = {}
         while True:
             try:
                 return attempt()
             except OutputBlocked as exc:
+                entry = exc.step in ENTRY_STEPS
+                if entry and not exc.claimed:
+                    return exc
+                key = (exc.step, exc.work_name) if entry else None
+                backoff = waits.setdefault(key, Backoff(self.retry_max_seconds, ENTRY_TRIES if entry else None))
                 delay = backoff.failed()
+                if delay is None:
+                    self._set_aside(exc, backoff.failures)
+                    if goes_on:
+                        continue
+                    return None
                 blocked(exc, delay)
                 if self._sleep(delay):
                     return _STOPPED
@@ -245,6 +284,26 @@ class Daemon:
         self.log.error("output blocked", step=exc.step, path=str(exc.path), **fields,
                        error=getattr(error, "strerror", None) or str(error),
                        errno=errno.errorcode.get(getattr(error, "errno", None) or 0), retry_in_s=delay)
+
+    def _set_aside(self, blocked: OutputBlocked, tries: int) -> None:
+        entry = self.lab.set_aside(blocked, tries)
+        self.log.error("not taken", file=entry.file, folder=entry.folder, step=entry.step, reason=entry.reason,
+                       tries=tries, message=f"left in {entry.folder}/ and not tried again "
+                       + ("until it changes" if entry.folder == "inbox" else "until the next start")
+                       + "; the other orders go on")
+        self._write_state()
+
+    def _write_state(self) -> None:
+        """The health line (when something is set aside), and the state ``lenslane status`` reads."""
+        not_taken = self.lab.aside.listed()
+        if not_taken:
+            self.log.warning("health", not_taken=len(not_taken), entries=not_taken)
+        if self.lock is not None:
+            try:
+                write_lock_state(self.lock, {"since": self.since, "mode": "once" if self.once else "watch",
+                                             "not_taken": not_taken})
+            except OSError as exc:
+                self.log.warning("state not written", error=str(exc))
 
     def _handle(self, name: str, attempt: Callable[[], Any]) -> Any:
         """Run one look at an entry; retry a blocked write with backoff until it succeeds or a stop is asked."""
@@ -275,7 +334,8 @@ class Daemon:
         """Group commit of the orders processed so far; retry with backoff while output is blocked."""
         while self.lab.uncommitted:
             done = self._retrying(self.lab.commit, lambda exc, delay: self._blocked(
-                exc, delay, message="cannot record or archive finished orders; they are kept in work/ and retried"))
+                exc, delay, message="cannot record or archive finished orders; they are kept in work/ and retried"),
+                goes_on=True)
             if done is _STOPPED:
                 return _STOPPED
             for processed in done:

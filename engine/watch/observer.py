@@ -155,6 +155,8 @@ class Supervisor:
         self.kind: str | None = None
         self.rebuilds = Backoff(math.inf, tries=OBSERVER_REBUILDS)
         self.next_check = 0.0
+        self.watched: tuple[int, int] | None = None  # the inbox folder the observer watches (device, inode)
+        self.why: str | None = None  # why the observer is being rebuilt
 
     def start(self, now: float) -> None:
         """Start the observer; raises OSError when it cannot be."""
@@ -162,7 +164,9 @@ class Supervisor:
             self.log.warning("observer events may lag",
                              message="this watchdog version holds rename events up to 0.5 s; orders are still all "
                                      "taken, some later")
+        watched = _identity(self.inbox)
         self.observer, self.kind, why = start_observer(self.setting, self.inbox, InboxEvents(self.inbox, self.hints))
+        self.watched = watched
         self.log.info("observer", kind=self.kind, why=why, inbox=self.inbox, rescan_seconds=self.rescan_seconds)
         self.next_check = now + SUPERVISE_SECONDS
 
@@ -171,13 +175,26 @@ class Supervisor:
         return (observer is not None and observer.is_alive()
                 and all(emitter.is_alive() for emitter in list(observer.emitters)))
 
+    def trouble(self) -> str | None:
+        """What is wrong with the observer, or ``None``: its threads stopped, or the inbox folder is another one."""
+        if not self.alive():
+            return "its threads stopped"
+        identity = _identity(self.inbox)
+        if identity is None:
+            return "the inbox folder is gone"
+        if identity != self.watched:
+            return "the inbox folder was replaced (the observer watched the old one)"
+        return None
+
     def check(self, now: float) -> str | None:
         """Rebuild a dead observer; returns ``"rebuilt"`` (rescan now), ``"gave up"`` (exit 1) or ``None``."""
         self.next_check = now + SUPERVISE_SECONDS
-        if self.alive():
-            return None
         if self.observer is not None:
-            self.log.error("observer stopped", kind=self.kind,
+            why = self.trouble()
+            if why is None:
+                return None
+            self.why = why
+            self.log.error("observer stopped", kind=self.kind, why=why,
                            message="rebuilding it; the rescans keep finding files meanwhile")
             self.stop()
         try:
@@ -192,7 +209,7 @@ class Supervisor:
                              retry_in_s=wait)
             self.next_check = now + wait
             return None
-        self.log.info("observer rebuilt", kind=self.kind)
+        self.log.info("observer rebuilt", kind=self.kind, why=self.why)
         self.rebuilds.reset()
         return "rebuilt"
 
@@ -205,3 +222,11 @@ class Supervisor:
             observer.join(timeout=2.0)
         except Exception:  # a broken observer must not keep the daemon from stopping
             pass
+
+
+def _identity(folder: str) -> tuple[int, int] | None:
+    try:
+        info = os.stat(folder)
+    except OSError:
+        return None
+    return info.st_dev, info.st_ino

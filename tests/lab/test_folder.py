@@ -22,7 +22,7 @@ from lenslane.lab.files import LabLocked, filesystem_type, free_name, is_network
 from lenslane.lab.folder import Interrupted, Lab, OrderTimeLimit, Processed, StageWontStop, Wait
 from lenslane.contract.intake import OrderRejected, parse_json, read_order
 from lenslane.watch.log import configure_logging, get_logger
-from tests.system.driver import make_lab, order
+from tests.system.driver import claimed, make_lab, order
 
 MATERIALS = {"resin-1.50": {}}
 NON_ASCII_ORDER = json.dumps(order("PART-1", account="optique-café-ü"), ensure_ascii=False, indent=1).encode()
@@ -94,27 +94,28 @@ def test_a_failed_flush_keeps_the_batch_for_the_retry(lab, monkeypatch):
     with pytest.raises(lenslane.lab.folder.OutputBlocked) as blocked:
         lab.commit()
     assert blocked.value.error is failing and blocked.value.step == "publish"
-    assert os.listdir(lab.work) == ["FLUSH-1.json"] and not (lab.outbox / "FLUSH-1.json").exists()
+    assert claimed(lab.root) == ["FLUSH-1.json"] and not (lab.outbox / "FLUSH-1.json").exists()
     monkeypatch.undo()
     assert [p.order_id for p in lab.commit()] == ["FLUSH-1"]
     assert (lab.outbox / "FLUSH-1.json").exists() and os.listdir(lab.work) == []
 
 
 def test_orders_made_final_before_a_failure_are_returned_by_the_next_commit(lab, monkeypatch):
+    import lenslane.lab.commit
     import lenslane.lab.folder
 
     _process(lab, "FINAL-1", "FINAL-2")
-    real_rename = os.rename
+    real_rename = lenslane.lab.commit.rename_noreplace
 
     def archive_fails_for_the_second(source, target):
         if source.endswith("FINAL-2.json"):
             raise OSError(errno.EIO, "Input/output error")
         return real_rename(source, target)
 
-    monkeypatch.setattr(lenslane.lab.folder.os, "rename", archive_fails_for_the_second)
+    monkeypatch.setattr(lenslane.lab.commit, "rename_noreplace", archive_fails_for_the_second)
     with pytest.raises(lenslane.lab.folder.OutputBlocked):
         lab.commit()  # FINAL-1 is finished (archived); FINAL-2's move fails
-    assert (lab.outbox / "FINAL-1.json").exists() and os.listdir(lab.work) == ["FINAL-2.json"]
+    assert (lab.outbox / "FINAL-1.json").exists() and claimed(lab.root) == ["FINAL-2.json"]
     monkeypatch.undo()
     assert [p.order_id for p in lab.commit()] == ["FINAL-1", "FINAL-2"]  # neither is lost to the log
 

@@ -1,9 +1,10 @@
 """Test-only: ``lenslane watch LAB --once`` that crashes right after a step of the publish sequence.
 
-    python -m tests.system.crashing LAB STEP[:N]
+    python -m tests.system.crashing LAB STEP[:N] [NAME...]
 
-runs the engine in this process, exactly as ``lenslane watch --once`` does,
-with a step callback that ends the process abruptly (``os._exit``: no clean-up,
+runs the engine in this process, exactly as ``lenslane watch --once`` does
+(or, given NAMEs, takes exactly those inbox entries in that order as renamed
+in, and commits them as one batch), with a step callback that ends the process abruptly (``os._exit``: no clean-up,
 no flushing, as a crash) right after the N-th time (default the first) STEP
 completes. The steps are :data:`lenslane.lab.folder.STEPS`.
 """
@@ -16,7 +17,7 @@ from typing import Callable
 
 from lenslane.chain.host import start_host
 from lenslane.config import load_config
-from lenslane.lab.folder import STEPS
+from lenslane.lab.folder import STEPS, Lab
 from lenslane.watch.daemon import run
 
 CRASH_EXIT_CODE = 86
@@ -39,8 +40,16 @@ def crash_after(spec: str) -> Callable[[str], None]:
 
 
 def main(argv: list[str]) -> int:
-    lab, spec = Path(argv[0]), argv[1]
-    return run(lab, start_host(load_config(lab)), once=True, on_step=crash_after(spec))
+    root, spec, take = Path(argv[0]), argv[1], argv[2:]
+    host = start_host(load_config(root))
+    if not take:
+        return run(root, host, once=True, on_step=crash_after(spec))
+    lab = Lab(root, host, on_step=crash_after(spec))
+    lab.recover()
+    for name in take:
+        lab.consider(name, moved=True)
+    lab.commit()
+    return 0
 
 
 if __name__ == "__main__":
