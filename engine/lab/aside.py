@@ -11,6 +11,9 @@ import os
 import time
 from dataclasses import asdict, dataclass
 
+from lenslane.lab.errors import OutputBlocked
+from lenslane.lab.files import printable
+
 
 @dataclass(frozen=True)
 class SetAside:
@@ -44,6 +47,20 @@ class Aside:
         entry = SetAside(folder, name, step, reason, tries, time.time(), signature(info) if info else (0, 0, 0, 0))
         self.entries[(folder, name)] = entry
         return entry
+
+    def add_blocked(self, blocked: OutputBlocked, tries: int, work: str) -> SetAside:
+        """Set aside the entry ``blocked`` is about: in ``work/`` when it was claimed, else in the inbox."""
+        error = blocked.error
+        reason = f"{getattr(error, 'strerror', None) or error}: {blocked.path}"
+        if blocked.work_name is not None:
+            folder, name, path = "work", blocked.work_name, os.path.join(work, blocked.work_name)
+        else:
+            folder, name, path = "inbox", os.path.basename(os.fspath(blocked.path)), os.fspath(blocked.path)
+        try:
+            info = os.lstat(path)
+        except OSError:
+            info = None
+        return self.add(folder, printable(name), blocked.step, reason, tries, info)
 
     def holds(self, name: str, info: os.stat_result) -> bool:
         """Whether ``inbox/<name>`` is set aside and unchanged since (a changed one is forgotten)."""

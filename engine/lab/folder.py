@@ -125,23 +125,14 @@ class Lab:
         return self.aside.forget_missing(present)
 
     def set_aside(self, blocked: OutputBlocked, tries: int) -> SetAside:
-        """Give up on the entry a step failed for: it is left where it is, and not tried again while unchanged.
+        """Give up on the entry a step failed for: left where it is, not tried again while unchanged.
 
         An input whose move out of ``work/`` failed leaves the batch (its records are written; the
         next start moves it).
         """
-        error = blocked.error
-        reason = f"{getattr(error, 'strerror', None) or error}: {blocked.path}"
         if blocked.work_name is not None:
-            folder, name, path = "work", blocked.work_name, f"{self._work}/{blocked.work_name}"
             self.commits.set_aside(blocked.work_name)
-        else:
-            folder, name, path = "inbox", os.path.basename(os.fspath(blocked.path)), os.fspath(blocked.path)
-        try:
-            info = os.lstat(path)
-        except OSError:
-            info = None
-        return self.aside.add(folder, printable(name), blocked.step, reason, tries, info)
+        return self.aside.add_blocked(blocked, tries, self._work)
 
     def examine(self, raw: bytes) -> Examined:
         """Parse and validate the bytes of one order (no file is touched)."""

@@ -18,26 +18,24 @@ one-line summary and exits.
 """
 from __future__ import annotations
 
-import errno
 import json
 import math
 import os
 import signal
 import sys
 import time
-from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Callable
 
 from lenslane import __version__
 from lenslane.chain.host import Host
 from lenslane.lab.errors import Interrupted, OutputBlocked
-from lenslane.lab.files import LabLocked, lock_lab, printable, write_lock_state
+from lenslane.lab.files import LabLocked, lock_lab, printable
 from lenslane.lab.folder import Lab, Processed, Wait
 from lenslane.watch.clock import StageClock
 from lenslane.watch.log import configure_logging
 from lenslane.watch.observer import Supervisor
-from lenslane.watch.retry import Backoff
+from lenslane.watch.health import STOPPED, Health
 from lenslane.watch.schedule import CLOSED, MOVED, Schedule, scan
 from lenslane.watch.tally import Tally
 
@@ -47,14 +45,10 @@ EXIT_LAB_LOCKED = 3
 
 #: After SIGTERM/SIGINT, how long a running stage may still take before it is interrupted (s).
 SHUTDOWN_GRACE_SECONDS = 3.0
-#: Steps that fail for one entry (not for the whole lab): tried this many times, then the entry is set aside.
-ENTRY_STEPS = frozenset({"claim", "read", "archive"})
-ENTRY_TRIES = 5
 #: Group commit: at most this many orders share one folder fsync and one audit fsync. Only orders
 #: already due are batched, so a lone order is committed at once and latency does not grow.
 BATCH_MAX = 64
 
-_STOPPED = object()
 
 
 class Daemon:
@@ -67,7 +61,6 @@ class Daemon:
         self.stats = stats
         watch = lab.config.watch
         self.rescan_seconds = watch.rescan_seconds
-        self.retry_max_seconds = watch.retry_max_seconds
         self.young_seconds = watch.young_seconds
         self.schedule = Schedule()
         self.put_off: dict[str, float] = {}  # --once: when a still-changing file was first put off
@@ -79,9 +72,7 @@ class Daemon:
         self.inbox_missing = False
         self.next_scan = 0.0
         self.log: Any = None
-        self.lock: int | None = None
-        self.since = ""
-        self.entry_tries: dict[str, Backoff] = {}  # inbox names whose claim or read failed, with their waits
+        self.health: Any = None
 
     # -- start and stop ----------------------------------------------------------
 
@@ -89,12 +80,14 @@ class Daemon:
         # Bound once: a logger proxy would bind itself again on every line.
         self.log = configure_logging(sys.stderr if self.once else sys.stdout).bind()
         self.tally = Tally(self.log)
+        self.health = Health(self.lab, self.log, "once" if self.once else "watch")
         try:
-            lock = self.lock = lock_lab(self.lab.root)
+            lock = lock_lab(self.lab.root)
         except LabLocked as exc:
             self.log.error("lab locked", lab=str(self.lab.root), lock=str(exc.path), holder_pid=exc.holder,
                            message="another lenslane watch is working on this lab; refusing to start")
             return EXIT_LAB_LOCKED
+        self.health.started(lock)
         previous = {number: signal.signal(number, self._on_stop) for number in (signal.SIGTERM, signal.SIGINT)}
         previous[signal.SIGALRM] = signal.signal(signal.SIGALRM, self.clock.on_alarm)
         try:
@@ -109,8 +102,6 @@ class Daemon:
 
     def _run_locked(self) -> int:
         lab = self.lab
-        self.since = datetime.now(timezone.utc).isoformat(timespec="seconds").replace("+00:00", "Z")
-        self._write_state()
         self.log.info("starting", lab=str(lab.root), mode="once" if self.once else "watch", version=__version__,
                       pid=os.getpid(), watch=lab.config.watch.model_dump())
         self.log.info("chain", stages=[link.stage.name for link in lab.host.chain], disabled=lab.host.disabled,
@@ -120,11 +111,11 @@ class Daemon:
             self.log.info("recovering", claimed=len(claimed),
                           note="orders claimed but not finished when the last run ended are finished first")
         for name in claimed:
-            if self.stopping or self._handle(name, lambda n=name: lab.process_claimed(n, redo=True)) is _STOPPED:
+            if self.stopping or self._handle(name, lambda n=name: lab.process_claimed(n, redo=True)) is STOPPED:
                 return self._finish()
-            if lab.batched >= BATCH_MAX and self._commit() is _STOPPED:
+            if lab.batched >= BATCH_MAX and self._commit() is STOPPED:
                 return self._finish()
-        if self._commit() is _STOPPED:
+        if self._commit() is STOPPED:
             return self._finish()
         if not self.once:
             self.supervisor = Supervisor(lab.config.watch.observer, os.fspath(lab.inbox), self.schedule.hints,
@@ -173,9 +164,9 @@ class Daemon:
                         self.next_scan = now  # events may have been missed while it was down
             due = schedule.pop_due(now)
             if due is not None:
-                if self._look_at(*due) is _STOPPED:
+                if self._look_at(*due) is STOPPED:
                     break
-                if (self.lab.batched >= BATCH_MAX or self._idle()) and self._commit() is _STOPPED:
+                if (self.lab.batched >= BATCH_MAX or self._idle()) and self._commit() is STOPPED:
                     break
                 continue
             upcoming = schedule.next_due()
@@ -191,17 +182,11 @@ class Daemon:
         result = self._handle(name, lambda: self.lab.consider(name, moved=bool(flags & MOVED),
                                                               closed=bool(flags & CLOSED)))
         if isinstance(result, OutputBlocked):  # this entry could not be claimed or read: the others go on
-            backoff = self.entry_tries.setdefault(name, Backoff(self.retry_max_seconds, ENTRY_TRIES))
-            delay = backoff.failed()
-            if delay is None:
-                del self.entry_tries[name]
-                self._set_aside(result, backoff.failures)
-            else:
-                self._blocked(result, delay, file=printable(name), message="cannot take this entry; it stays in "
-                              "the inbox and is tried again, the other orders meanwhile")
+            delay = self.health.entry_failed(name, result)
+            if delay is not None:
                 self.schedule.at(name, time.monotonic() + delay)
             return result
-        self.entry_tries.pop(name, None)
+        self.health.entry_done(name)
         if isinstance(result, Wait):
             if self.once:
                 first = self.put_off.setdefault(name, time.monotonic())
@@ -231,7 +216,7 @@ class Daemon:
             if name not in self.left:
                 self.schedule.at(name, now)
         if self.lab.forget_missing(set(names)):
-            self._write_state()
+            self.health.write_state()
 
     def _sleep(self, seconds: float) -> bool:
         """Wait, still noting hints; True when a stop was asked."""
@@ -245,71 +230,11 @@ class Daemon:
 
     # -- one order, and the commit, with retries -----------------------------------------
 
-    def _retrying(self, attempt: Callable[[], Any], blocked: Callable[[OutputBlocked, float], None],
-                  resume: Callable[[OutputBlocked], Callable[[], Any] | None] = lambda exc: None,
-                  goes_on: bool = False) -> Any:
-        """Run ``attempt``; while its output is blocked, wait (0.5 s, 1 s, 2 s … up to the setting) and retry.
-
-        A failed write of the lab's (disk full, no permission) is retried for as
-        long as it takes. A step that failed for one entry only is retried
-        :data:`ENTRY_TRIES` times and the entry is set aside: one still in the
-        inbox at once (returned, for the caller to put off), one in ``work/``
-        after its tries (then ``None`` is returned, or with ``goes_on`` the
-        attempt goes on without it). ``resume`` may give what to retry instead
-        (the claimed input, once an entry is claimed).
-        """
-        waits: dict[Any, Backoff] = {}
-        while True:
-            try:
-                return attempt()
-            except OutputBlocked as exc:
-                entry = exc.step in ENTRY_STEPS
-                if entry and not exc.claimed:
-                    return exc
-                key = (exc.step, exc.work_name) if entry else None
-                backoff = waits.setdefault(key, Backoff(self.retry_max_seconds, ENTRY_TRIES if entry else None))
-                delay = backoff.failed()
-                if delay is None:
-                    self._set_aside(exc, backoff.failures)
-                    if goes_on:
-                        continue
-                    return None
-                blocked(exc, delay)
-                if self._sleep(delay):
-                    return _STOPPED
-                attempt = resume(exc) or attempt
-
-    def _blocked(self, exc: OutputBlocked, delay: float, **fields: Any) -> None:
-        error = exc.error
-        self.log.error("output blocked", step=exc.step, path=str(exc.path), **fields,
-                       error=getattr(error, "strerror", None) or str(error),
-                       errno=errno.errorcode.get(getattr(error, "errno", None) or 0), retry_in_s=delay)
-
-    def _set_aside(self, blocked: OutputBlocked, tries: int) -> None:
-        entry = self.lab.set_aside(blocked, tries)
-        self.log.error("not taken", file=entry.file, folder=entry.folder, step=entry.step, reason=entry.reason,
-                       tries=tries, message=f"left in {entry.folder}/ and not tried again "
-                       + ("until it changes" if entry.folder == "inbox" else "until the next start")
-                       + "; the other orders go on")
-        self._write_state()
-
-    def _write_state(self) -> None:
-        """The health line (when something is set aside), and the state ``lenslane status`` reads."""
-        not_taken = self.lab.aside.listed()
-        if not_taken:
-            self.log.warning("health", not_taken=len(not_taken), entries=not_taken)
-        if self.lock is not None:
-            try:
-                write_lock_state(self.lock, {"since": self.since, "mode": "once" if self.once else "watch",
-                                             "not_taken": not_taken})
-            except OSError as exc:
-                self.log.warning("state not written", error=str(exc))
-
     def _handle(self, name: str, attempt: Callable[[], Any]) -> Any:
         """Run one look at an entry; retry a blocked write with backoff until it succeeds or a stop is asked."""
         started = time.perf_counter()
         try:
-            result = self._retrying(attempt, lambda exc, delay: self._blocked(
+            result = self.health.retrying(self._sleep, attempt, lambda exc, delay: self.health.blocked(
                 exc, delay, file=printable(name),
                 message=f"cannot {'read' if exc.step == 'read' else 'write'}; the order is kept "
                         "(in work/ or the inbox) and retried"), self._resume_claimed)
@@ -317,7 +242,7 @@ class Daemon:
             self.log.warning("interrupted", file=printable(name),
                              message="a stage was still running at shutdown; the order stays in work/ and is "
                                      "redone at the next start")
-            return _STOPPED
+            return STOPPED
         if isinstance(result, Processed):
             if self.lab.uncommitted and self.lab.is_pending(result):
                 self.tally.waiting(result, started)  # logged once commit() has made it final
@@ -333,11 +258,11 @@ class Daemon:
     def _commit(self) -> Any:
         """Group commit of the orders processed so far; retry with backoff while output is blocked."""
         while self.lab.uncommitted:
-            done = self._retrying(self.lab.commit, lambda exc, delay: self._blocked(
+            done = self.health.retrying(self._sleep, self.lab.commit, lambda exc, delay: self.health.blocked(
                 exc, delay, message="cannot record or archive finished orders; they are kept in work/ and retried"),
                 goes_on=True)
-            if done is _STOPPED:
-                return _STOPPED
+            if done is STOPPED:
+                return STOPPED
             for processed in done:
                 self.tally.final(processed)
         return None
