@@ -201,23 +201,34 @@ def fsync_dir(folder: str | Path) -> None:
 
 
 def write_durably(path: str | Path, data: bytes, sync_folder: bool = True) -> None:
-    """Write ``data`` to a new file ``path`` so a crash leaves either no file or the whole one.
+    """Write ``data`` to ``path`` so a crash leaves either the old file or the whole new one.
 
-    The bytes go to ``.<name>.tmp`` in the same folder, are fsynced, renamed to
-    ``path`` (never over another file: one with the same bytes is kept, other
-    bytes raise FileExistsError), and the folder is fsynced so the rename itself
-    survives power loss. A failed write (disk full, no permission) removes its
-    temp file and raises.
+    The bytes go to ``.<name>.tmp`` in the same folder, are fsynced, renamed over
+    ``path``, and the folder is fsynced so the rename itself survives power loss.
+    A failed write (disk full, no permission) removes its temp file and raises.
+    For a file that must not replace another, :func:`create_durably`.
     """
+    _write_durably(path, data, sync_folder, os.replace)
+
+
+def create_durably(path: str | Path, data: bytes, sync_folder: bool = True) -> None:
+    """:func:`write_durably` for a new file: never renamed over another one.
+
+    A file already at ``path`` with the same bytes is kept (a redo wrote it
+    before a crash); one with other bytes raises FileExistsError.
+    """
+    _write_durably(path, data, sync_folder, publish_file)
+
+
+def _write_durably(path: str | Path, data: bytes, sync_folder: bool, rename: Callable[[str, str | Path], None]) -> None:
     temp = _write_temp(path, data, sync=True)
     try:
-        publish_file(temp, path)
+        rename(temp, path)
     except OSError:
         _remove_quietly(temp)
         raise
-    folder = os.path.dirname(os.fspath(path))
     if sync_folder:
-        fsync_dir(folder or ".")
+        fsync_dir(os.path.dirname(os.fspath(path)) or ".")
 
 
 def _remove_quietly(path: str | Path) -> None:

@@ -20,7 +20,7 @@ from lenslane.contract.models import ORDER_ID_RE
 from lenslane.lab.commit import GroupCommit, Pending
 from lenslane.lab.errors import OutputBlocked
 from lenslane.lab.examine import Examined
-from lenslane.lab.files import claim_tag, free_name, holds, printable, write_durably, write_unsynced
+from lenslane.lab.files import claim_tag, create_durably, free_name, holds, printable, write_unsynced
 from lenslane.lab.history import FinalRecord, History
 
 ERRORS_SUFFIX = ".errors.json"
@@ -171,7 +171,7 @@ class Outcomes:
 
     def _write_report(self, step: str, path: str, data: bytes, claimed: Claimed) -> None:
         try:
-            write_durably(path, data, sync_folder=False)  # the folder is fsynced by the commit
+            create_durably(path, data, sync_folder=False)  # the folder is fsynced by the commit
         except OSError as exc:
             raise OutputBlocked(step, path, exc, claimed.work_name) from exc
         self.commit.folder_written(os.path.dirname(path))
