@@ -115,6 +115,40 @@ def cmd_status(args) -> int:
     return 0
 
 
+def cmd_queue(args) -> int:
+    from lenslane.decide import queue
+    from lenslane.decide.listing import render
+
+    try:
+        items = queue(Path(args.lab))
+    except FileNotFoundError as exc:
+        print(f"lenslane: {exc}", file=sys.stderr)
+        return 1
+    if args.json:
+        print(json.dumps({"waiting": [item.to_dict() for item in items], "caution": CAUTION}, indent=1,
+                         ensure_ascii=False))
+    else:
+        print(render(items))
+        print(f"\n{CAUTION}")
+    return 0
+
+
+def cmd_decide(args) -> int:
+    from lenslane.decide import DecisionError, decide
+
+    try:
+        done = decide(Path(args.lab), args.order_id, args.action, args.by, args.note, held_file=args.held,
+                      wait_seconds=args.wait)
+    except DecisionError as exc:
+        print(f"lenslane: {args.order_id}: {exc.message}", file=sys.stderr)
+        return exc.exit_code
+    if args.json:
+        print(json.dumps(done.to_dict(), indent=1, ensure_ascii=False))
+    else:
+        print(f"{done.order_id}: {done.message} — decided by {done.by} at {done.decided_at}, audit seq {done.seq}")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="lenslane",
@@ -125,8 +159,8 @@ def build_parser() -> argparse.ArgumentParser:
     commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     sub = commands.add_parser("init", help="make a lab folder (idempotent)", description="Make LAB/inbox, outbox, "
-                              "rejected, archive, work, an empty audit.jsonl and a commented lenslane.toml. "
-                              "Never overwrites an existing config.")
+                              "review, held, rejected, archive, work, decisions, an empty audit.jsonl and a commented "
+                              "lenslane.toml. Never overwrites an existing config.")
     sub.add_argument("lab", metavar="LAB")
     sub.set_defaults(func=cmd_init)
 
@@ -177,6 +211,33 @@ def build_parser() -> argparse.ArgumentParser:
     sub.add_argument("order_id", metavar="ORDER_ID")
     sub.add_argument("--json", action="store_true", help="the same story as JSON data")
     sub.set_defaults(func=cmd_explain)
+
+    sub = commands.add_parser("queue", help="list what waits for a person, oldest first",
+                              description="Orders in review/ with their flags, and held orders (another version of "
+                              "a published order) with what differs, field by field; each with its age.")
+    sub.add_argument("lab", metavar="LAB")
+    sub.add_argument("--json", action="store_true", help="the same list as JSON data")
+    sub.set_defaults(func=cmd_queue)
+
+    sub = commands.add_parser(
+        "decide", help="approve or refuse a result in review; replace or discard a held order",
+        description="Record a person's decision on an order, exactly once, in the audit chain. approve: the "
+        "result in review/ goes to outbox/ with status ready and an approved block; refuse: it goes to "
+        "rejected/ with your reason. replace: the held version is run through the chain as the order's next "
+        "revision and supersedes the published result (kept in archive/); discard: the held version is archived. "
+        "Works whether or not `lenslane watch` runs on the lab. Exit codes: 0 decided; 2 a request not well "
+        "formed; 4 unknown order; 5 not awaiting this decision (decided already, or waiting for another kind); "
+        "6 the file does not match the audit log; 7 the running engine did not take the request in time.")
+    sub.add_argument("lab", metavar="LAB")
+    sub.add_argument("order_id", metavar="ORDER_ID")
+    sub.add_argument("action", choices=["approve", "refuse", "replace", "discard"])
+    sub.add_argument("--by", required=True, metavar="NAME", help="who decides (required)")
+    sub.add_argument("--note", required=True, metavar="TEXT", help="why (required; a refusal's reason)")
+    sub.add_argument("--held", metavar="NAME", help="which held version (a name in held/), when there are several")
+    sub.add_argument("--wait", type=float, default=30.0, metavar="SECONDS",
+                     help="how long to wait for a running engine to take the decision (default 30)")
+    sub.add_argument("--json", action="store_true", help="print the decision as JSON data")
+    sub.set_defaults(func=cmd_decide)
 
     sub = commands.add_parser("schema", help="print the JSON Schema of the order (or of the result)",
                               description="Print the JSON Schema of lens-order/1, or of lens-order-result/1.")

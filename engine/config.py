@@ -23,7 +23,7 @@ def template_text() -> str:
     """The default lab config, shipped inside the package (``lenslane.defaults``)."""
     return resources.files("lenslane.defaults").joinpath(CONFIG_NAME).read_text(encoding="utf-8")
 
-DEFAULT_CHAIN = ["validate", "normalize", "prism", "vertex", "tilt", "geometry", "safety"]
+DEFAULT_CHAIN = ["validate", "normalize", "prism", "vertex", "tilt", "generator", "geometry", "safety"]
 
 
 class ConfigError(Exception):

@@ -36,11 +36,13 @@ def run(view, params):
             method = "normalisation (axis 0 written as 180)"
         inputs = {"sphere": eye_rx.sphere, "cylinder": eye_rx.cylinder, "axis": eye_rx.axis, "form": form}
         yield Change(f"lenses.{eye}.rx", power, reason, method, SOURCE, inputs)
-        yield Change(
-            f"lenses.{eye}.surfacing", dict(power),
-            "The surfacing power starts as the normalised prescription; compensation stages may change it.",
-            "copy of the normalised prescription", "Common practice",
-        )
+        surfacing = dict(power)
+        reason = "The surfacing power starts as the normalised prescription; compensation stages may change it."
+        if view.order.lens.design == "single_vision" and surfacing.pop("add", None) is not None:
+            # An add belongs to multifocal designs only (common practice): validate flags the order.
+            reason += " A single-vision lens has no near part, so the prescription's add is not carried into it."
+        yield Change(f"lenses.{eye}.surfacing", surfacing, reason, "copy of the normalised prescription",
+                     "Common practice")
 
 
 @hookimpl

@@ -177,7 +177,7 @@ def _impact_checks(view, params: SafetyParams):
     if birth_year is not None and not resistant:
         year = _order_year(order)
         age = year - birth_year
-        if age < params.minor_age_years:
+        if 0 <= age < params.minor_age_years:  # a birth year after the order's is validate's to flag
             yield Flag(
                 "impact-resistance-minor", "review" if glass else "warning",
                 f"The wearer, born {birth_year}, is about {age} in {year} (under {params.minor_age_years}) and the "

@@ -4,9 +4,10 @@ A tilted lens acts along the line of sight as ``k Sᵀ F S`` (Martin's formula o
 the power matrix). When the order gives a pantoscopic or face-form angle, the
 surfacing power becomes the exact inverse ``F = S⁻ᵀ F_w S⁻¹ / k`` of the wanted
 power ``F_w`` (the surfacing power so far, after vertex compensation), with the
-lens index from the order or the lab's material table. A lab that lowers
-optical centres for pantoscopic tilt instead leaves such designs out of
-``apply_to``. Whatever happens, the result says what was and was not applied,
+lens index from the order or the lab's material table. Pantoscopic tilt and
+face form are compensated for the designs the lab lists for each: a lab that
+lowers single-vision optical centres for pantoscopic tilt leaves single vision
+out of ``pantoscopic_apply_to`` and may still compensate its face form. Whatever happens, the result says what was and was not applied,
 and why.
 """
 from __future__ import annotations
@@ -33,8 +34,10 @@ ALL_DESIGNS: list[Design] = ["single_vision", "progressive", "bifocal"]
 class TiltParams(CompensationParams):
     """``[stages.tilt]``."""
 
-    apply_to: list[Design] = Field(default_factory=lambda: list(ALL_DESIGNS))
-    """The designs whose surfacing power is compensated for tilt."""
+    pantoscopic_apply_to: list[Design] = Field(default_factory=lambda: list(ALL_DESIGNS))
+    """The designs whose surfacing power is compensated for pantoscopic tilt."""
+    face_form_apply_to: list[Design] = Field(default_factory=lambda: list(ALL_DESIGNS))
+    """The designs whose surfacing power is compensated for face form."""
 
 
 def _missing_fit(view, params: TiltParams, pantoscopic, face_form):
@@ -71,22 +74,36 @@ def run(view, params: TiltParams):
                                   "surfacing power is not compensated for tilt.")
         yield from _missing_fit(view, params, pantoscopic, face_form)
         return
-    if design not in params.apply_to:
+    left_out = [(name, key, value) for name, key, value, designs in (
+        ("pantoscopic tilt", "pantoscopic_apply_to", pantoscopic, params.pantoscopic_apply_to),
+        ("face form", "face_form_apply_to", face_form, params.face_form_apply_to)) if design not in designs]
+    if len(left_out) == 2:
         yield not_applied(
             "tilt",
-            f"The lab's tilt policy does not compensate {design.replace('_', '-')} lenses (apply_to: "
-            f"{', '.join(params.apply_to) or 'none'}), so the surfacing power is not changed for the tilt "
-            "of the frame.",
-            values={"design": design, "apply_to": list(params.apply_to)},
+            f"The lab's tilt policy compensates {design.replace('_', '-')} lenses neither for pantoscopic tilt "
+            f"(pantoscopic_apply_to: {', '.join(params.pantoscopic_apply_to) or 'none'}) nor for face form "
+            f"(face_form_apply_to: {', '.join(params.face_form_apply_to) or 'none'}), so the surfacing power is "
+            "not changed for the tilt of the frame.",
+            values={"design": design, "pantoscopic_apply_to": list(params.pantoscopic_apply_to),
+                    "face_form_apply_to": list(params.face_form_apply_to)},
         )
         return
     yield from _missing_fit(view, params, pantoscopic, face_form)
     assumptions = [f"{name} 0° (not given)" for name, value in
                    (("pantoscopic tilt", pantoscopic), ("face form", face_form)) if value is None]
-    pantoscopic, face_form = pantoscopic or 0.0, face_form or 0.0
+    for name, key, value in left_out:
+        if value:
+            assumptions.append(f"{name} {value:.1f}° not compensated for {design.replace('_', '-')} lenses "
+                               f"(the lab's {key})")
+    pantoscopic = 0.0 if "pantoscopic_apply_to" in (key for _, key, _ in left_out) else pantoscopic or 0.0
+    face_form = 0.0 if "face_form_apply_to" in (key for _, key, _ in left_out) else face_form or 0.0
     if pantoscopic == 0.0 and face_form == 0.0:
-        yield not_applied("tilt", "The pantoscopic tilt and face form are 0°: the lens is not tilted and needs no "
-                                  "compensation.", values={"pantoscopic_deg": 0.0, "face_form_deg": 0.0})
+        reason = ("The pantoscopic tilt and face form are 0°: the lens is not tilted and needs no compensation."
+                  if not left_out else
+                  f"The tilt left to compensate is 0° ({'; '.join(assumptions)}), so the surfacing power is not "
+                  "changed for the tilt of the frame.")
+        yield not_applied("tilt", reason, values={"pantoscopic_deg": 0.0, "face_form_deg": 0.0,
+                                                  "assumptions": assumptions})
         return
     index, index_from = _index(view)
     form = view.settings.cylinder_form

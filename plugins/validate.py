@@ -5,12 +5,18 @@ stage changes nothing.
 """
 from __future__ import annotations
 
-from typing import Annotated
+from datetime import datetime, timezone
+from typing import Annotated, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
 from lenslane import Flag, Stage, hookimpl
-from lenslane.plugins.optics.outline import outline_extent
+from lenslane.plugins.optics.outline import (
+    decentration as inward_decentration, optical_centre, outline_extent, vertical_extent_at,
+)
+from lenslane.plugins.optics.power import is_on_step
+
+Level = Literal["warning", "review"]
 
 
 class ValidateParams(BaseModel):
@@ -28,17 +34,25 @@ class ValidateParams(BaseModel):
     """Below this, a bifocal segment has no room: review."""
     outline_box_tolerance_mm: Annotated[float, Field(gt=0)] = 1.0
     """The outline's box may differ from the stated A, B and ED by this much."""
+    prescription_step_d: Annotated[float, Field(ge=0.01, le=0.25)] = 0.25
+    """Sphere, cylinder and add are written in steps of this (D); 0.125 (written 0.12) where labs allow eighths."""
+    off_step_level: Level = "review"
+    """A prescription value off the step: a typing slip or an unusual prescription, for a person to confirm."""
+    add_on_single_vision_level: Level = "review"
+    """An add on a single-vision order (a reading lens meant? a multifocal?), for a person to ask."""
+    index_tolerance: Annotated[float, Field(ge=0, le=0.2)] = 0.01
+    """lens.index may differ from the material's index by this much (1.59 written for 1.586)."""
 
 
 def _fit_checks(view, params: ValidateParams):
     order = view.order
     frame = order.frame
-    half_frame_pd = (frame.box_width_mm + frame.bridge_mm) / 2.0
     pds = {}
     for eye in view.eyes:
         fit = getattr(order.fit, eye)
         pds[eye] = fit.pd_mm
-        decentration = half_frame_pd - fit.pd_mm
+        decentration = inward_decentration(frame.box_width_mm, frame.bridge_mm, frame.box_height_mm, fit.pd_mm).inward_mm
+        half_frame_pd = decentration + fit.pd_mm
         if decentration > params.max_decentration_mm:
             yield Flag(
                 "decentration-large", "warning",
@@ -54,24 +68,23 @@ def _fit_checks(view, params: ValidateParams):
                 f"{half_frame_pd:.1f} mm: confirm the PD or the frame.",
                 eye, {"decentration_mm": decentration, "pd_mm": fit.pd_mm, "frame_pd_mm": 2 * half_frame_pd},
             )
-        height = fit.height_mm
-        if height is None:
+        heights = [(name, value) for name, value in (("fitting height", fit.height_mm),
+                                                     ("segment height", fit.segment_height_mm)) if value is not None]
+        outside = [flag for name, value in heights if (flag := _outside_lens(view, eye, name, value)) is not None]
+        yield from outside
+        if outside:
             continue
-        if not 0.0 < height < frame.box_height_mm:
-            yield Flag(
-                "fitting-height-outside-box", "review",
-                f"The fitting height {height:.1f} mm is outside the box height of {frame.box_height_mm:.1f} mm: "
-                "the order cannot be made as written; ask the practice for the height.",
-                eye, {"height_mm": height, "box_height_mm": frame.box_height_mm},
-            )
-            continue
+        # The lowest point of the near part: the segment top for a bifocal, the fitting cross for a progressive.
+        design = order.lens.design
+        height = fit.segment_height_mm if design == "bifocal" else fit.height_mm
         minimum = {"progressive": params.min_fitting_height_progressive_mm,
-                   "bifocal": params.min_fitting_height_bifocal_mm}.get(order.lens.design)
-        if minimum is not None and height < minimum:
+                   "bifocal": params.min_fitting_height_bifocal_mm}.get(design)
+        if height is not None and minimum is not None and height < minimum:
+            point = "segment top" if design == "bifocal" else "fitting point"
             yield Flag(
                 "fitting-height-low", "review",
-                f"A {order.lens.design} lens needs at least {minimum:.1f} mm below the fitting point; "
-                f"this fitting height is {height:.1f} mm: choose a deeper frame or another design.",
+                f"A {design} lens needs at least {minimum:.1f} mm below the {point}; "
+                f"this height is {height:.1f} mm: choose a deeper frame or another design.",
                 eye, {"height_mm": height, "minimum_mm": minimum},
             )
     if len(pds) == 2 and abs(pds["right"] - pds["left"]) > params.pd_asymmetry_mm:
@@ -80,6 +93,82 @@ def _fit_checks(view, params: ValidateParams):
             f"The monocular PDs differ by {abs(pds['right'] - pds['left']):.1f} mm "
             f"(right {pds['right']:.1f}, left {pds['left']:.1f}): confirm they were measured from the bridge centre.",
             None, {"right_pd_mm": pds["right"], "left_pd_mm": pds["left"]},
+        )
+
+
+def _outside_lens(view, eye: str, name: str, height: float) -> Flag | None:
+    """A review flag when a height above the box bottom falls outside the lens at the pupil's position."""
+    frame, fit = view.order.frame, getattr(view.order.fit, eye)
+    low, high = 0.0, frame.box_height_mm
+    where = f"the box height of {frame.box_height_mm:.1f} mm"
+    if frame.outline_mm is not None:
+        # On the outline, along the vertical through the pupil (the right lens's view; the left is its mirror).
+        offset = inward_decentration(frame.box_width_mm, frame.bridge_mm, frame.box_height_mm, fit.pd_mm)
+        extent = vertical_extent_at(frame.outline_mm, optical_centre("right", offset)[0])
+        low, high = (0.0, 0.0) if extent is None else (extent[0] + frame.box_height_mm / 2.0,
+                                                         extent[1] + frame.box_height_mm / 2.0)
+        where = f"the lens outline, {low:.1f}–{high:.1f} mm above the box bottom below the pupil"
+    if low < height < high:
+        return None
+    code = "segment-height-outside-lens" if name == "segment height" else "fitting-height-outside-lens"
+    return Flag(
+        code, "review",
+        f"The {name} {height:.1f} mm is outside {where}: the order cannot be made as written; ask the practice "
+        f"for the {name}.",
+        eye, {"height_mm": height, "lens_bottom_mm": low, "lens_top_mm": high, "box_height_mm": frame.box_height_mm},
+    )
+
+
+def _prescription_checks(view, params: ValidateParams):
+    """Values off the prescription step, an add on a single-vision order, an index against the material."""
+    order = view.order
+    step = 0.125 if abs(params.prescription_step_d - 0.12) < 1e-9 else params.prescription_step_d
+    for eye in view.eyes:
+        eye_rx = getattr(order.rx, eye)
+        off = {name: value for name, value in (("sphere", eye_rx.sphere), ("cylinder", eye_rx.cylinder),
+                                               ("add", eye_rx.add)) if value is not None and not is_on_step(value, step)}
+        if off:
+            written = ", ".join(f"{name} {value:+.2f}" for name, value in off.items())
+            yield Flag(
+                "rx-off-step", params.off_step_level,
+                f"The prescription's {written} D is not on the {params.prescription_step_d:.2f} D step prescriptions "
+                "are written in: confirm the value with the practice (a slip of the pen, or an intended value).",
+                eye, {**off, "step_d": params.prescription_step_d},
+            )
+        if order.lens.design == "single_vision" and eye_rx.add is not None:
+            yield Flag(
+                "add-on-single-vision", params.add_on_single_vision_level,
+                f"A single-vision lens is ordered with an add of {eye_rx.add:+.2f} D, which only a multifocal uses: "
+                "the lens is made for the distance prescription without it. Ask the practice whether reading "
+                "lenses (sphere plus add) or a multifocal design was meant.",
+                eye, {"add": eye_rx.add, "design": order.lens.design},
+            )
+    index = order.lens.index
+    material = view.settings.materials[order.lens.material]
+    if index is not None and abs(index - material.index) > params.index_tolerance:
+        yield Flag(
+            "index-contradicts-material", "review",
+            f"The order gives index {index:.3f} for {order.lens.material}, whose index is {material.index:.3f} "
+            f"(tolerance {params.index_tolerance:.3f}): the lens would be shaped at one index and weighed at the "
+            "other material's density. Ask the practice which material is meant.",
+            None, {"index": index, "material": order.lens.material, "material_index": material.index,
+                   "tolerance": params.index_tolerance},
+        )
+
+
+def _wearer_checks(view):
+    """A birth year after the order's year (the year it was placed, or this year when it gives no date)."""
+    order = view.order
+    birth_year = order.wearer.birth_year if order.wearer else None
+    if birth_year is None:
+        return
+    year = int(order.placed_at[:4]) if order.placed_at else datetime.now(timezone.utc).year
+    if birth_year > year:
+        yield Flag(
+            "birth-year-after-order", "review",
+            f"The wearer's birth year {birth_year} is after the order's year {year}: the age-based checks cannot be "
+            "made; ask the practice for the birth year.",
+            None, {"birth_year": birth_year, "order_year": year},
         )
 
 
@@ -114,6 +203,8 @@ def _frame_checks(view, params: ValidateParams):
 
 
 def run(view, params: ValidateParams):
+    yield from _prescription_checks(view, params)
+    yield from _wearer_checks(view)
     yield from _fit_checks(view, params)
     yield from _frame_checks(view, params)
 
@@ -121,4 +212,4 @@ def run(view, params: ValidateParams):
 @hookimpl
 def lenslane_stages():
     return [Stage(name="validate", run=run, params=ValidateParams,
-                  description="plausibility of PDs, fitting heights and frame data")]
+                  description="plausibility of the prescription, the wearer, PDs, fitting heights and frame data")]

@@ -64,8 +64,11 @@ def test_watch_once_drains_the_samples(tmp_path):
     assert sorted(os.listdir(lab / "archive")) == sorted(p.name for p in GOOD_SAMPLES)
     for sample in GOOD_SAMPLES:
         order = json.loads(sample.read_text())
-        published = lab / "outbox" / f"{order['order_id']}.json"
-        result = json.loads(published.read_text())
+        published = [lab / folder / f"{order['order_id']}.json" for folder in ("outbox", "review")]
+        assert [path.exists() for path in published].count(True) == 1
+        result = json.loads(next(path for path in published if path.exists()).read_text())
+        # A result that needs a person waits in review/; outbox/ holds only what may be made without one.
+        assert (result["status"] == "review") == published[1].exists()
         LensOrderResult.model_validate(result)  # the contract's result shape
         assert result["order"] == order
         assert set(result["lenses"]) == {e for e in ("right", "left") if e in order["rx"]}

@@ -29,13 +29,13 @@ from typing import Any, Iterable, Iterator, NamedTuple
 
 import orjson
 
+from lenslane.audit.results import ResultFiles, check as check_results
 from lenslane.lab.files import fsync_dir, write_all
 
 AUDIT_NAME = "audit.jsonl"
 GENESIS = "0" * 64
 TORN_EVENT = "torn-line"
 ROTATED_RE = re.compile(r"^audit-(\d{1,20})\.jsonl$")
-RESULT_RE = re.compile(r"^outbox/[A-Za-z0-9_-][A-Za-z0-9._-]*\.json$")
 #: The chain's own fields; an event may not carry them.
 CHAIN_FIELDS = frozenset({"seq", "ts", "prev", "hash"})
 #: How much of the first record's timestamp names the rotation period.
@@ -403,6 +403,7 @@ class VerifyReport:
     rejected: int = 0
     results_matching: int = 0
     results_gone: int = 0
+    other_results_matching: dict[str, int] = field(default_factory=dict)  # review/, rejected/, archive/
     breaks: list[Finding] = field(default_factory=list)
     result_problems: list[Finding] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)  # tolerated crash artefacts
@@ -410,6 +411,12 @@ class VerifyReport:
     @property
     def ok(self) -> bool:
         return not self.breaks and not self.result_problems
+
+    def _others(self) -> str:
+        """Results the log accounts for outside outbox/: waiting for review, refused, superseded."""
+        named = {"review": "in review/", "rejected": "refused in rejected/", "archive": "superseded in archive/"}
+        parts = [f"{count} {named.get(folder, folder)}" for folder, count in sorted(self.other_results_matching.items())]
+        return f"; also matching: {', '.join(parts)}" if parts else ""
 
     def summary(self) -> str:
         """One line: intact, or the first thing broken."""
@@ -420,7 +427,7 @@ class VerifyReport:
             files = f"{len(self.files)} file" + ("s" if len(self.files) != 1 else "")
             return (f"audit log intact: {self.records} records (seq 1–{self.last_seq}) in {files}; "
                     f"{self.published} published, {self.rejected} rejected; {self.results_matching} outbox "
-                    f"results match the log, {self.results_gone} no longer in the outbox{artefacts}")
+                    f"results match the log, {self.results_gone} no longer in the outbox{self._others()}{artefacts}")
         first = (self.breaks or self.result_problems)[0]
         total = len(self.breaks) + len(self.result_problems)
         more = f" (and {total - 1} more problem(s))" if total > 1 else ""
@@ -583,7 +590,7 @@ def verify(lab_root: Path) -> VerifyReport:
     root = Path(lab_root)
     report = VerifyReport()
     walker = _ChainWalker(report)
-    published: dict[str, tuple[str, int, str]] = {}  # result path → (sha256, seq, where)
+    results = ResultFiles()  # which result files the log accounts for (lenslane.audit.results)
     files = audit_files(root)
     report.files = [p.name for p in files]
     current_file, first_of_file = None, True
@@ -593,66 +600,27 @@ def verify(lab_root: Path) -> VerifyReport:
         walker.add(line, first_of_file and line.record is not None)
         if line.record is not None:
             first_of_file = False
-        record = line.record
-        if record is not None and record.get("event") == "published":
-            path = str(record.get("result") or f"outbox/{record.get('order_id')}.json")
-            if RESULT_RE.match(path):
-                published[path] = (str(record.get("result_sha256")), record["seq"], line.where)
-            else:
-                walker.report.breaks.append(Finding(line.where, record["seq"], "damaged",
-                                                    f"names a result {path!r} outside outbox/"))
+            for problem in results.add(line.record, line.where):
+                walker.report.breaks.append(Finding(line.where, line.record["seq"], "damaged", problem))
     walker.finish(files[-1].name if files else None)
-    _check_outbox(root, published, report)
+    _check_results(root, results, report)
     return report
 
 
-def _check_outbox(root: Path, published: dict[str, tuple[str, int, str]], report: VerifyReport) -> None:
-    for path, (sha256, seq, where) in sorted(published.items()):
-        try:
-            data = (root / path).read_bytes()
-        except FileNotFoundError:
-            report.results_gone += 1
-            continue
-        actual = hashlib.sha256(data).hexdigest()
-        if actual == sha256:
-            report.results_matching += 1
-        else:
-            report.result_problems.append(Finding(
-                path, seq, "result",
-                f"the result was changed after it was published: its sha256 is {actual}, the log recorded "
-                f"{sha256} ({where})"))
-    try:
-        names = sorted(os.listdir(root / "outbox"))
-    except FileNotFoundError:
-        return
-    in_flight = None
-    for name in names:
-        if not name.endswith(".json") or name.startswith(".") or f"outbox/{name}" in published:
-            continue
-        in_flight = _orders_in_work(root) if in_flight is None else in_flight
-        if name.removesuffix(".json") in in_flight:
-            # Published, then the engine stopped before its records were on disk: it redoes the order at start.
-            report.notes.append(f"outbox/{name}: its order is still in work/ (claimed, not finished); "
-                                "the engine redoes it and records it when it next starts")
-            continue
+def _check_results(root: Path, results: ResultFiles, report: VerifyReport) -> None:
+    checked = check_results(root, results)
+    report.results_matching = checked.matching.get("outbox", 0)
+    report.other_results_matching = {k: v for k, v in checked.matching.items() if k != "outbox"}
+    report.results_gone = checked.gone
+    for path, placed, actual in checked.changed:
         report.result_problems.append(Finding(
-            f"outbox/{name}", None, "result",
+            path, placed.seq, "result",
+            f"the result was changed after it was published: its sha256 is {actual}, the log recorded "
+            f"{placed.sha256} ({placed.where})"))
+    for path, why in checked.in_flight:
+        report.notes.append(f"{path}: {why}")
+    for path in checked.unaccounted:
+        report.result_problems.append(Finding(
+            path, None, "result",
             "no published record in the audit log accounts for this result: records were removed from the end "
             "of the log, or the file was not written by the engine"))
-
-
-def _orders_in_work(root: Path) -> set[str]:
-    """The order ids of the inputs claimed but not yet archived."""
-    ids = set()
-    try:
-        names = os.listdir(root / "work")
-    except FileNotFoundError:
-        return ids
-    for name in names:
-        try:
-            order_id = json.loads((root / "work" / name).read_bytes()).get("order_id")
-        except (OSError, ValueError, AttributeError):
-            continue
-        if isinstance(order_id, str):
-            ids.add(order_id)
-    return ids

@@ -31,6 +31,7 @@ BUILTIN_PLUGINS: tuple[tuple[str, str], ...] = (
     ("prism", "lenslane.plugins.prism"),
     ("vertex", "lenslane.plugins.vertex"),
     ("tilt", "lenslane.plugins.tilt"),
+    ("generator", "lenslane.plugins.generator"),
     ("geometry", "lenslane.plugins.geometry"),
     ("safety", "lenslane.plugins.safety"),
 )

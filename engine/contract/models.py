@@ -23,6 +23,12 @@ ORDER_FORMAT = "lens-order/1"
 RESULT_FORMAT = "lens-order-result/1"
 
 
+#: Prism components per eye and their sum (Δ): more is no spectacle lens a lab grinds (common practice: a
+#: prescription writes one or two components, a horizontal and a vertical; large prism is split between the eyes).
+MAX_PRISM_COMPONENTS = 4
+MAX_TOTAL_PRISM_DELTA = 20.0
+
+
 class _Strict(BaseModel):
     model_config = ConfigDict(strict=True, extra="forbid", frozen=True, allow_inf_nan=False)
 
@@ -46,12 +52,24 @@ class EyeRx(_Strict):
     cylinder: Annotated[float, Field(ge=-12, le=12, description="D, either sign")] = 0.0
     axis: Annotated[int, Field(ge=0, le=180, description="whole degrees; 0 means 180")] | None = None
     add: Annotated[float, Field(ge=0.5, le=4.0, description="D")] | None = None
-    prism: list[PrismComponent] | None = None
+    prism: Annotated[
+        list[PrismComponent],
+        Field(max_length=MAX_PRISM_COMPONENTS,
+              description=f"at most {MAX_PRISM_COMPONENTS} components, together at most {MAX_TOTAL_PRISM_DELTA:g}Δ"),
+    ] | None = None
 
     @model_validator(mode="after")
     def _axis_with_cylinder(self) -> "EyeRx":
         if self.cylinder != 0 and self.axis is None:
             raise ValueError("axis: required when cylinder is not zero")
+        return self
+
+    @model_validator(mode="after")
+    def _prism_within_a_lens(self) -> "EyeRx":
+        total = sum(component.amount for component in self.prism or ())
+        if total > MAX_TOTAL_PRISM_DELTA:
+            raise ValueError(f"prism: the components add up to {total:g}Δ, more than the {MAX_TOTAL_PRISM_DELTA:g}Δ "
+                             "a ground spectacle lens carries")
         return self
 
 
@@ -102,7 +120,11 @@ class Frame(_Strict):
 
 class FitEye(_Strict):
     pd_mm: Annotated[float, Field(ge=20, le=42, description="monocular distance PD, mm")]
-    height_mm: Annotated[float, Field(ge=0, le=100, description="above the box bottom, mm")] | None = None
+    height_mm: Annotated[float, Field(
+        ge=0, le=100, description="above the box bottom, mm: the optical centre (single vision), the fitting cross "
+                                  "(progressive), the distance optical centre at the pupil (bifocal)")] | None = None
+    segment_height_mm: Annotated[float, Field(
+        ge=5, le=40, description="bifocal: the segment top above the box bottom, mm")] | None = None
 
 
 class Fit(_Strict):
@@ -154,8 +176,12 @@ class LensOrder(_Strict):
                 continue
             if self.lens.design in ("progressive", "bifocal") and eye_rx.add is None:
                 problems.append(f"rx.{eye}.add: required for a {self.lens.design} lens")
-            if getattr(self.fit, eye) is None:
+            fit = getattr(self.fit, eye)
+            if fit is None:
                 problems.append(f"fit.{eye}.pd_mm: required because rx.{eye} is ordered")
+            elif self.lens.design == "bifocal" and fit.segment_height_mm is None:
+                problems.append(f"fit.{eye}.segment_height_mm: required for a bifocal lens (the segment top "
+                                "above the box bottom)")
         if problems:
             raise ValueError("; ".join(problems))
         return self
@@ -229,6 +255,15 @@ class EngineInfo(_Out):
     stages: list[str]
 
 
+class Approval(_Out):
+    """Who let a result that needed a person go to production (``lenslane decide … approve``)."""
+
+    by: str
+    at: str
+    note: str
+    flags_acknowledged: list[str]
+
+
 class LensOrderResult(_Out):
     """``lens-order-result/1``: what the engine publishes in ``outbox/<order_id>.json``."""
 
@@ -243,6 +278,9 @@ class LensOrderResult(_Out):
     changes: list[ChangeRecord]
     engine: EngineInfo
     caution: str
+    approved: Approval | None = None
+    revision: int | None = Field(default=None, ge=2, description="set on a replaced order's next version")
+    supersedes: str | None = Field(default=None, description="sha256 of the result this revision replaces")
 
 
 CAUTION = (

@@ -65,11 +65,15 @@ class Arrivals:
 
     def __init__(self, inbox: str, watch: WatchSettings, examine: Callable[[bytes], Examined]):
         self.inbox = inbox
+        self.examine = examine
+        self._watching: dict[str, _Seen] = {}
+        self.use(watch)
+
+    def use(self, watch: WatchSettings) -> None:
+        """Take the ``[watch]`` settings (at start, and on a reload)."""
         self.quiet_seconds = watch.quiet_seconds
         self.young_seconds = watch.young_seconds
         self.max_order_bytes = watch.max_order_bytes
-        self.examine = examine
-        self._watching: dict[str, _Seen] = {}
 
     def forget(self, name: str) -> None:
         self._watching.pop(name, None)

@@ -143,7 +143,7 @@ class GroupCommit:
             except OSError as exc:
                 raise OutputBlocked("publish", target, exc, first) from exc
             batch.unpublished.pop(0)
-            batch.folders.add(self.outbox)
+            batch.folders.add(os.path.dirname(target))  # outbox/, or review/
             self._reached("published")
         while batch.folders:
             folder = next(iter(batch.folders))

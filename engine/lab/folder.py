@@ -35,15 +35,17 @@ from lenslane.lab.errors import Interrupted, OrderTimeLimit, OutputBlocked, Stag
 from lenslane.lab.examine import Examined, examine, examine_claimed
 from lenslane.lab.files import claim_key, printable
 from lenslane.lab.history import History
-from lenslane.lab.outcomes import ERRORS_SUFFIX, HELD_SUFFIX, Claimed, Outcomes, Processed
+from lenslane.lab.outcomes import ERRORS_SUFFIX, HELD_SUFFIX, Claimed, Outcomes, Processed, order_events, result_bytes
 from lenslane.lab.recovery import recover
 
-FOLDERS = ("inbox", "outbox", "rejected", "archive", "work", "held")
+#: review/ holds results that wait for a person and decisions/ the requests of ``lenslane decide`` (lenslane.decide).
+FOLDERS = ("inbox", "outbox", "review", "rejected", "archive", "work", "held", "decisions")
 #: The steps of an order's way that :class:`Lab` reports to its ``on_step`` callback, as each completes.
 STEPS = ("claimed", "published", "audited", "archived")
 
 __all__ = ["ERRORS_SUFFIX", "FOLDERS", "HELD_SUFFIX", "STEPS", "Interrupted", "Lab", "OrderTimeLimit",
-           "OutputBlocked", "Processed", "StageWontStop", "Wait", "init_lab", "is_order_name"]
+           "OutputBlocked", "Processed", "StageWontStop", "Wait", "init_lab", "is_order_name", "note_published",
+           "order_events", "result_bytes"]
 
 
 def init_lab(lab: Path) -> list[str]:
@@ -66,6 +68,11 @@ def init_lab(lab: Path) -> list[str]:
     return created
 
 
+def note_published(lab: "Lab", order_id: str, content_sha256: str | None) -> None:
+    """An order id published with this content by something other than the inbox (a person's replace)."""
+    lab.history.note_published(order_id, content_sha256)
+
+
 class Lab:
     """A lab folder with its engine: looks at inbox entries and takes orders through to the end, one at a time.
 
@@ -82,9 +89,6 @@ class Lab:
     def __init__(self, root: Path, host: Host, *, time_limit: Callable[[], ContextManager[Any]] = contextlib.nullcontext,
                  on_step: Callable[[str], None] | None = None):
         self.root = Path(root)
-        self.host = host
-        self.config: LabConfig = host.config
-        self.pipeline = Pipeline(host)
         for name in FOLDERS:
             setattr(self, name, self.root / name)
             (self.root / name).mkdir(exist_ok=True)
@@ -95,12 +99,33 @@ class Lab:
         self.stage_seconds: dict[str, float] = {}  # time spent in each stage, summed over the run
         self.history = History(self.root)
         self.aside = Aside()  # entries that could not be taken, left where they are
-        self.arrivals = Arrivals(os.path.join(root_text, "inbox"), self.config.watch, self.examine)
+        self.arrivals = Arrivals(os.path.join(root_text, "inbox"), host.config.watch, self.examine)
         self.claims = Claims(os.path.join(root_text, "inbox"), self._work)
         self.commits = GroupCommit(root_text, self.history, self._open_audit, self._on_step)
-        engine_fields = {"engine_version": __version__, "config_sha256": host.config_sha256,
-                         "stages": [link.stage.name for link in host.chain]}
-        self.outcomes = Outcomes(root_text, self.history, self.commits, engine_fields, self._on_step)
+        self.outcomes = Outcomes(root_text, self.history, self.commits, {}, self._on_step)
+        self.use_host(host)
+
+    def use_host(self, host: Host) -> None:
+        """Work with ``host`` (its config and chain) from the next order on: at start, and on a reload."""
+        self.host = host
+        self.config: LabConfig = host.config
+        self.pipeline = Pipeline(host)
+        self.outcomes.engine_fields = {"engine_version": __version__, "config_sha256": host.config_sha256,
+                                       "stages": [link.stage.name for link in host.chain]}
+        self.arrivals.use(host.config.watch)
+        if self.commits.audit is not None:
+            self.commits.audit.rotate_bytes = host.config.audit.rotate_bytes
+            self.commits.audit.rotate_period = host.config.audit.rotate_period
+
+    @property
+    def engine_fields(self) -> dict[str, Any]:
+        """What every final record says of the engine: its version, the config's digest, the chain."""
+        return self.outcomes.engine_fields
+
+    @property
+    def audit(self) -> AuditLog | None:
+        """The audit log, opened by :meth:`recover`."""
+        return self.commits.audit
 
     def _open_audit(self) -> AuditLog:
         audit = self.config.audit

@@ -86,7 +86,6 @@ class Outcomes:
     def __init__(self, root: str, history: History, commit: GroupCommit, engine_fields: dict[str, Any],
                  reached: Callable[[str], None]):
         self.root = root
-        self.outbox = os.path.join(root, "outbox")
         self.history = history
         self.commit = commit
         self.engine_fields = engine_fields
@@ -99,10 +98,12 @@ class Outcomes:
         if not ORDER_ID_RE.match(order_id):  # validated by the contract already; never a path
             raise ValueError(f"order id {order_id!r} cannot name a file")
         data = result_bytes(result)
-        target = f"{self.outbox}/{order_id}.json"
+        # A result that needs a person waits in review/, never in outbox/ (lenslane decide approves or refuses it).
+        folder = "review" if result["status"] == "review" else "outbox"
+        target = f"{self.root}/{folder}/{order_id}.json"
         if os.path.lexists(target) and not holds(target, data):
             return self.hold(claimed, received, examined, [{"field": "order_id", "message": (
-                f"outbox/{order_id}.json is already there, and not as this order makes it (a result the audit log "
+                f"{folder}/{order_id}.json is already there, and not as this order makes it (a result the audit log "
                 "does not know, or one made before a crash with other settings); it is kept as it is, and this "
                 "copy is held for a person to decide — nothing was published")}])
         try:
@@ -111,7 +112,7 @@ class Outcomes:
             raise OutputBlocked("publish", target, exc, claimed.work_name) from exc
         self.history.note_published(order_id, examined.content_sha256)
         return self.settle(claimed, received, "published", order_id, {
-            "status": result["status"], "result": f"outbox/{order_id}.json",
+            "status": result["status"], "result": f"{folder}/{order_id}.json",
             "result_sha256": hashlib.sha256(data).hexdigest(), "lenses": result["lenses"],
             "content_sha256": examined.content_sha256}, events=order_events(result), status=result["status"])
 

@@ -17,7 +17,7 @@ from lenslane.lab.files import claim_key, remove_temp_leftovers
 from lenslane.lab.history import History
 
 #: The folders where output files are written under temp names.
-OUTPUT_FOLDERS = ("outbox", "rejected", "held", "archive")
+OUTPUT_FOLDERS = ("outbox", "review", "rejected", "held", "archive")
 
 
 def recover(root: str, claims: Claims, history: History) -> list[str]:

@@ -19,7 +19,7 @@ from lenslane.lab.history import History
 from lenslane.lab.outcomes import ERRORS_SUFFIX, HELD_SUFFIX
 
 #: The folders counted, in the order shown; a folder a lab does not have is left out.
-SHOWN = ("inbox", "work", "outbox", "review", "held", "rejected", "archive")
+SHOWN = ("inbox", "work", "outbox", "review", "held", "rejected", "archive", "decisions")
 _REPORTS = (ERRORS_SUFFIX, HELD_SUFFIX)
 
 

@@ -201,11 +201,16 @@ class _Processing:
         return Path(name).stem == order_id
 
 
-def _processings(lab_root: Path, order_id: str) -> list[_Processing]:
+def _processings(lab_root: Path, order_id: str, decisions: list[dict[str, Any]] | None = None) -> list[_Processing]:
+    """Each pass of the order through the engine; its people's decisions go to ``decisions``."""
     found: list[_Processing] = []
     current: _Processing | None = None
     for record in iter_records(lab_root):
         event = record.get("event")
+        if event == "decided":
+            if record.get("order_id") == order_id and decisions is not None:
+                decisions.append(record)
+            continue
         if event == "received":
             current = _Processing(record, record.get("order_id"))
             if current.matches(order_id):
@@ -307,6 +312,8 @@ def _outcome(outcome: dict[str, Any]) -> dict[str, Any]:
             "input": outcome.get("input")}
     if event == "published":
         told.update(result=outcome.get("result"), result_sha256=outcome.get("result_sha256"))
+    if outcome.get("revision"):
+        told.update(revision=outcome["revision"], supersedes=outcome.get("supersedes"))
     reasons = outcome.get("reasons") or ([{"field": "(order)", "message": outcome["reason"]}]
                                          if outcome.get("reason") else [])
     if reasons:
@@ -314,12 +321,32 @@ def _outcome(outcome: dict[str, Any]) -> dict[str, Any]:
     return told
 
 
-def _check_result_files(lab_root: Path, stories: list[dict[str, Any]]) -> None:
-    """Say, for the last published result of each path, whether the file is still what was published."""
+def _decision_item(record: dict[str, Any]) -> dict[str, Any]:
+    item = {key: record.get(key) for key in ("seq", "action", "by", "note", "decided_at", "applies_to")}
+    item["recorded_at"] = record.get("ts")
+    for key in ("result", "result_sha256", "status", "flags_acknowledged", "reasons", "revision", "supersedes",
+                "outcome"):
+        if record.get(key) is not None:
+            item[key] = record[key]
+    item["moves"] = record.get("moves") or []
+    return item
+
+
+def _check_result_files(lab_root: Path, stories: list[dict[str, Any]],
+                        decisions: list[dict[str, Any]] | None = None) -> None:
+    """Say, for the last result placed at each path, whether the file is still what was placed there."""
     latest: dict[str, dict[str, Any]] = {}
-    for story in stories:
-        outcome = story["outcome"]
-        if outcome["event"] == "published" and outcome.get("result"):
+    placed = [(s["processings_seq"], s["outcome"]) for s in stories] + [(d["seq"], d) for d in decisions or []]
+    inputs = {story["outcome"].get("input"): story["outcome"] for story in stories if story["outcome"].get("input")}
+    for _, outcome in sorted(placed, key=lambda item: item[0] or 0):
+        for move in outcome.get("moves") or ():
+            if move.get("from") in inputs and move.get("to"):  # a held input, archived or refused by a decision
+                inputs[move["from"]]["input"] = move["to"]
+            if move.get("from") in latest:
+                moved = latest.pop(move["from"])
+                to = f"moved to {move['to']}" if move.get("to") else "removed"
+                moved["result_now"] = f"{to} by the {outcome['action']} decision (seq {outcome['seq']})"
+        if outcome.get("event", "published") == "published" and outcome.get("result"):
             if outcome["result"] in latest:
                 latest[outcome["result"]]["result_now"] = "replaced by a later processing"
             latest[outcome["result"]] = outcome
@@ -335,10 +362,16 @@ def _check_result_files(lab_root: Path, stories: list[dict[str, Any]]) -> None:
 
 def order_story(lab_root: Path, order_id: str) -> dict[str, Any]:
     """Everything the audit log says about one order, as data (``found`` false when it says nothing)."""
-    stories = [_story_of(p) for p in _processings(Path(lab_root), order_id)]
-    _check_result_files(Path(lab_root), stories)
-    return {"order_id": order_id, "lab": str(lab_root), "found": bool(stories),
-            "processings": stories, "caution": CAUTION}
+    records: list[dict[str, Any]] = []
+    stories = [_story_of(p) for p in _processings(Path(lab_root), order_id, records)]
+    decisions = [_decision_item(record) for record in records]
+    for story in stories:
+        story["processings_seq"] = story["seq"][1] if story["seq"] else 0
+    _check_result_files(Path(lab_root), stories, decisions)
+    for story in stories:
+        del story["processings_seq"]
+    return {"order_id": order_id, "lab": str(lab_root), "found": bool(stories or decisions),
+            "processings": stories, "decisions": decisions, "caution": CAUTION}
 
 
 # --------------------------------------------------------------------------
@@ -353,9 +386,14 @@ def render(story: dict[str, Any]) -> str:
     count = len(story["processings"])
     lines = [f"Order {story['order_id']} — from the audit log of {story['lab']}",
              "Processed once." if count == 1 else f"Processed {count} times; each is told below, oldest first."]
+    decisions = list(story.get("decisions") or [])
     for number_, processing in enumerate(story["processings"], start=1):
+        while decisions and processing["seq"] and decisions[0]["seq"] < processing["seq"][0]:
+            lines += [""] + _render_decision(decisions.pop(0))
         lines.append("")
         lines += _render_processing(processing, number_, count)
+    for decision in decisions:
+        lines += [""] + _render_decision(decision)
     lines += ["", story["caution"]]
     return "\n".join(lines)
 
@@ -420,10 +458,37 @@ def _render_flags(flags: list[dict[str, Any]]) -> list[str]:
     return lines
 
 
+def _render_decision(decision: dict[str, Any]) -> list[str]:
+    """A person's decision, as the audit chain holds it."""
+    applies = decision.get("applies_to") or {}
+    lines = [f"== Decision: {decision['action']} by {decision['by']}, {decision['decided_at']} (audit seq "
+             f"{decision['seq']}, recorded {decision['recorded_at']}) ==",
+             f"Why:      {decision['note']}",
+             f"On:       {applies.get('path')}, sha256 {applies.get('sha256')}"]
+    if decision.get("flags_acknowledged"):
+        lines.append("Flags acknowledged: " + ", ".join(decision["flags_acknowledged"]))
+    if decision.get("result"):
+        now = f"; {decision['result_now']}" if decision.get("result_now") else ""
+        lines.append(f"Result:   {decision['result']}, status {decision.get('status')}, sha256 "
+                     f"{decision['result_sha256']}{now}")
+    for reason in decision.get("reasons") or []:
+        lines.append(f"  {reason.get('field')}: {reason.get('message')}")
+    superseded = decision.get("supersedes")
+    if superseded:
+        kept = f", kept as {superseded['archived']}" if superseded.get("archived") else ""
+        lines.append(f"Replaces: {superseded['path']}, sha256 {superseded['sha256']}{kept}; the next processing is "
+                     f"revision {decision.get('revision')}")
+    elif decision["action"] == "replace" and decision.get("outcome") == "rejected":
+        lines.append("The new version was refused by the chain (see the next processing); the published result stays")
+    return lines
+
+
 def _render_outcome(outcome: dict[str, Any]) -> list[str]:
     if outcome["event"] == "published":
         now = f"; {outcome['result_now']}" if outcome.get("result_now") else ""
-        lines = [f"Outcome:  published, status {outcome['status']}, recorded {outcome['recorded_at']}",
+        revision = f", revision {outcome['revision']} (supersedes sha256 {outcome.get('supersedes')})" \
+            if outcome.get("revision") else ""
+        lines = [f"Outcome:  published, status {outcome['status']}{revision}, recorded {outcome['recorded_at']}",
                  f"Result:   {outcome['result']}, sha256 {outcome['result_sha256']}{now}"]
         return lines + ([f"Input:    now {outcome['input']}"] if outcome.get("input") else [])
     if outcome["event"] is not None:

@@ -29,6 +29,7 @@ from typing import Any, Callable
 
 from lenslane import __version__
 from lenslane.chain.host import Host
+from lenslane.decide.desk import Desk
 from lenslane.lab.errors import Interrupted, OutputBlocked
 from lenslane.lab.files import LabLocked, lock_lab, printable
 from lenslane.lab.folder import Lab, Processed, Wait
@@ -48,6 +49,20 @@ SHUTDOWN_GRACE_SECONDS = 3.0
 #: Group commit: at most this many orders share one folder fsync and one audit fsync. Only orders
 #: already due are batched, so a lone order is committed at once and latency does not grow.
 BATCH_MAX = 64
+#: A `lenslane decide` applying a decision while no engine runs holds the lab's lock for a moment
+#: (well under a second): an engine starting meanwhile waits this long for it before giving up (s).
+LOCK_WAIT_SECONDS = 3.0
+
+
+def _lock_waiting(root: Any) -> int:
+    deadline = time.monotonic() + LOCK_WAIT_SECONDS
+    while True:
+        try:
+            return lock_lab(root)
+        except LabLocked:
+            if time.monotonic() >= deadline:
+                raise
+            time.sleep(0.05)
 
 
 
@@ -73,6 +88,7 @@ class Daemon:
         self.next_scan = 0.0
         self.log: Any = None
         self.health: Any = None
+        self.desk: Desk | None = None
 
     # -- start and stop ----------------------------------------------------------
 
@@ -82,7 +98,7 @@ class Daemon:
         self.tally = Tally(self.log)
         self.health = Health(self.lab, self.log, "once" if self.once else "watch")
         try:
-            lock = lock_lab(self.lab.root)
+            lock = _lock_waiting(self.lab.root)
         except LabLocked as exc:
             self.log.error("lab locked", lab=str(self.lab.root), lock=str(exc.path), holder_pid=exc.holder,
                            message="another lenslane watch is working on this lab; refusing to start")
@@ -90,6 +106,11 @@ class Daemon:
         self.health.started(lock)
         previous = {number: signal.signal(number, self._on_stop) for number in (signal.SIGTERM, signal.SIGINT)}
         previous[signal.SIGALRM] = signal.signal(signal.SIGALRM, self.clock.on_alarm)
+        # People's decisions (SIGUSR1 from lenslane decide) and config reloads (SIGHUP): lenslane.decide.desk.
+        self.desk = Desk(self.lab, self.log, self._use_config)
+        previous[signal.SIGUSR1] = signal.signal(signal.SIGUSR1, lambda *_: self._wake(self.desk.wake))
+        if not self.once:
+            previous[signal.SIGHUP] = signal.signal(signal.SIGHUP, lambda *_: self._wake(self.desk.ask_reload))
         try:
             return self._run_locked()
         finally:
@@ -146,6 +167,19 @@ class Daemon:
         self.clock.shutdown(SHUTDOWN_GRACE_SECONDS)
         self.schedule.wake()  # SimpleQueue.put may be called from a signal handler
 
+    def _wake(self, ask: Callable[[], None]) -> None:
+        ask()
+        self.schedule.wake()  # SimpleQueue.put may be called from a signal handler
+
+    def _use_config(self, config: Any) -> None:
+        """A reloaded configuration (lenslane.decide.desk): the loop's own settings."""
+        watch = config.watch
+        self.rescan_seconds, self.young_seconds = watch.rescan_seconds, watch.young_seconds
+        self.health.retry_max_seconds = watch.retry_max_seconds
+        self.clock.limit_seconds = watch.order_time_limit_seconds
+        if self.supervisor is not None:
+            self.supervisor.use_setting(watch.observer)
+
     # -- the loop ------------------------------------------------------------------
 
     def _loop(self) -> int:
@@ -153,6 +187,10 @@ class Daemon:
         while not self.stopping:
             now = time.monotonic()
             schedule.take_hints(now)
+            if self.desk.due(now):  # between batches: decisions and config reloads (lenslane.decide.desk)
+                if self._commit() is STOPPED:
+                    break
+                self.desk.run(now)
             if self.supervisor is not None:
                 if now >= self.next_scan:
                     self._scan(now)
@@ -175,7 +213,7 @@ class Daemon:
                     break
                 schedule.wait(upcoming - now)
             else:
-                schedule.wait(min(self.next_scan, self.supervisor.next_check, upcoming) - now)
+                schedule.wait(min(self.next_scan, self.supervisor.next_check, upcoming, self.desk.next_due()) - now)
         return EXIT_OK
 
     def _look_at(self, name: str, flags: int) -> Any:

@@ -213,6 +213,12 @@ class Supervisor:
         self.rebuilds.reset()
         return "rebuilt"
 
+    def use_setting(self, setting: str) -> None:
+        """A reloaded ``watch.observer``: a changed one is rebuilt by the next check."""
+        if setting != self.setting:
+            self.setting, self.why = setting, f"watch.observer is now {setting!r}"
+            self.stop()
+
     def stop(self) -> None:
         observer, self.observer = self.observer, None
         if observer is None:

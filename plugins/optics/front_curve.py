@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Callable, Sequence
+from typing import Callable, NamedTuple, Sequence
 
 #: Distance from the back of the lens to the eye's centre of rotation, mm (about 27 mm; common practice).
 ROTATION_DISTANCE_MM = 27.0
@@ -201,33 +201,74 @@ def tscherning_front_curve(sphere: float, cylinder: float = 0.0, index: float = 
     return tscherning_front_curves(sphere + cylinder / 2.0, index, rotation_distance_mm)[0]
 
 
+class FrontCurveRequest(NamedTuple):
+    """What a front-curve method may use: the lens power, the index and where the lens sits before the eye.
+
+    sphere, cylinder, axis : the surfacing power (D, degrees); index : refractive
+    index; rotation_distance_mm : lens to the eye's centre of rotation (mm);
+    eye : ``"right"``, ``"left"`` or None; vertex_mm, pantoscopic_deg,
+    face_form_deg : the fit, when the order gives it (None otherwise).
+    """
+
+    sphere: float
+    cylinder: float = 0.0
+    axis: float = 180.0
+    index: float = 1.523
+    rotation_distance_mm: float = ROTATION_DISTANCE_MM
+    eye: str | None = None
+    vertex_mm: float | None = None
+    pantoscopic_deg: float | None = None
+    face_form_deg: float | None = None
+
+
 @dataclass(frozen=True)
 class FrontCurveMethod:
-    """A registered way of choosing the front curve: its function, its title and its published source."""
+    """A registered way of choosing the front curve: its function, its title and its published source.
+
+    ``function(request: FrontCurveRequest) -> float`` returns the wanted front
+    curve (true power at the lens index, D) before it is snapped to the stock,
+    or raises :class:`NoBestForm` when the method has no answer for the power.
+    """
 
     name: str
-    function: Callable[..., float]
+    function: Callable[[FrontCurveRequest], float]
     title: str
     source: str
 
 
-def _vogel_by_registry(sphere: float, cylinder: float, index: float, rotation_distance_mm: float) -> float:
-    # Vogel's rule needs neither the index nor the eye's rotation distance.
-    return vogel_front_curve(sphere, cylinder)
+FRONT_CURVE_METHODS: dict[str, FrontCurveMethod] = {}
 
 
-FRONT_CURVE_METHODS: dict[str, FrontCurveMethod] = {
-    "vogel": FrontCurveMethod(
-        "vogel", _vogel_by_registry,
-        "Vogel's rule (SE + 6 D for plus, SE/2 + 6 D for minus)",
-        "Vogel's rule, as given in Brooks & Borish, System for Ophthalmic Dispensing",
-    ),
-    "tscherning": FrontCurveMethod(
-        "tscherning", tscherning_front_curve,
-        "best form by third-order theory (Tscherning's ellipse, flatter root, distance)",
-        "Tscherning's ellipse: Jalie, The Principles of Ophthalmic Lenses; Atchison (1992), Applied Optics 31:3579",
-    ),
-}
+def register_front_curve_method(method: FrontCurveMethod) -> FrontCurveMethod:
+    """Add a method to :data:`FRONT_CURVE_METHODS`, so ``[stages.geometry] front_curve_method`` may name it.
+
+    A module that defines a method registers it when it is imported; the lab's
+    config is validated against the registry at start, after the plugins are
+    loaded. A name registered twice is refused.
+
+    Examples
+    --------
+    >>> {"vogel", "tscherning"} <= set(FRONT_CURVE_METHODS)
+    True
+    """
+    if method.name in FRONT_CURVE_METHODS:
+        raise ValueError(f"front-curve method {method.name!r} is registered already")
+    FRONT_CURVE_METHODS[method.name] = method
+    return method
+
+
+register_front_curve_method(FrontCurveMethod(
+    "vogel", lambda request: vogel_front_curve(request.sphere, request.cylinder),
+    "Vogel's rule (SE + 6 D for plus, SE/2 + 6 D for minus)",
+    "Vogel's rule, as given in Brooks & Borish, System for Ophthalmic Dispensing",
+))
+register_front_curve_method(FrontCurveMethod(
+    "tscherning",
+    lambda request: tscherning_front_curve(request.sphere, request.cylinder, request.index,
+                                           request.rotation_distance_mm),
+    "best form by third-order theory (Tscherning's ellipse, flatter root, distance)",
+    "Tscherning's ellipse: Jalie, The Principles of Ophthalmic Lenses; Atchison (1992), Applied Optics 31:3579",
+))
 
 
 def front_curve_method(name: str) -> FrontCurveMethod:
@@ -245,16 +286,18 @@ def front_curve_method(name: str) -> FrontCurveMethod:
         raise ValueError(f"unknown front-curve method {name!r} (known: {known})") from None
 
 
-def front_curve(method: str, sphere: float, cylinder: float = 0.0, index: float = 1.523,
+def front_curve(method: str, sphere: float | FrontCurveRequest, cylinder: float = 0.0, index: float = 1.523,
                 rotation_distance_mm: float = ROTATION_DISTANCE_MM) -> float:
-    """The front curve (D) by the named method: ``"vogel"`` or ``"tscherning"``.
+    """The front curve (D) by the named method (the dispatcher over :data:`FRONT_CURVE_METHODS`).
 
     Parameters
     ----------
     method : str
         A key of :data:`FRONT_CURVE_METHODS`.
-    sphere, cylinder : float
-        The lens power, dioptres.
+    sphere : float or FrontCurveRequest
+        The lens's sphere (D), or the whole request (the other arguments are then ignored).
+    cylinder : float
+        Dioptres.
     index : float
         Refractive index (used by best-form methods).
     rotation_distance_mm : float
@@ -279,7 +322,20 @@ def front_curve(method: str, sphere: float, cylinder: float = 0.0, index: float 
     >>> front_curve("vogel", -4.0)
     4.0
     """
-    return front_curve_method(method).function(sphere, cylinder, index, rotation_distance_mm)
+    request = sphere if isinstance(sphere, FrontCurveRequest) else FrontCurveRequest(
+        sphere, cylinder, index=index, rotation_distance_mm=rotation_distance_mm)
+    return front_curve_method(method).function(request)
+
+
+def stocked_at_least(curve_d: float, stocked_d: Sequence[float]) -> list[float]:
+    """The stocked bases no flatter than a curve, flattest first (where a technician looks for a steeper base).
+
+    Examples
+    --------
+    >>> stocked_at_least(6.5, [4.0, 6.0, 7.0, 8.0])
+    [7.0, 8.0]
+    """
+    return sorted(base for base in stocked_d if base >= curve_d - 1e-9)
 
 
 def nearest_stocked_base(curve_d: float, stocked_d: Sequence[float]) -> float:

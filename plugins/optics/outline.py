@@ -329,7 +329,23 @@ def blank_diameter_mm(points_mm: np.ndarray, centre_mm: tuple[float, float], all
     64.0
     """
     offsets = np.asarray(points_mm, dtype=float) - np.asarray(centre_mm, dtype=float)
-    return 2.0 * float(np.max(np.hypot(offsets[:, 0], offsets[:, 1]))) + allowance_mm
+    return blank_diameter_from_farthest_mm(float(np.max(np.hypot(offsets[:, 0], offsets[:, 1]))), allowance_mm)
+
+
+def blank_diameter_from_farthest_mm(farthest_mm: float, allowance_mm: float = 2.0) -> float:
+    """The smallest blank from the distance of the farthest outline point to the optical centre: ``2 r + allowance``.
+
+    References
+    ----------
+    Minimum blank size, as in dispensing texts (e.g. Brooks & Borish, *System
+    for Ophthalmic Dispensing*).
+
+    Examples
+    --------
+    >>> blank_diameter_from_farthest_mm(31.0)
+    64.0
+    """
+    return 2.0 * farthest_mm + allowance_mm
 
 
 def blank_diameter_from_ed_mm(effective_diameter_mm: float, inward_mm: float, allowance_mm: float = 2.0) -> float:
@@ -354,3 +370,37 @@ def blank_diameter_from_ed_mm(effective_diameter_mm: float, inward_mm: float, al
     64.0
     """
     return effective_diameter_mm + 2.0 * abs(inward_mm) + allowance_mm
+
+
+def vertical_extent_at(radii_mm: Sequence[float], x_mm: float) -> tuple[float, float] | None:
+    """The lowest and highest point of the outline on the vertical line x = ``x_mm`` (mm about the box centre).
+
+    Parameters
+    ----------
+    radii_mm : sequence of float
+        The right lens's outline (the contract's form), the polygon through its points.
+    x_mm : float
+        The vertical line's distance right of the box centre, front view of the right lens, mm.
+
+    Returns
+    -------
+    (float, float) or None
+        y of the outline's lowest and highest crossing, mm; None when the line misses the outline.
+
+    Examples
+    --------
+    A square-ish round lens of radius 20 mm, on its vertical through the centre:
+
+    >>> [round(v, 6) for v in vertical_extent_at([20.0] * 360, 0.0)]
+    [-20.0, 20.0]
+    """
+    points = outline_points(radii_mm)
+    x, y = points[:, 0], points[:, 1]
+    x_next, y_next = np.roll(x, -1), np.roll(y, -1)
+    crosses = (x - x_mm) * (x_next - x_mm) <= 0.0
+    crosses &= x != x_next
+    if not crosses.any():
+        return None
+    fraction = (x_mm - x[crosses]) / (x_next[crosses] - x[crosses])
+    heights = y[crosses] + fraction * (y_next[crosses] - y[crosses])
+    return float(heights.min()), float(heights.max())

@@ -176,3 +176,28 @@ def meridian_power(matrix: PowerMatrix, direction_deg: float) -> float:
 def _axis_range(axis: float) -> float:
     axis = axis % 180.0
     return 180.0 if axis < 1e-9 or 180.0 - axis < 1e-9 else axis
+
+
+def nearest_step(value: float, step: float) -> float:
+    """The multiple of ``step`` nearest to ``value`` (a power on a generator's or a prescription's step).
+
+    The result is cleaned of the last binary digits a product like ``17 × 0.01``
+    leaves, so that a value on the step reads exactly as written.
+
+    Examples
+    --------
+    >>> nearest_step(-2.137, 0.01), nearest_step(0.99, 0.25), nearest_step(-0.37, 0.125)
+    (-2.14, 1.0, -0.375)
+    """
+    return round(round(value / step) * step, 10) + 0.0
+
+
+def is_on_step(value: float, step: float, written_to_d: float = 0.005) -> bool:
+    """Whether a written value lies on the step, allowing for eighths written to two decimals (2.12 for 2.125).
+
+    Examples
+    --------
+    >>> is_on_step(-2.25, 0.25), is_on_step(-2.13, 0.25), is_on_step(2.12, 0.125), is_on_step(2.13, 0.125)
+    (True, False, True, True)
+    """
+    return abs(value - nearest_step(value, step)) <= written_to_d + 1e-9

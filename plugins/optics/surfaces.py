@@ -141,11 +141,53 @@ def sag_mm(curvature_per_mm, semi_chord_mm):
     >>> round(sag_mm(surface_curvature_per_mm(6.0, 1.5), 25.0), 3)
     3.838
     """
-    c = np.asarray(curvature_per_mm, dtype=float)
     y = np.asarray(semi_chord_mm, dtype=float)
+    sag = sag_from_squared_mm(np.asarray(curvature_per_mm, dtype=float), y * y)
+    return float(sag) if np.ndim(sag) == 0 else sag
+
+
+def sag_from_squared_mm(curvature_per_mm, semi_chord_squared_mm2):
+    """The exact sag (mm) from the squared distance ρ² to the vertex: ``c ρ² / (1 + √(1 − c ρ² · c))``.
+
+    The form of :func:`sag_mm` for work that has ρ² already (distances about a
+    point are found squared), so no square root of ρ is taken. Scalars or
+    arrays; NaN where the surface does not reach (c²ρ² > 1).
+
+    References
+    ----------
+    The sagitta formula, e.g. Jalie, *The Principles of Ophthalmic Lenses*.
+
+    Examples
+    --------
+    >>> round(float(sag_from_squared_mm(surface_curvature_per_mm(6.0, 1.5), 625.0)), 3)
+    3.838
+    """
+    curvature_rho2 = curvature_per_mm * semi_chord_squared_mm2
     with np.errstate(invalid="ignore"):
-        sag = c * y * y / (1.0 + np.sqrt(1.0 - (c * y) ** 2))
-    return float(sag) if sag.ndim == 0 else sag
+        return curvature_rho2 / (1.0 + np.sqrt(1.0 - curvature_per_mm * curvature_rho2))
+
+
+def sag_slope_per_curvature(curvature_per_mm: float, semi_chord_squared_mm2: float) -> float:
+    """How fast the exact sag grows with the curvature, ``ds/dc = ρ² / (w (1 + w))``, w = √(1 − c²ρ²) (mm²).
+
+    Notes
+    -----
+    The derivative of :func:`sag_from_squared_mm`: with s = (1 − w)/c,
+    ds/dc = (1 − w)/(c² w) = ρ²/(w (1 + w)), since (1 − w)(1 + w) = c²ρ².
+    Defined where the surface reaches (c²ρ² < 1); ρ²/2 at a plano surface.
+
+    References
+    ----------
+    Differentiation of the sagitta formula (Jalie, *The Principles of
+    Ophthalmic Lenses*).
+
+    Examples
+    --------
+    >>> sag_slope_per_curvature(0.0, 100.0)
+    50.0
+    """
+    w = math.sqrt(1.0 - curvature_per_mm * curvature_per_mm * semi_chord_squared_mm2)
+    return semi_chord_squared_mm2 / (w * (1.0 + w))
 
 
 def approximate_sag_mm(power_d: float, index: float, semi_chord_mm: float) -> float:
@@ -230,6 +272,61 @@ def back_surface_power(front_d: float, back_vertex_d: float, thickness_mm: float
     -4.0
     """
     return back_vertex_d - front_d / (1.0 - (thickness_mm / 1000.0 / index) * front_d)
+
+
+def front_surface_power(back_vertex_d: float, back_d: float, thickness_mm: float, index: float) -> float:
+    """The front surface power that, with a given back surface, gives the wanted back vertex power.
+
+    Parameters
+    ----------
+    back_vertex_d : float
+        The wanted back vertex power, dioptres.
+    back_d : float
+        The back surface power, dioptres (e.g. the flattest concave back a lab accepts).
+    thickness_mm, index : float
+        Centre thickness (mm) and refractive index.
+
+    Returns
+    -------
+    float
+        ``F₁ = V / (1 + (t/n) V)`` with ``V = Fv − F₂``, dioptres: :func:`back_vertex_power`
+        solved for the front.
+
+    References
+    ----------
+    Jalie, *The Principles of Ophthalmic Lenses* (back vertex power of a thick lens, solved for the front).
+
+    Examples
+    --------
+    >>> round(front_surface_power(6.4166667, -4.0, 6.0, 1.5), 4)
+    10.0
+    """
+    vergence = back_vertex_d - back_d
+    return vergence / (1.0 + (thickness_mm / 1000.0 / index) * vergence)
+
+
+def back_surface_power_slope(front_d: float, thickness_mm: float, index: float) -> float:
+    """How the back surface power of :func:`back_surface_power` changes with the centre thickness (D per mm).
+
+    Returns
+    -------
+    float
+        ``dF₂/dt = −F₁² / (1000 n (1 − (t/n) F₁)²)``: the back steepens (grows
+        more minus) as the lens thickens, whatever the sign of F₁, to keep the
+        back vertex power.
+
+    References
+    ----------
+    Differentiation of the thick-lens back vertex power (Jalie, *The Principles
+    of Ophthalmic Lenses*).
+
+    Examples
+    --------
+    >>> round(back_surface_power_slope(10.0, 0.0, 1.5), 6)
+    -0.066667
+    """
+    denominator = 1.0 - (thickness_mm / 1000.0 / index) * front_d
+    return -front_d * front_d / (1000.0 * index * denominator * denominator)
 
 
 class ToricBack(NamedTuple):

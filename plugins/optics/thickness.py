@@ -30,7 +30,10 @@ import numpy as np
 
 from lenslane.plugins.optics.outline import unit_circle
 from lenslane.plugins.optics.power import PowerMatrix, principal_powers
-from lenslane.plugins.optics.surfaces import ToricBack, back_surface_power, surface_curvature_per_mm
+from lenslane.plugins.optics.surfaces import (
+    ToricBack, back_surface_power, back_surface_power_slope, sag_from_squared_mm, sag_slope_per_curvature,
+    surface_curvature_per_mm,
+)
 
 
 class LensNotMakeable(ValueError):
@@ -130,11 +133,6 @@ _TINY_MM2 = 1e-300
 _REACH_MARGIN = 0.999999
 
 
-def _sag_of(curvature_per_mm, rho2_mm2):
-    """The exact sag ``c ρ² / (1 + √(1 − c² ρ²))`` from the squared distance ρ² (no square root of ρ needed)."""
-    return curvature_per_mm * rho2_mm2 / (1.0 + np.sqrt(1.0 - curvature_per_mm * curvature_per_mm * rho2_mm2))
-
-
 class _Profile(NamedTuple):
     """What the thickness at a set of points owes to the lens apart from its centre thickness.
 
@@ -185,12 +183,12 @@ def _profile(x_mm: np.ndarray, y_mm: np.ndarray, shape: LensShape, strict: bool,
         # rho2_max bounds every ρ²: only near the limit look at every point.
         if strict and square * rho2_max > _REACH_MARGIN and float(np.max(square * rho2)) > 1.0:
             raise LensNotMakeable(_NOT_REACHING)
-        fixed = _sag_of(-front_curvature, rho2)  # the sag is odd in the curvature: this is minus the front sag
+        fixed = sag_from_squared_mm(-front_curvature, rho2)  # the sag is odd in the curvature: this is minus the front sag
     else:
         fixed = np.zeros_like(rho2)
     if shape.prism_delta:
         base = math.radians(shape.prism_base_deg)
-        per_mm = shape.prism_delta / (100.0 * (index - 1.0))
+        per_mm = wedge_mm(shape.prism_delta, 1.0, index)  # the wedge's thickness change per mm along the base
         wedge = x_mm * (per_mm * math.cos(base))
         wedge += y_mm * (per_mm * math.sin(base))
         fixed += wedge
@@ -219,18 +217,12 @@ def _relief_of(profile: _Profile, center_thickness_mm: float, strict: bool) -> n
     # k F_b(t): the back's curvature in the meridian of its smaller power, at this centre thickness.
     back_b = back_surface_power(profile.front_d, profile.back_vertex_b_d, center_thickness_mm, profile.index)
     shift = surface_curvature_per_mm(back_b, profile.index, "back")
-    curvature = profile.back_cylinder + shift
-    thickness = curvature * profile.rho2             # c ρ²
-    root = curvature * thickness                     # c² ρ²
-    np.subtract(1.0, root, out=root)
-    if strict and root.size:
+    thickness = sag_from_squared_mm(profile.back_cylinder + shift, profile.rho2)  # the back sag; NaN where it does not reach
+    if strict and thickness.size:
         # c lies between k F_b and k F_b + span, ρ² is at most rho2_max: only near the limit look at every point.
         steepest = max(shift * shift, (shift + profile.cylinder_span) ** 2)
-        if steepest * profile.rho2_max > _REACH_MARGIN and float(root[root.argmin()]) < 0.0:
+        if steepest * profile.rho2_max > _REACH_MARGIN and bool(np.isnan(thickness).any()):
             raise LensNotMakeable(_NOT_REACHING)
-    np.sqrt(root, out=root)
-    root += 1.0
-    thickness /= root                                # the back sag, c ρ² / (1 + √(1 − c² ρ²))
     thickness += profile.fixed
     return thickness
 
@@ -315,27 +307,23 @@ def _edge_root_mm(profile: _Profile, point: int, target_mm: float, center_mm: fl
     """The centre thickness at which one point's thickness is ``target_mm`` (Newton's method, plain floats).
 
     The point's thickness is ``T(t) = t + fixed + s(c(t), ρ²)`` with the back's
-    curvature ``c(t) = cyl + k F_b(t)``; its slope is
-    ``T′ = 1 + ρ² / (w (1 + w)) · dc/dt`` with ``w = √(1 − c²ρ²)`` and
-    ``dc/dt = −k F₁² / (1000 n (1 − (t/n) F₁)²) ≥ 0``, so T rises with t and the
-    root is unique.
+    curvature ``c(t) = cyl + k F_b(t)``; its slope is ``T′ = 1 + ds/dc · k dF_b/dt``
+    (:func:`sag_slope_per_curvature`, :func:`back_surface_power_slope`), and
+    ``k dF_b/dt ≥ 0``, so T rises with t and the root is unique.
     """
     rho2 = float(profile.rho2[point])
     fixed = float(profile.fixed[point])
     cylinder = profile.back_cylinder if isinstance(profile.back_cylinder, float) else float(profile.back_cylinder[point])
     front, index = profile.front_d, profile.index
-    per_dioptre = surface_curvature_per_mm(1.0, index, "back")
-    reduced = front / (1000.0 * index)
     t = center_mm
     for _ in range(_MAX_ITERATIONS):
-        denominator = 1.0 - t * reduced
-        curvature = cylinder + per_dioptre * (profile.back_vertex_b_d - front / denominator)
-        discriminant = 1.0 - curvature * curvature * rho2
-        if not discriminant > 0.0:
+        back_b = back_surface_power(front, profile.back_vertex_b_d, t, index)
+        curvature = cylinder + surface_curvature_per_mm(back_b, index, "back")
+        if not curvature * curvature * rho2 < 1.0:
             raise LensNotMakeable(_NOT_REACHING)
-        w = math.sqrt(discriminant)
-        thickness = t + fixed + curvature * rho2 / (1.0 + w)
-        slope = 1.0 - rho2 / (w * (1.0 + w)) * per_dioptre * front * reduced / (denominator * denominator)
+        thickness = t + fixed + float(sag_from_squared_mm(curvature, rho2))
+        curvature_slope = surface_curvature_per_mm(back_surface_power_slope(front, t, index), index, "back")
+        slope = 1.0 + sag_slope_per_curvature(curvature, rho2) * curvature_slope
         step = (target_mm - thickness) / slope
         t += step
         if abs(step) < _NEWTON_STEP_MM:
@@ -569,7 +557,7 @@ def _volume_from(relief_nodes: np.ndarray, grid: OutlineGrid, eye: str, centre_m
         moment_x = mirror * third * float(np.dot(cosines, cubes)) - centre_mm[0] * grid.area
         moment_y = third * float(np.dot(sines, cubes)) - centre_mm[1] * grid.area
         base = math.radians(shape.prism_base_deg)
-        per_mm = shape.prism_delta / (100.0 * (shape.index - 1.0))
+        per_mm = wedge_mm(shape.prism_delta, 1.0, shape.index)
         along_x, along_y = per_mm * math.cos(base), per_mm * math.sin(base)
         sampled = float(np.dot(x_nodes * along_x + y_nodes * along_y, grid.weights))
         volume += along_x * moment_x + along_y * moment_y - sampled

@@ -41,6 +41,9 @@ def make_order(index: int, rng: random.Random) -> dict:
         rx["vertex_mm"] = 12.0
     fit = {eye: {"pd_mm": round(rng.uniform(29.0, 34.0), 1), "height_mm": round(height / 2 + rng.uniform(0, 4), 1)}
            for eye in ("right", "left")}
+    if design == "bifocal":  # the segment top, 4 mm under the distance centre (no draw: the other orders stay the same)
+        for eye in ("right", "left"):
+            fit[eye]["segment_height_mm"] = round(fit[eye]["height_mm"] - 4.0, 1)
     if rng.random() < 0.6:
         fit["vertex_mm"] = round(rng.uniform(10.0, 15.0), 1)
         fit["pantoscopic_deg"] = round(rng.uniform(4.0, 12.0), 1)

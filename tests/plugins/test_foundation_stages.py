@@ -65,7 +65,7 @@ def test_a_mild_order_in_an_ordinary_frame_gets_no_flags_from_validate(default_h
 def test_fitting_height_outside_the_box_is_held(default_host, order_dict):
     order_dict["fit"]["right"]["height_mm"] = 40.0  # box height 38
     result = run_order(default_host, order_dict)
-    [flag] = flags(result, "fitting-height-outside-box")
+    [flag] = flags(result, "fitting-height-outside-lens")
     assert flag["level"] == "review" and flag["eye"] == "right"
     assert result["status"] == "review"
 

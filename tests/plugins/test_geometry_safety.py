@@ -186,11 +186,16 @@ def test_tscherning_from_the_config_with_its_no_solution_fallback(order_dict):
     order_dict["rx"] = {"right": {"sphere": -5.0}, "left": {"sphere": 8.0}}
     result = run_order(host, order_dict)
     assert geometry_inputs(result, "right", "front_curve_d")["computed_d"] == pytest.approx(5.04, abs=0.005)
-    assert result["lenses"]["right"]["geometry"]["front_curve_d"] == 5.0
     [fallback] = flags(result, "front-curve-no-best-form")
     assert fallback["eye"] == "left" and fallback["level"] == "info"
     # Vogel: +8.00 + 6 = 14 D, beyond the stock: the steepest stocked base, 10 D.
     assert result["lenses"]["left"]["geometry"]["front_curve_d"] == 10.0
+    # The right eye's own 5.00 D is 5 D from the left's; the pair stays within 2.00 D (common practice), so the
+    # right front is steepened to 8.00 D, and the record says why.
+    assert geometry_inputs(result, "right", "front_curve_d")["own_choice_d"] == {"right": 5.0, "left": 10.0}
+    assert result["lenses"]["right"]["geometry"]["front_curve_d"] == 8.0
+    [change] = [c for c in result["changes"] if c["field"] == "lenses.right.geometry"]
+    assert "within 2.00 D" in change["reason"]
 
 
 def test_an_unknown_front_curve_method_stops_the_engine_at_start():
@@ -214,6 +219,7 @@ def test_multifocal_geometry_states_its_assumptions(default_host, order_dict, de
     for eye in ("right", "left"):
         order_dict["rx"][eye]["add"] = 2.0
         order_dict["fit"][eye]["height_mm"] = 20.0
+        order_dict["fit"][eye]["segment_height_mm"] = 16.0
     result = run_order(default_host, order_dict)
     assumptions = result["lenses"]["right"]["geometry"]["assumptions"]
     assert any(line.startswith(words) for line in assumptions)
@@ -275,7 +281,8 @@ def test_vertical_imbalance_at_the_reading_level_suggests_slab_off(default_host,
     # slab-off on the more minus lens above about 1.5Δ (common practice).
     order_dict["lens"]["design"] = "bifocal"
     order_dict["rx"] = {"right": {"sphere": 1.0, "add": 2.0}, "left": {"sphere": 4.0, "add": 2.0}}
-    order_dict["fit"] = {"right": {"pd_mm": 32.0, "height_mm": 18.0}, "left": {"pd_mm": 32.0, "height_mm": 18.0}}
+    order_dict["fit"] = {"right": {"pd_mm": 32.0, "segment_height_mm": 18.0},
+                         "left": {"pd_mm": 32.0, "segment_height_mm": 18.0}}
     result = run_order(default_host, order_dict)
     flag = safety_flag(result, "vertical-imbalance")
     assert flag["values"]["imbalance_delta"] == pytest.approx(3.0)

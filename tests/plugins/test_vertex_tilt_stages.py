@@ -42,6 +42,9 @@ def _host(**stages):
     return start_host(LabConfig(stages=stages))
 
 
+_KEEP_EVERY_CYLINDER = _host(generator={"minimum_cylinder_d": 0.0})
+
+
 def _contract_model(sphere, cylinder, axis, refraction_mm, fitting_mm, p_deg, w_deg, eye, n):
     """ORDER_FORMAT.md's compensation model written out with numpy, apart from the engine's own code."""
     a = math.radians(axis)
@@ -110,10 +113,11 @@ def test_sample_order_matches_an_independent_implementation_of_the_model(default
     w=st.one_of(st.none(), st.floats(-5.0, 35.0)), eye=st.sampled_from(["right", "left"]),
     material=st.sampled_from([("resin-1.50", 1.498), ("polycarbonate-1.59", 1.586), ("resin-1.74", 1.74)]),
 )
-def test_random_orders_match_an_independent_implementation(default_host, sphere, cylinder, axis, refraction,
+def test_random_orders_match_an_independent_implementation(sphere, cylinder, axis, refraction,
                                                             fitting, p, w, eye, material):
     # Source: ORDER_FORMAT.md compensation model, re-implemented in this test with numpy; compared to 0.01 D
     # and 1° as the acceptance check does (the axis only where the cylinder is large enough to have one).
+    # The generator keeps every cylinder here: dropping small ones is the lab's rule, tested with the generator.
     data = copy.deepcopy(BASE_ORDER)
     data["rx"] = {eye: {"sphere": sphere, "cylinder": cylinder, "axis": axis}}
     if refraction is not None:
@@ -123,7 +127,7 @@ def test_random_orders_match_an_independent_implementation(default_host, sphere,
         if value is not None:
             data["fit"][key] = value
     data["lens"]["material"] = material[0]
-    result = run_order(default_host, data)
+    result = run_order(_KEEP_EVERY_CYLINDER, data)
     expected = _contract_model(sphere, cylinder, axis, 12.0 if refraction is None else refraction, fitting,
                                p or 0.0, w or 0.0, eye, material[1])
     surfacing = result["lenses"][eye]["surfacing"]
@@ -270,12 +274,29 @@ def test_tilt_design_switch_leaves_single_vision_alone():
     # pantoscopic tilt should not also compensate — a per-design policy.
     data = json.loads(SAMPLE.read_text())
     data["lens"]["design"] = "single_vision"
-    host = _host(tilt={"apply_to": ["progressive", "bifocal"]})
+    host = _host(tilt={"pantoscopic_apply_to": ["progressive", "bifocal"],
+                       "face_form_apply_to": ["progressive", "bifocal"]})
     result = run_order(host, data)
     assert not [c for c in result["changes"] if c["stage"] == "tilt"]
     assert [c for c in result["changes"] if c["stage"] == "vertex"]
     flag = next(f for f in result["flags"] if f["code"] == "tilt-not-applied")
     assert "single-vision" in flag["message"]
+
+
+def test_face_form_is_compensated_on_a_design_left_out_for_pantoscopic_tilt(order_dict):
+    # Source: DOMAIN.md — lowering the optical centre (Atchison & Tame 1993) answers pantoscopic tilt only, so
+    # a lab may leave single vision out of the pantoscopic compensation and still compensate its face form.
+    # Martin's formula for face form alone: the cylinder's axis is 90 (DOMAIN.md, tilt about the vertical).
+    order_dict["rx"] = {"right": {"sphere": -4.0}, "left": {"sphere": -4.0}}
+    order_dict["fit"].update({"pantoscopic_deg": 10.0, "face_form_deg": 20.0})
+    result = run_order(_host(tilt={"pantoscopic_apply_to": ["progressive", "bifocal"]}), order_dict)
+    [right] = [c for c in result["changes"] if c["stage"] == "tilt" and c["field"] == "lenses.right.surfacing"]
+    assert right["inputs"]["pantoscopic_deg"] == 0.0 and right["inputs"]["face_form_deg"] == 20.0
+    assert any("pantoscopic tilt 10.0° not compensated" in a for a in right["inputs"]["assumptions"])
+    surfacing = result["lenses"]["right"]["surfacing"]
+    # Face form alone turns the lens about the vertical: its principal meridians stay at 90 and 180, where a
+    # pantoscopic tilt mixed in would have turned them.
+    assert surfacing["cylinder"] != 0.0 and surfacing["axis"] in (90, 180)
 
 
 def test_unknown_stage_key_stops_the_engine():

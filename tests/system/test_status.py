@@ -32,7 +32,8 @@ def test_status_beside_a_running_engine_and_after_it_stopped(tmp_path):
     running = status(lab, "--json")
     assert running["engine"]["running"] is True and running["engine"]["pid"] == watch.process.pid
     assert running["engine"]["since"].endswith("Z") and running["engine"]["mode"] == "watch"
-    assert running["folders"] == {"inbox": 0, "work": 0, "outbox": 3, "held": 0, "rejected": 1, "archive": 3}
+    assert running["folders"] == {"inbox": 0, "work": 0, "outbox": 3, "review": 0, "held": 0, "rejected": 1,
+                                  "archive": 3, "decisions": 0}
     last = list(iter_records(lab))[-1]
     assert running["audit"]["last_record"]["seq"] == last["seq"]
     assert running["audit"]["bytes"] == sum(p.stat().st_size for p in audit_files(lab))

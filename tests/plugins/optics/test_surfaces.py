@@ -11,7 +11,8 @@ from rayoptics.elem.profiles import Spherical, YToroid
 
 from lenslane.plugins.optics.power import power_matrix
 from lenslane.plugins.optics.surfaces import (
-    approximate_sag_mm, back_surface_power, back_vertex_power, sag_mm, surface_curvature_per_mm, surface_power_d,
+    approximate_sag_mm, back_surface_power, back_surface_power_slope, back_vertex_power, sag_from_squared_mm, sag_mm,
+    sag_slope_per_curvature, surface_curvature_per_mm, surface_power_d,
     surface_radius_mm, toric_back_surface,
 )
 from tests.plugins.optics.lens_reference import paraxial_back_vertex_power, thick_lens
@@ -96,3 +97,43 @@ def test_back_surface_power_inverts_back_vertex_power(front_d, back_vertex_d, th
     # Source: algebraic inverse of the thick-lens formula (Jalie).
     back_d = back_surface_power(front_d, back_vertex_d, thickness_mm, index)
     assert back_vertex_power(front_d, back_d, thickness_mm, index) == pytest.approx(back_vertex_d, abs=1e-9)
+
+
+# --------------------------------------------------------------------------
+# The forms the thickness solver calls: sag from ρ², and the two slopes of its Newton step
+# --------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("power_d, y_mm", [(6.0, 25.0), (-8.0, 30.0), (0.0, 20.0), (12.0, 10.0)])
+def test_sag_from_the_squared_distance_is_the_sagitta_formula(power_d, y_mm):
+    # Source: the sagitta formula s = r − √(r² − y²) (Jalie), written out here with the radius.
+    curvature = surface_curvature_per_mm(power_d, 1.5)
+    radius = math.inf if curvature == 0 else 1.0 / curvature
+    reference = 0.0 if math.isinf(radius) else radius - math.copysign(math.sqrt(radius ** 2 - y_mm ** 2), radius)
+    assert float(sag_from_squared_mm(curvature, y_mm * y_mm)) == pytest.approx(reference, abs=1e-9)
+
+
+@pytest.mark.parametrize("curvature, rho2", [(0.012, 625.0), (-0.02, 400.0), (0.0, 900.0), (0.03, 1000.0)])
+def test_the_sag_slope_is_the_derivative_of_the_sag(curvature, rho2):
+    # Source: a central difference of the sagitta formula (independent of the closed form), step 1e-7 /mm.
+    h = 1e-7
+    numeric = (float(sag_from_squared_mm(curvature + h, rho2)) - float(sag_from_squared_mm(curvature - h, rho2))) / (2 * h)
+    assert sag_slope_per_curvature(curvature, rho2) == pytest.approx(numeric, rel=1e-6)
+
+
+@pytest.mark.parametrize("front_d, thickness_mm, index", [(10.0, 6.0, 1.5), (4.0, 2.0, 1.6), (1.0, 12.0, 1.74)])
+def test_the_back_surface_slope_is_the_derivative_of_the_back_surface_power(front_d, thickness_mm, index):
+    # Source: a central difference of F₂ = Fv − F₁/(1 − (t/n)F₁) (Jalie), step 1e-5 mm.
+    h = 1e-5
+    numeric = (back_surface_power(front_d, 3.0, thickness_mm + h, index)
+               - back_surface_power(front_d, 3.0, thickness_mm - h, index)) / (2 * h)
+    assert back_surface_power_slope(front_d, thickness_mm, index) == pytest.approx(numeric, rel=1e-6)
+
+
+@pytest.mark.parametrize("front_d, back_d, thickness_mm, index", [(10.0, -4.0, 6.0, 1.5), (8.0, -0.5, 9.0, 1.6)])
+def test_the_front_for_a_back_inverts_the_back_vertex_power(front_d, back_d, thickness_mm, index):
+    # Source: DOMAIN.md worked example F₁ +10, F₂ −4, t 6 mm, n 1.5 → Fv +6.417, and Fv = F₁/(1 − (t/n)F₁) + F₂
+    # (Jalie) solved back for F₁.
+    from lenslane.plugins.optics.surfaces import front_surface_power
+    vertex_power = back_vertex_power(front_d, back_d, thickness_mm, index)
+    assert front_surface_power(vertex_power, back_d, thickness_mm, index) == pytest.approx(front_d, abs=1e-9)

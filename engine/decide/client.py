@@ -1,0 +1,129 @@
+"""``lenslane decide``: drop a request and wait for the lab's one writer to answer it.
+
+If no process holds the lab's lock, this process takes it and applies the
+waiting requests itself (its own among them), exactly as the engine would; if
+the engine holds it, the engine is woken (SIGUSR1) and applies them between
+orders. A request no one took in time is withdrawn (removed before anyone
+took it), so the person is told plainly that nothing was decided.
+"""
+from __future__ import annotations
+
+import contextlib
+import os
+import signal
+import threading
+import time
+from pathlib import Path
+
+from lenslane.decide import requests
+from lenslane.audit.log import AuditError
+from lenslane.decide.model import EXIT_BLOCKED, EXIT_NOT_TAKEN, EXIT_USAGE, DecisionError, DecisionResult
+from lenslane.lab.files import LabLocked, lock_lab
+
+#: How long to wait for a running engine to answer (s); it normally answers in milliseconds.
+WAIT_SECONDS = 30.0
+POLL_SECONDS = 0.02
+#: How often a running engine is woken again while the request waits (s).
+WAKE_SECONDS = 1.0
+#: How long to wait for the answer once the engine has taken the request (s).
+TAKEN_WAIT_SECONDS = 300.0
+
+
+def decide(lab_root: Path, order_id: str, action: str, by: str, note: str, held_file: str | None = None,
+           wait_seconds: float = WAIT_SECONDS) -> DecisionResult:
+    """Apply one person's decision on an order, exactly once.
+
+    Raises
+    ------
+    DecisionError
+        Not applied; ``message`` says why and ``exit_code`` which case it is.
+    """
+    root = Path(lab_root)
+    if not (root / "audit.jsonl").exists() and not (root / "outbox").is_dir():
+        raise DecisionError(f"{root} is not a lab folder (lenslane init makes one)", EXIT_USAGE)
+    request = requests.new_request(order_id, action, by, note, held_file)
+    path = requests.write_request(root, request)
+    deadline = time.monotonic() + wait_seconds
+    taken_deadline = None
+    next_wake = 0.0
+    while True:
+        answer = requests.read_answer(path)
+        if answer is not None:
+            if isinstance(answer, DecisionError):
+                raise answer
+            return answer
+        holder = _apply_if_free(root)
+        now = time.monotonic()
+        if holder is not None and now >= next_wake:
+            _wake(holder)
+            next_wake = now + WAKE_SECONDS
+        if now > deadline and taken_deadline is None:
+            try:
+                path.unlink()  # withdrawn before the engine took it: nothing was decided
+            except FileNotFoundError:
+                taken_deadline = now + TAKEN_WAIT_SECONDS  # taken: it is being applied, wait for the answer
+            else:
+                raise DecisionError(f"the engine running on {root} (pid {holder or 'unknown'}) did not take the "
+                                    f"decision within {wait_seconds:g} s; it was withdrawn and nothing was decided",
+                                    EXIT_NOT_TAKEN)
+        if taken_deadline is not None and now > taken_deadline:
+            raise DecisionError(f"the engine took the decision but has not answered; it is applied once or not at "
+                                f"all — see `lenslane queue {root}` and `lenslane explain {root} {order_id}`",
+                                EXIT_NOT_TAKEN)
+        time.sleep(POLL_SECONDS)
+
+
+def _apply_if_free(root: Path) -> str | None:
+    """Apply the waiting requests if no one holds the lab's lock; else return the holder's pid."""
+    try:
+        lock = lock_lab(root)
+    except LabLocked as exc:
+        return exc.holder
+    try:
+        from lenslane.chain.host import start_host
+        from lenslane.config import load_config
+        from lenslane.decide.apply import Applier
+        from lenslane.lab.folder import Lab
+
+        if requests.pending(root):
+            lab = Lab(root, start_host(load_config(root)))
+            try:
+                lab.recover()  # as any holder of the lock does first: the log's tail, temp leftovers
+                with _time_limit(lab):
+                    Applier(lab).run_pending()
+            except (OSError, AuditError) as exc:
+                raise DecisionError(f"cannot write in {root}: {exc}; the decision is applied once or not at all — it "
+                                    "stays in decisions/ and is applied by the next lenslane watch or decide",
+                                    EXIT_BLOCKED) from exc
+    finally:
+        os.close(lock)
+    return None
+
+
+@contextlib.contextmanager
+def _time_limit(lab):
+    """A replace runs the chain: bound it by ``watch.order_time_limit_seconds`` as the engine does.
+
+    The limit rides on SIGALRM, which only the main thread can receive; called from another thread (a web
+    server's worker) the chain runs unbounded, as a preview does.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    from lenslane.watch.daemon import StageClock
+
+    clock = StageClock(lab.config.watch.order_time_limit_seconds)
+    previous = signal.signal(signal.SIGALRM, clock.on_alarm)
+    lab.time_limit = clock
+    try:
+        yield
+    finally:
+        signal.setitimer(signal.ITIMER_REAL, 0)
+        signal.signal(signal.SIGALRM, previous)
+
+
+def _wake(holder: str) -> None:
+    try:
+        os.kill(int(holder), signal.SIGUSR1)
+    except (ValueError, ProcessLookupError, PermissionError):
+        pass  # the engine looks at decisions/ at every rescan anyway

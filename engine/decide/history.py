@@ -1,0 +1,58 @@
+"""What the audit log says about one order, for deciding on it.
+
+Read from the whole log for now (:func:`order_log`); once the audit index
+exists, the same answer comes from it.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from lenslane.audit.log import iter_records
+from lenslane.audit.results import Placed, ResultFiles
+
+
+@dataclass
+class OrderLog:
+    order_id: str
+    known: bool = False
+    results: ResultFiles = field(default_factory=ResultFiles)  # this order's result files only
+    revision: int = 1  # of the latest version published
+    decisions: list[dict[str, Any]] = field(default_factory=list)  # ``decided`` records, oldest first
+    held: dict[str, str] = field(default_factory=dict)  # held/<name> → sha256 of the bytes received
+    last_outcome: dict[str, Any] | None = None
+
+    def current(self) -> tuple[str, Placed] | None:
+        """The order's latest result still in outbox/ or review/ as far as the log knows."""
+        live = [(path, placed) for path, placed in self.results.files.items()
+                if path in (f"outbox/{self.order_id}.json", f"review/{self.order_id}.json")]
+        return max(live, key=lambda item: item[1].seq) if live else None
+
+    def decided_by_request(self, request: str) -> dict[str, Any] | None:
+        return next((d for d in self.decisions if d.get("request") == request), None)
+
+
+def order_log(lab_root: Path, order_id: str) -> OrderLog:
+    state = OrderLog(order_id)
+    received: dict[Any, str] = {}  # claim (or file) → sha256 of the bytes received
+    for record in iter_records(Path(lab_root)):
+        if record.get("order_id") != order_id:
+            continue
+        state.known = True
+        event = record.get("event")
+        state.results.add(record, f"seq {record['seq']}")
+        if event == "received":
+            received[record.get("claim") or record.get("file")] = str(record.get("sha256"))
+        elif event == "held" and isinstance(record.get("input"), str):
+            state.held[record["input"]] = received.get(record.get("claim") or record.get("file"), "")
+            state.last_outcome = record
+        elif event == "decided":
+            state.decisions.append(record)
+            for move in record.get("moves") or ():
+                state.held.pop(str(move.get("from")), None)
+        elif event in ("published", "rejected", "skipped"):
+            state.last_outcome = record
+            if event == "published":
+                state.revision = int(record.get("revision") or 1)
+    return state

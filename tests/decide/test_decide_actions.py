@@ -1,0 +1,172 @@
+"""``lenslane decide`` with no engine running: each action, once, recorded in the audit chain."""
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+
+import pytest
+
+from lenslane.audit.log import verify
+from lenslane.cli import main
+from lenslane.contract.models import LensOrderResult
+from lenslane.decide import DecisionError, decide
+from lenslane.decide.model import EXIT_MISMATCH, EXIT_NOT_AWAITING, EXIT_UNKNOWN, EXIT_USAGE
+from lenslane.report.explain import order_story, render
+from tests.decide.helpers import load, ready_order, records, review_order
+
+
+def sha256(path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+@pytest.fixture
+def lab(make_lab, drop):
+    """A lab with RV-0001 in review/ and a corrected OK-0001 held beside the published one."""
+    lab = make_lab()
+    drop(lab, review_order("RV-0001"))
+    drop(lab, ready_order("OK-0001"))
+    lab.drain()
+    drop(lab, ready_order("OK-0001", sphere=-1.50), "OK-0001-corrected.json")
+    lab.drain()
+    return lab
+
+
+def test_approve_publishes_the_reviewed_result_as_ready_with_who_when_and_why(lab):
+    root = lab.root
+    reviewed = load(root / "review" / "RV-0001.json")
+    reviewed_sha = sha256(root / "review" / "RV-0001.json")
+    done = decide(root, "RV-0001", "approve", "tech-07", "frame is deeper than ordered; checked by phone")
+    assert not (root / "review" / "RV-0001.json").exists()
+    result = load(root / "outbox" / "RV-0001.json")
+    LensOrderResult.model_validate(result)
+    assert result["status"] == "ready"
+    assert result["approved"] == {"by": "tech-07", "at": done.decided_at,
+                                  "note": "frame is deeper than ordered; checked by phone",
+                                  "flags_acknowledged": ["fitting-height-low"]}
+    # Nothing else changed: the approved result is the reviewed one with its status and approval.
+    assert {k: v for k, v in result.items() if k not in ("status", "approved")} == \
+        {k: v for k, v in reviewed.items() if k != "status"}
+    (decided,) = records(root, "decided", "RV-0001")
+    assert decided["by"] == "tech-07" and decided["note"].startswith("frame is deeper")
+    assert decided["applies_to"] == {"path": "review/RV-0001.json", "sha256": reviewed_sha}
+    assert decided["result_sha256"] == sha256(root / "outbox" / "RV-0001.json") and decided["seq"] == done.seq
+    assert verify(root).ok
+
+
+def test_refuse_moves_the_result_to_rejected_with_the_reason(lab):
+    root = lab.root
+    reviewed_sha = sha256(root / "review" / "RV-0001.json")
+    decide(root, "RV-0001", "refuse", "tech-07", "the frame cannot take a progressive; practice informed")
+    assert not (root / "review" / "RV-0001.json").exists() and not (root / "outbox" / "RV-0001.json").exists()
+    assert sha256(root / "rejected" / "RV-0001.json") == reviewed_sha
+    report = load(root / "rejected" / "RV-0001.json.errors.json")
+    assert report["problems"] == [{"field": "(decision)", "message": "refused by tech-07: the frame cannot take a "
+                                                                      "progressive; practice informed"}]
+    report = verify(root)
+    assert report.ok and report.other_results_matching == {"rejected": 1}
+
+
+def test_replace_publishes_the_next_revision_and_keeps_the_superseded_result(lab, drop):
+    root = lab.root
+    old_sha = sha256(root / "outbox" / "OK-0001.json")
+    done = decide(root, "OK-0001", "replace", "tech-07", "the practice corrected the right sphere")
+    result = load(root / "outbox" / "OK-0001.json")
+    LensOrderResult.model_validate(result)
+    assert result["revision"] == 2 and result["supersedes"] == old_sha
+    assert result["order"]["rx"]["right"]["sphere"] == -1.50 and result["status"] == "ready"
+    assert sha256(root / "archive" / "OK-0001.r1.json") == old_sha
+    assert os.listdir(root / "held") == [] and (root / "archive" / "OK-0001-corrected.json").exists()
+    assert done.result == "outbox/OK-0001.json" and done.result_sha256 == sha256(root / "outbox" / "OK-0001.json")
+    published = records(root, "published", "OK-0001")
+    assert [p.get("revision") for p in published] == [None, 2] and published[1]["supersedes"] == old_sha
+    report = verify(root)
+    assert report.ok and report.other_results_matching == {"archive": 1, "review": 1}
+    # A resend of the replacing version is now the published one: recorded and archived, not held again.
+    drop(lab, ready_order("OK-0001", sphere=-1.50), "OK-0001-resent.json")
+    assert [p.outcome for p in lab.drain()] == ["skipped"]
+    story = render(order_story(root, "OK-0001"))
+    assert "== Decision: replace by tech-07" in story and "revision 2 (supersedes sha256 " + old_sha in story
+    assert "moved to archive/OK-0001.r1.json by the replace decision" in story
+    assert story.count("Input:    now archive/OK-0001-corrected.json") == 2  # the held pass and revision 2
+
+
+def test_a_replacing_revision_that_needs_a_person_goes_to_review(make_lab, drop):
+    lab = make_lab()
+    drop(lab, ready_order("OK-0002"))
+    lab.drain()
+    drop(lab, review_order("OK-0002"), "OK-0002-progressive.json")
+    lab.drain()
+    old_sha = sha256(lab.root / "outbox" / "OK-0002.json")
+    decide(lab.root, "OK-0002", "replace", "tech-07", "the practice changed the design")
+    assert not (lab.root / "outbox" / "OK-0002.json").exists()
+    result = load(lab.root / "review" / "OK-0002.json")
+    assert result["status"] == "review" and result["revision"] == 2 and result["supersedes"] == old_sha
+    decide(lab.root, "OK-0002", "approve", "tech-09", "fitting height confirmed")
+    assert load(lab.root / "outbox" / "OK-0002.json")["revision"] == 2
+    assert verify(lab.root).ok
+
+
+def test_discard_archives_the_held_version_and_keeps_the_published_result(lab):
+    root = lab.root
+    before = sha256(root / "outbox" / "OK-0001.json")
+    decide(root, "OK-0001", "discard", "tech-07", "sent twice by mistake")
+    assert sha256(root / "outbox" / "OK-0001.json") == before
+    assert os.listdir(root / "held") == [] and (root / "archive" / "OK-0001-corrected.json").exists()
+    assert verify(root).ok
+
+
+def test_a_decision_applies_once_and_a_second_names_the_first(lab):
+    decide(lab.root, "RV-0001", "approve", "tech-07", "checked")
+    with pytest.raises(DecisionError) as second:
+        decide(lab.root, "RV-0001", "refuse", "tech-09", "too late")
+    assert second.value.exit_code == EXIT_NOT_AWAITING
+    assert "already decided — approve by tech-07" in second.value.message and '"checked"' in second.value.message
+    assert len(records(lab.root, "decided")) == 1
+
+
+@pytest.mark.parametrize("order_id, action, code, words", [
+    ("NOPE-1", "approve", EXIT_UNKNOWN, "the lab has no order NOPE-1"),
+    ("OK-0001", "approve", EXIT_NOT_AWAITING, "it is held: another version of it waits in held/OK-0001-corrected.json"),
+    ("RV-0001", "replace", EXIT_NOT_AWAITING, "it is in review (review/RV-0001.json); decide approve or refuse"),
+])
+def test_what_does_not_await_this_decision_says_so(lab, order_id, action, code, words):
+    with pytest.raises(DecisionError) as refused:
+        decide(lab.root, order_id, action, "tech-07", "a note")
+    assert refused.value.exit_code == code and words in refused.value.message
+    assert records(lab.root, "decided") == []
+
+
+def test_a_result_changed_in_review_is_not_decided(lab):
+    path = lab.root / "review" / "RV-0001.json"
+    path.write_bytes(path.read_bytes().replace(b'"review"', b'"ready"', 1))
+    with pytest.raises(DecisionError) as refused:
+        decide(lab.root, "RV-0001", "approve", "tech-07", "ok")
+    assert refused.value.exit_code == EXIT_MISMATCH and "was changed after the engine wrote it" in refused.value.message
+    assert not (lab.root / "outbox" / "RV-0001.json").exists()
+
+
+def test_the_command_line_requires_who_and_why_and_gives_the_exit_codes(lab, capsys):
+    with pytest.raises(SystemExit) as usage:
+        main(["decide", str(lab.root), "RV-0001", "approve", "--note", "ok"])
+    assert usage.value.code == 2 and "--by" in capsys.readouterr().err
+    assert main(["decide", str(lab.root), "RV-0001", "approve", "--by", "  ", "--note", "ok"]) == EXIT_USAGE
+    assert "by: required" in capsys.readouterr().err
+    assert main(["decide", str(lab.root), "RV-0001", "approve", "--by", "tech-07", "--note", "ok"]) == 0
+    assert "RV-0001: approved: outbox/RV-0001.json published with status ready" in capsys.readouterr().out
+    assert main(["decide", str(lab.root), "RV-0001", "approve", "--by", "tech-07", "--note", "ok"]) == EXIT_NOT_AWAITING
+    assert main(["decide", str(lab.root), "NOPE-1", "approve", "--by", "tech-07", "--note", "ok"]) == EXIT_UNKNOWN
+    assert "the lab has no order NOPE-1" in capsys.readouterr().err
+
+
+def test_verify_accounts_for_review_and_superseded_results(lab):
+    decide(lab.root, "OK-0001", "replace", "tech-07", "corrected")
+    assert verify(lab.root).ok
+    superseded = lab.root / "archive" / "OK-0001.r1.json"
+    superseded.write_bytes(superseded.read_bytes().replace(b"-1.0", b"-1.25", 1))
+    report = verify(lab.root)
+    assert not report.ok and report.result_problems[0].where == "archive/OK-0001.r1.json"
+    superseded.unlink()
+    (lab.root / "review" / "STRAY-1.json").write_bytes(json.dumps({"order_id": "STRAY-1"}).encode())
+    report = verify(lab.root)
+    assert not report.ok and "review/STRAY-1.json: no published record" in str(report.result_problems[0])
