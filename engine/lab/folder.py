@@ -272,30 +272,33 @@ class Lab:
     def batched(self) -> int:
         return self.commits.batched
 
-    # -- for library use -------------------------------------------------------------------
-
     def drain(self) -> list[Processed]:
-        """Finish what ``work/`` holds, then every complete order now in the inbox, one commit per order.
+        """Finish what ``work/`` holds, then every complete order now in the inbox (see :func:`drain`)."""
+        return drain(self)
 
-        For scripts and tests; ``lenslane watch --once`` goes through the
-        daemon, which adds the lock, the time limit, retries, logs and the
-        group commit of a backlog.
-        """
-        done = []
-        for name in self.recover():
-            processed = self.process_claimed(name, redo=True)
-            if processed is not None:
-                done += self.commit() if self.uncommitted else [processed]
-        names = self.pending()
-        while names:
-            settling = []
-            for name in names:
-                outcome = self.consider(name)
-                if isinstance(outcome, Processed):
-                    done += self.commit() if self.uncommitted else [outcome]
-                elif isinstance(outcome, Wait) and outcome.reason == "settling":
-                    settling.append((outcome.until, name))
-            if settling:
-                time.sleep(max(0.0, min(until for until, _ in settling) - time.time()))
-            names = [name for _, name in settling]
-        return done
+
+def drain(lab: Lab) -> list[Processed]:
+    """Finish what ``work/`` holds, then every complete order now in the inbox, one commit per order.
+
+    For scripts and tests; ``lenslane watch --once`` goes through the daemon,
+    which adds the lock, the time limit, retries, logs and the group commit of a
+    backlog.
+    """
+    done = []
+    for name in lab.recover():
+        processed = lab.process_claimed(name, redo=True)
+        if processed is not None:
+            done += lab.commit() if lab.uncommitted else [processed]
+    names = lab.pending()
+    while names:
+        settling = []
+        for name in names:
+            outcome = lab.consider(name)
+            if isinstance(outcome, Processed):
+                done += lab.commit() if lab.uncommitted else [outcome]
+            elif isinstance(outcome, Wait) and outcome.reason == "settling":
+                settling.append((outcome.until, name))
+        if settling:
+            time.sleep(max(0.0, min(until for until, _ in settling) - time.time()))
+        names = [name for _, name in settling]
+    return done

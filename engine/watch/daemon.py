@@ -18,7 +18,6 @@ one-line summary and exits.
 """
 from __future__ import annotations
 
-import json
 import math
 import os
 import signal
@@ -27,11 +26,10 @@ import time
 from pathlib import Path
 from typing import Any, Callable
 
-from lenslane import __version__
 from lenslane.chain.host import Host
 from lenslane.decide.desk import Desk
 from lenslane.lab.errors import Interrupted, OutputBlocked
-from lenslane.lab.files import LabLocked, lock_lab, printable
+from lenslane.lab.files import printable
 from lenslane.lab.folder import Lab, Processed, Wait
 from lenslane.watch.clock import StageClock
 from lenslane.watch.log import configure_logging
@@ -49,22 +47,6 @@ SHUTDOWN_GRACE_SECONDS = 3.0
 #: Group commit: at most this many orders share one folder fsync and one audit fsync. Only orders
 #: already due are batched, so a lone order is committed at once and latency does not grow.
 BATCH_MAX = 64
-#: A `lenslane decide` applying a decision while no engine runs holds the lab's lock for a moment
-#: (well under a second): an engine starting meanwhile waits this long for it before giving up (s).
-LOCK_WAIT_SECONDS = 3.0
-
-
-def _lock_waiting(root: Any) -> int:
-    deadline = time.monotonic() + LOCK_WAIT_SECONDS
-    while True:
-        try:
-            return lock_lab(root)
-        except LabLocked:
-            if time.monotonic() >= deadline:
-                raise
-            time.sleep(0.05)
-
-
 
 class Daemon:
     """One lab's loop; :meth:`run` returns the process exit code."""
@@ -79,35 +61,27 @@ class Daemon:
         self.young_seconds = watch.young_seconds
         self.schedule = Schedule()
         self.put_off: dict[str, float] = {}  # --once: when a still-changing file was first put off
-        self.tally: Any = None
         self.left: set[str] = set()
         self.stopping = False
         self.stop_signal: str | None = None
         self.supervisor: Supervisor | None = None
         self.inbox_missing = False
         self.next_scan = 0.0
-        self.log: Any = None
-        self.health: Any = None
-        self.desk: Desk | None = None
+        # Bound once: a logger proxy would bind itself again on every line.
+        self.log = configure_logging(sys.stderr if once else sys.stdout).bind()
+        self.tally = Tally(self.log)
+        self.health = Health(lab, self.log, "once" if once else "watch")
+        # People's decisions (SIGUSR1 from lenslane decide) and config reloads (SIGHUP): lenslane.decide.desk.
+        self.desk = Desk(lab, self.log, self._use_config)
 
     # -- start and stop ----------------------------------------------------------
 
     def run(self) -> int:
-        # Bound once: a logger proxy would bind itself again on every line.
-        self.log = configure_logging(sys.stderr if self.once else sys.stdout).bind()
-        self.tally = Tally(self.log)
-        self.health = Health(self.lab, self.log, "once" if self.once else "watch")
-        try:
-            lock = _lock_waiting(self.lab.root)
-        except LabLocked as exc:
-            self.log.error("lab locked", lab=str(self.lab.root), lock=str(exc.path), holder_pid=exc.holder,
-                           message="another lenslane watch is working on this lab; refusing to start")
+        lock = self.health.lock()
+        if lock is None:
             return EXIT_LAB_LOCKED
-        self.health.started(lock)
         previous = {number: signal.signal(number, self._on_stop) for number in (signal.SIGTERM, signal.SIGINT)}
         previous[signal.SIGALRM] = signal.signal(signal.SIGALRM, self.clock.on_alarm)
-        # People's decisions (SIGUSR1 from lenslane decide) and config reloads (SIGHUP): lenslane.decide.desk.
-        self.desk = Desk(self.lab, self.log, self._use_config)
         previous[signal.SIGUSR1] = signal.signal(signal.SIGUSR1, lambda *_: self._wake(self.desk.wake))
         if not self.once:
             previous[signal.SIGHUP] = signal.signal(signal.SIGHUP, lambda *_: self._wake(self.desk.ask_reload))
@@ -123,10 +97,7 @@ class Daemon:
 
     def _run_locked(self) -> int:
         lab = self.lab
-        self.log.info("starting", lab=str(lab.root), mode="once" if self.once else "watch", version=__version__,
-                      pid=os.getpid(), watch=lab.config.watch.model_dump())
-        self.log.info("chain", stages=[link.stage.name for link in lab.host.chain], disabled=lab.host.disabled,
-                      config_sha256=lab.host.config_sha256)
+        self.tally.starting(lab, "once" if self.once else "watch")
         claimed = lab.recover()
         if claimed:
             self.log.info("recovering", claimed=len(claimed),
@@ -156,9 +127,8 @@ class Daemon:
         if self.stopping:
             self.log.info("stopping", signal=self.stop_signal, done=self.tally.total)
         if self.once:
-            if self.stats:
-                print(json.dumps({"orders": self.tally.total, "stage_seconds": self.lab.stage_seconds}))
-            print(self.tally.summary(len(self.left), self.stop_signal if self.stopping else None), flush=True)
+            self.tally.print_summary(len(self.left), self.stop_signal if self.stopping else None,
+                                     self.lab.stage_seconds if self.stats else None)
         return EXIT_OK
 
     def _on_stop(self, signum: int, frame: Any) -> None:

@@ -10,17 +10,32 @@ lock file, where ``lenslane status`` finds it.
 from __future__ import annotations
 
 import errno
+import time
 from datetime import datetime, timezone
 from typing import Any, Callable
 
 from lenslane.lab.errors import OutputBlocked
-from lenslane.lab.files import printable, write_lock_state
+from lenslane.lab.files import LabLocked, lock_lab, printable, write_lock_state
 from lenslane.lab.folder import Lab
 from lenslane.watch.retry import Backoff
 
 #: Steps that fail for one entry (not for the whole lab): tried this many times, then the entry is set aside.
 ENTRY_STEPS = frozenset({"claim", "read", "archive"})
 ENTRY_TRIES = 5
+#: A `lenslane decide` applying a decision while no engine runs holds the lab's lock for a moment
+#: (well under a second): an engine starting meanwhile waits this long for it before giving up (s).
+LOCK_WAIT_SECONDS = 3.0
+
+
+def _lock_waiting(root: Any) -> int:
+    deadline = time.monotonic() + LOCK_WAIT_SECONDS
+    while True:
+        try:
+            return lock_lab(root)
+        except LabLocked:
+            if time.monotonic() >= deadline:
+                raise
+            time.sleep(0.05)
 #: What :meth:`Health.retrying` returns when a stop was asked while it waited.
 STOPPED = object()
 
@@ -33,14 +48,21 @@ class Health:
         self.log = log
         self.mode = mode
         self.retry_max_seconds = lab.config.watch.retry_max_seconds
-        self.lock: int | None = None
+        self.lock_fd: int | None = None
         self.since = ""
         self.entry_tries: dict[str, Backoff] = {}  # inbox names whose claim or read failed, with their waits
 
-    def started(self, lock: int) -> None:
-        self.lock = lock
+    def lock(self) -> int | None:
+        """Take the lab's lock (waiting a moment for a ``lenslane decide``) and write the state; ``None``: held."""
+        try:
+            self.lock_fd = _lock_waiting(self.lab.root)
+        except LabLocked as exc:
+            self.log.error("lab locked", lab=str(self.lab.root), lock=str(exc.path), holder_pid=exc.holder,
+                           message="another lenslane watch is working on this lab; refusing to start")
+            return None
         self.since = datetime.now(timezone.utc).isoformat(timespec="seconds").replace("+00:00", "Z")
         self.write_state()
+        return self.lock_fd
 
     def blocked(self, exc: OutputBlocked, delay: float, **fields: Any) -> None:
         error = exc.error
@@ -113,8 +135,8 @@ class Health:
         not_taken = self.lab.aside.listed()
         if not_taken:
             self.log.warning("health", not_taken=len(not_taken), entries=not_taken)
-        if self.lock is not None:
+        if self.lock_fd is not None:
             try:
-                write_lock_state(self.lock, {"since": self.since, "mode": self.mode, "not_taken": not_taken})
+                write_lock_state(self.lock_fd, {"since": self.since, "mode": self.mode, "not_taken": not_taken})
             except OSError as exc:
                 self.log.warning("state not written", error=str(exc))

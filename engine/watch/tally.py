@@ -1,10 +1,14 @@
-"""What the loop tells: one log line per order made final, and the counts behind ``--once``'s summary."""
+"""What the loop tells: its lines at start, one log line per order made final, ``--once``'s summary."""
 from __future__ import annotations
 
+import json
+import os
 import time
 from collections import Counter
 from typing import Any
 
+from lenslane import __version__
+from lenslane.lab.folder import Lab
 from lenslane.lab.outcomes import Processed
 
 
@@ -42,6 +46,19 @@ class Tally:
         self.counts[done.outcome] += 1
         if done.status == "review":
             self.review += 1
+
+    def starting(self, lab: Lab, mode: str) -> None:
+        """The lines at start: the lab, the mode, the version, the pid, the settings; the chain."""
+        self.log.info("starting", lab=str(lab.root), mode=mode, version=__version__, pid=os.getpid(),
+                      watch=lab.config.watch.model_dump())
+        self.log.info("chain", stages=[link.stage.name for link in lab.host.chain], disabled=lab.host.disabled,
+                      config_sha256=lab.host.config_sha256)
+
+    def print_summary(self, left: int, stop_signal: str | None, stage_seconds: dict[str, float] | None) -> None:
+        """``--once``'s standard output: with ``stage_seconds`` (``--stats``) a JSON line first, then the summary."""
+        if stage_seconds is not None:
+            print(json.dumps({"orders": self.total, "stage_seconds": stage_seconds}))
+        print(self.summary(left, stop_signal), flush=True)
 
     def summary(self, left: int, stop_signal: str | None) -> str:
         """``--once``'s one line: the counts, what was left in the inbox, what stopped it."""
