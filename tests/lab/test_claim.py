@@ -119,3 +119,35 @@ def test_the_lock_holder_is_read_from_proc_locks(tmp_path):
     assert lock_holder(info, None, LOCKS) == 4242
     other = os.stat_result((0o100644, 131086, 0, 1, 0, 0, 0, 0, 0, 0))
     assert lock_holder(other, 4242, LOCKS) is None
+
+
+def test_an_input_that_cannot_be_moved_is_set_aside_after_its_tries_and_the_batch_goes_on(lab, monkeypatch):
+    import errno
+
+    import structlog
+
+    import lenslane.lab.commit
+    from lenslane.watch.health import ENTRY_TRIES, Health
+
+    for order_id in ("MOVE-1", "MOVE-2", "MOVE-3"):
+        _send(lab, f"{order_id}.json", order_id)
+        lab.consider(f"{order_id}.json", moved=True)
+    real_rename, tries = lenslane.lab.commit.rename_noreplace, []
+
+    def move_fails_for_the_second(source, target):
+        if source.endswith("MOVE-2.json"):
+            tries.append(source)
+            raise OSError(errno.EIO, "Input/output error")
+        return real_rename(source, target)
+
+    monkeypatch.setattr(lenslane.lab.commit, "rename_noreplace", move_fails_for_the_second)
+    health, waits = Health(lab, structlog.get_logger(), "watch"), []
+    with structlog.testing.capture_logs() as logs:
+        done = health.retrying(lambda seconds: waits.append(seconds) or False, lab.commit, lambda exc, delay: None,
+                               goes_on=True)
+    assert [p.order_id for p in done] == ["MOVE-1", "MOVE-3"] and lab.uncommitted == 0
+    assert len(tries) == ENTRY_TRIES and waits == [0.5, 1.0, 2.0, 4.0]  # doubling from 0.5 s, as the README says
+    assert [Claims.original_name(n) for n in os.listdir(lab.work)] == ["MOVE-2.json"]  # left in place
+    [entry] = lab.aside.listed()
+    assert (entry["folder"], entry["step"], entry["tries"]) == ("work", "archive", ENTRY_TRIES)
+    assert [line["event"] for line in logs] == ["not taken", "health"]

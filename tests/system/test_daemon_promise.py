@@ -182,6 +182,7 @@ def test_an_entry_that_cannot_be_claimed_is_left_in_place_and_blocks_nothing(unm
     not_taken = watch.wait_for("not taken", timeout=GIVE_UP_SECONDS)
     assert not_taken["file"] == "d.json" and not_taken["step"] == "claim" and not_taken["tries"] >= 2
     assert stuck.is_dir()  # left in place
+    assert [e["file"] for e in watch.wait_for("health")["entries"]] == ["d.json"]
     status = json.loads(subprocess.run([*_lenslane(), "status", str(lab), "--json"], capture_output=True,
                                        text=True, check=True).stdout)
     assert [(e["file"], e["step"]) for e in status["not_taken"]] == [("d.json", "claim")]
