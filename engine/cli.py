@@ -131,12 +131,17 @@ def _print_table(rows: list[tuple[str, ...]]) -> None:
 
 
 def cmd_watch(args) -> int:
-    from lenslane.lab.folder import Lab
+    from lenslane.watch.daemon import run
 
-    lab = Lab(Path(args.lab), _host(Path(args.lab), args.trace_hooks))
-    from lenslane.watch.daemon import run_daemon, run_once
+    return run(Path(args.lab), _host(Path(args.lab), args.trace_hooks), once=args.once, stats=args.stats)
 
-    return run_once(lab, stats=args.stats) if args.once else run_daemon(lab)
+
+def cmd_status(args) -> int:
+    from lenslane.lab.status import lab_status, render
+
+    status = lab_status(Path(args.lab))
+    print(json.dumps(status, indent=1, ensure_ascii=False) if args.json else render(status))
+    return 0
 
 
 def cmd_queue(args) -> int:
@@ -196,6 +201,14 @@ def build_parser() -> argparse.ArgumentParser:
                      help="with --once: also print the time spent in each stage, as one JSON line")
     sub.add_argument("--trace-hooks", action="store_true", help="print every hook call to standard error")
     sub.set_defaults(func=cmd_watch)
+
+    sub = commands.add_parser("status", help="the lab at a glance: engine, folders, entries not taken, audit log",
+                              description="Whether an engine runs on LAB (pid, since when), how many entries each "
+                              "folder holds, the oldest waiting order's age, the entries the engine could not take "
+                              "and why, and the audit log's last record and size. Reads only.")
+    sub.add_argument("lab", metavar="LAB")
+    sub.add_argument("--json", action="store_true", help="the same as JSON, for monitoring")
+    sub.set_defaults(func=cmd_status)
 
     sub = commands.add_parser("preview", help="print the result of one order file, writing nothing",
                               description="Run one order file through the chain and print the result JSON.")
