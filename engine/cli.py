@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 
 from lenslane import __version__
-from lenslane.contract.models import CAUTION
+from lenslane.vocabulary import CAUTION
 
 
 def _host(lab: Path | None, trace: bool = False):
@@ -111,21 +111,39 @@ def cmd_audit_keygen(args) -> int:
 
 
 def cmd_explain(args) -> int:
-    from lenslane.report.explain import configurations, order_story, render, render_configurations
+    from lenslane.report import configurations, order_story, render_configurations, render_text
 
     story = order_story(Path(args.lab), args.order_id)
-    if args.json:
+    if args.html and story["found"]:
+        from lenslane.web.page import render_order_page
+
+        Path(args.html).write_text(render_order_page(Path(args.lab), args.order_id), encoding="utf-8")
+        print(f"lenslane: wrote the story of {args.order_id} to {args.html}")
+    elif args.json:
         if args.config and story["found"]:
             story["configurations"] = configurations(Path(args.lab), story)
         print(json.dumps(story, indent=1, ensure_ascii=False))
     elif story["found"]:
-        print(render(story))
+        print(render_text(story))
         if args.config:
             print()
             print(render_configurations(configurations(Path(args.lab), story)))
     else:
-        print(f"lenslane: {render(story)}", file=sys.stderr)
+        print(f"lenslane: {render_text(story)}", file=sys.stderr)
     return 0 if story["found"] else 1
+
+
+def cmd_serve(args) -> int:
+    from lenslane.web.serve import ServeRefused, serve
+
+    try:
+        return serve(Path(args.lab), args.host, args.port)
+    except ServeRefused as exc:
+        print(f"lenslane: {exc}", file=sys.stderr)
+        return 2
+    except OSError as exc:
+        print(f"lenslane: cannot serve on {args.host}:{args.port}: {exc}", file=sys.stderr)
+        return 2
 
 
 def cmd_preview(args) -> int:
@@ -136,13 +154,12 @@ def cmd_preview(args) -> int:
     raw = Path(args.file).read_bytes()
     try:
         order, parsed = read_order(raw, host.settings.materials)
-        result = Pipeline(host).run(order, parsed).result
+        # Writes nothing and tells nobody: no hook with side effects (lenslane_result_ready) runs.
+        result = Pipeline(host, side_effects=False).run(order, parsed).result
     except OrderRejected as exc:
         problems = exc.problems
     except StageFailure as exc:
-        problems = [{"field": f"(stage {exc.stage})", "message": exc.message}]
-    except Exception as exc:  # e.g. a result_ready hook that raised: the same verdict as the inbox gives
-        problems = [{"field": "(engine)", "message": f"{type(exc).__name__}: {exc}"}]
+        problems = [{"field": exc.field, "message": exc.message}]
     else:
         print(json.dumps(result, indent=1, ensure_ascii=False))
         return 0
@@ -161,23 +178,40 @@ def cmd_plugins(args) -> int:
             position, enabled = str(host.config.engine.chain.index(name) + 1), "no (disabled)"
         else:
             position, enabled = "-", "no (not in engine.chain)"
-        rows.append((name, position, enabled, info.origin, info.version, info.plugin))
+        rows.append((name, position, enabled, info.origin, info.version, info.plugin.name))
     rows[1:] = sorted(rows[1:], key=lambda r: (r[1] == "-", int(r[1]) if r[1] != "-" else 0, r[0]))
-    widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
-    for row in rows:
-        print("  ".join(cell.ljust(width) for cell, width in zip(row, widths)).rstrip())
+    _print_table(rows)
+    with_stages = {info.plugin.name for info in host.stages.values()}
+    hook_only = [info for name, info in host.plugins.items() if name not in with_stages]
+    if hook_only:
+        print()
+        print("plugins without stages (hooks only):")
+        _print_table([("plugin", "from", "version", "hooks")] + [
+            (info.name, "built-in" if info.builtin else info.distribution, info.version, ", ".join(info.hooks))
+            for info in hook_only])
     if host.config.engine.blocked:
         print("blocked (not loaded): " + ", ".join(host.config.engine.blocked))
     return 0
 
 
+def _print_table(rows: list[tuple[str, ...]]) -> None:
+    widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
+    for row in rows:
+        print("  ".join(cell.ljust(width) for cell, width in zip(row, widths)).rstrip())
+
+
 def cmd_watch(args) -> int:
-    from lenslane.lab.folder import Lab
+    from lenslane.watch.daemon import run
 
-    lab = Lab(Path(args.lab), _host(Path(args.lab), args.trace_hooks))
-    from lenslane.watch.daemon import run_daemon, run_once
+    return run(Path(args.lab), _host(Path(args.lab), args.trace_hooks), once=args.once, stats=args.stats)
 
-    return run_once(lab, stats=args.stats) if args.once else run_daemon(lab)
+
+def cmd_status(args) -> int:
+    from lenslane.lab.status import lab_status, render
+
+    status = lab_status(Path(args.lab))
+    print(json.dumps(status, indent=1, ensure_ascii=False) if args.json else render(status))
+    return 0
 
 
 def cmd_queue(args) -> int:
@@ -238,6 +272,14 @@ def build_parser() -> argparse.ArgumentParser:
     sub.add_argument("--trace-hooks", action="store_true", help="print every hook call to standard error")
     sub.set_defaults(func=cmd_watch)
 
+    sub = commands.add_parser("status", help="the lab at a glance: engine, folders, entries not taken, audit log",
+                              description="Whether an engine runs on LAB (pid, since when), how many entries each "
+                              "folder holds, the oldest waiting order's age, the entries the engine could not take "
+                              "and why, and the audit log's last record and size. Reads only.")
+    sub.add_argument("lab", metavar="LAB")
+    sub.add_argument("--json", action="store_true", help="the same as JSON, for monitoring")
+    sub.set_defaults(func=cmd_status)
+
     sub = commands.add_parser("preview", help="print the result of one order file, writing nothing",
                               description="Run one order file through the chain and print the result JSON.")
     sub.add_argument("file", metavar="FILE")
@@ -247,7 +289,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     sub = commands.add_parser("plugins", help="list the stages and where they come from",
                               description="List every stage: its place in the chain, whether it is enabled, "
-                              "the distribution that provides it and its version.")
+                              "the distribution that provides it and its version; then the plugins that "
+                              "take part through hooks only.")
     sub.add_argument("--lab", metavar="LAB", help="use this lab's config (default: the built-in defaults)")
     sub.set_defaults(func=cmd_plugins)
 
@@ -292,8 +335,22 @@ def build_parser() -> argparse.ArgumentParser:
     sub.add_argument("order_id", metavar="ORDER")
     sub.add_argument("--json", action="store_true", help="the same story as JSON data")
     sub.add_argument("--config", action="store_true", help="also show the configuration in force")
+    sub.add_argument("--html", metavar="FILE", help="write the story as one self-contained web page (styles and "
+                     "pictures of the lens inline, no external link) to FILE")
     sub.set_defaults(func=cmd_explain)
 
+    from lenslane.web.serve import DEFAULT_HOST, DEFAULT_PORT, TOKEN_VARIABLE
+
+    sub = commands.add_parser("serve", help="serve the lab's web page: the queue, each order, decisions by click",
+                              description="Serve the lab's web page: the orders awaiting a person, each order's "
+                              "story with pictures of the lens, a search, and the decision form. Loopback only by "
+                              f"default; any other address needs an access token in {TOKEN_VARIABLE} (at least 16 "
+                              "characters) and refuses to start without one. The server holds no lock and writes "
+                              "only through the decision mechanism.")
+    sub.add_argument("lab", metavar="LAB")
+    sub.add_argument("--host", default=DEFAULT_HOST, help=f"address to listen on (default {DEFAULT_HOST})")
+    sub.add_argument("--port", type=int, default=DEFAULT_PORT, help=f"port (default {DEFAULT_PORT}; 0: any free port)")
+    sub.set_defaults(func=cmd_serve)
     sub = commands.add_parser("queue", help="list what waits for a person, oldest first",
                               description="Orders in review/ with their flags, and held orders (another version of "
                               "a published order) with what differs, field by field; each with its age.")
@@ -329,11 +386,15 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
+    from lenslane.chain.host import PluginError
     from lenslane.config import ConfigError
 
     args = build_parser().parse_args(argv)
     try:
         return args.func(args)
+    except PluginError as exc:
+        print(f"lenslane: bad plugin: {exc}", file=sys.stderr)
+        return 2
     except ConfigError as exc:
         print(f"lenslane: bad config: {exc}", file=sys.stderr)
         return 2

@@ -10,7 +10,7 @@ import hashlib
 import json
 import tomllib
 from importlib import resources
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Annotated, Any, Literal, Mapping
 
@@ -70,6 +70,8 @@ class LabConfig(_Section):
     audit: AuditSettings = AuditSettings()
     materials: dict[str, Material] = Field(default_factory=dict)
     stages: dict[str, dict[str, Any]] = Field(default_factory=dict)
+    #: ``[plugins.<name>]``: the settings of a plugin, handed to its ``lenslane_configure`` hook.
+    plugins: dict[str, dict[str, Any]] = Field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -78,6 +80,9 @@ class LabSettings:
 
     cylinder_form: str
     materials: Mapping[str, Material]
+    stage_params: Mapping[str, Any] = field(default_factory=dict)
+    """Every chained stage's validated parameters, by stage name: a stage whose result depends on another's
+    settings (the exact tilt compensation on the lens geometry) reads them here."""
 
 
 def format_errors(exc: ValidationError, prefix: str = "") -> str:

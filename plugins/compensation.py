@@ -13,14 +13,12 @@ from typing import Annotated, Any, Literal, Mapping, NamedTuple
 from pydantic import BaseModel, ConfigDict, Field
 
 from lenslane import Change, Flag
-from lenslane.report.explain import number, power_text
+from lenslane.report.notation import number, power_text
 from lenslane.plugins.optics.power import PowerMatrix, power_matrix, sphero_cylinder
 from lenslane.plugins.optics.tolerance import MeridianChange, axis_shift_deg, axis_tolerance, principal_meridian_changes
+from lenslane.vocabulary import CAUTION, Design
 
 Policy = Literal["always", "above_tolerance", "never"]
-Design = Literal["single_vision", "progressive", "bifocal"]
-
-CAUTION = "Results are for a licensed eye-care professional to verify; local codes and licensed practice prevail."
 
 
 class CompensationParams(BaseModel):

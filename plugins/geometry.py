@@ -10,15 +10,17 @@ Every value is proposed as its own change, with the method that made it.
 """
 from __future__ import annotations
 
+import math
 from functools import lru_cache
 from typing import Annotated, NamedTuple
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
 from lenslane import Change, Flag, Stage, hookimpl
+from lenslane.plugins.optics.asworn import best_form, off_axis_record
 from lenslane.plugins.optics.front_curve import (
-    FRONT_CURVE_METHODS, ROTATION_DISTANCE_MM, FrontCurveRequest, NoBestForm, front_curve, front_curve_method,
-    nearest_stocked_base, stocked_at_least,
+    FRONT_CURVE_METHODS, ROTATION_DISTANCE_MM, FrontCurveMethod, FrontCurveRequest, NoBestForm, front_curve,
+    front_curve_method, nearest_stocked_base, register_front_curve_method, stocked_at_least,
 )
 from lenslane.plugins.optics.outline import (
     DEFAULT_EXPONENT, blank_diameter_from_farthest_mm, decentration, modelled_outline, optical_centre,
@@ -26,6 +28,7 @@ from lenslane.plugins.optics.outline import (
 from lenslane.plugins.optics.power import power_matrix, principal_powers, spherical_equivalent
 from lenslane.plugins.optics.prism import resultant_prism
 from lenslane.plugins.optics.surfaces import front_surface_power, toric_back_surface
+from lenslane.plugins.optics.tilt import tilt_obliquity
 from lenslane.plugins.optics.thickness import (
     EdgedLens, LensNotMakeable, LensRequest, LensShape, OutlineGrid, edged_lenses, lens_weight_g, outline_grid,
 )
@@ -80,6 +83,25 @@ DEFAULT_BASES: dict[str, list[float]] = {
 STOCK_MATCH_D = 0.005
 
 BaseCurve = Annotated[float, Field(ge=0, le=14)]
+
+EXACT_BEST_FORM = "exact_best_form"
+EXACT_BEST_FORM_TITLE = (
+    "the stocked base whose lens (this surfacing power, its own centre thickness, worn at the frame's tilt) has "
+    "the least RMS of the largest meridional error at 20° and 30° of gaze up, down, nasal and temporal, by "
+    "real-ray trace with the eye turning about its centre of rotation; errors relative to the lens's own power on "
+    "the line of sight")
+EXACT_BEST_FORM_SOURCE = ("Spencer & Murty, JOSA 52:672, 1962 (ray trace); Thibos, Wheeler & Horner, Optom Vis Sci "
+                          "74:367, 1997 (power vectors); Atchison, Applied Optics 31:3579, 1992 (lens form judged "
+                          "off axis)")
+
+
+def _judged_in_the_stage(request: FrontCurveRequest) -> float:
+    # The exact best form judges whole lenses on the lab's stock: only the geometry stage has them.
+    raise NoBestForm("the exact best form chooses among the stocked bases' lenses in the geometry stage only")
+
+
+register_front_curve_method(FrontCurveMethod(EXACT_BEST_FORM, _judged_in_the_stage, EXACT_BEST_FORM_TITLE,
+                                             EXACT_BEST_FORM_SOURCE))
 Positive = Annotated[float, Field(gt=0)]
 
 
@@ -331,15 +353,19 @@ def centre_height(order, eye: str, params: GeometryParams) -> tuple[float, dict]
     return height, {**inputs, "reference": "optical centre at the fit height"}
 
 
-def thinning_prism(view, params: GeometryParams) -> float:
-    """The yoked base-down thinning prism (Δ) of a progressive pair by the lab's rule; 0 when it does not apply."""
+def thinning_prism(view, params: GeometryParams, surfacings: dict | None = None) -> float:
+    """The yoked base-down thinning prism (Δ) of a progressive pair by the lab's rule; 0 when it does not apply.
+
+    ``surfacings`` (eye → power) stands for the result's surfacing powers when given.
+    """
     rule = params.thinning_prism
     order = view.order
     if order.lens.design != "progressive" or rule.fraction_of_add == 0.0:
         return 0.0
     adds = [getattr(order.rx, eye).add or 0.0 for eye in view.eyes]
-    verticals = [_matrix(view.get(f"lenses.{eye}.surfacing")).yy for eye in view.eyes
-                 if view.get(f"lenses.{eye}.surfacing") is not None]
+    if surfacings is None:
+        surfacings = {eye: view.get(f"lenses.{eye}.surfacing") for eye in view.eyes}
+    verticals = [_matrix(surfacing).yy for surfacing in surfacings.values() if surfacing is not None]
     if max(adds) >= rule.add_from_d or any(vertical > rule.plus_from_d for vertical in verticals):
         return rule.fraction_of_add * max(adds)
     return 0.0
@@ -459,6 +485,10 @@ def _own_choice(view, shared: _Shared, lens: _Eye, params: GeometryParams) -> _C
     fit = view.order.fit
     request = FrontCurveRequest(lens.sphere, lens.cylinder, lens.axis, index, params.rotation_distance_mm, lens.eye,
                                 fit.vertex_mm, fit.pantoscopic_deg, fit.face_form_deg)
+    if lens.method == EXACT_BEST_FORM:
+        best = _exact_best_form(view, shared, lens, params, inputs)
+        if best is not None:
+            return best
     method = front_curve_method(lens.method)
     try:
         wanted = front_curve(method.name, request)
@@ -488,6 +518,34 @@ def _own_choice(view, shared: _Shared, lens: _Eye, params: GeometryParams) -> _C
             inputs["nearest_stocked_d"] = nearest
     return _Choice(trial, f"{method.title}, snapped to the nearest stocked base", method.source, inputs, flags,
                    sentence)
+
+
+def _exact_best_form(view, shared: _Shared, lens: _Eye, params: GeometryParams, inputs: dict) -> _Choice | None:
+    """Among the stocked bases that make the lens (a concave back, within the hard limits), the one whose lens has
+    the least off-axis error by real-ray trace; None when no base makes it (the rule's fallback then applies)."""
+    fit = view.order.fit
+    theta, tangential = tilt_obliquity(fit.pantoscopic_deg or 0.0, fit.face_form_deg or 0.0, lens.eye)
+    trials: dict[float, _Trial] = {}
+
+    def thickness_of(base: float) -> float:
+        trial = trials[base] = _try(shared, lens, base, params)
+        if trial.problems:
+            raise LensNotMakeable(trial.problems[0])
+        return trial.solved.center_mm
+
+    try:
+        best = best_form(lens.matrix, shared.material.index, theta, tangential, lens.eye, lens.stock, thickness_of,
+                         params.rotation_distance_mm)
+    except ValueError:
+        return None
+    chosen = best.bases_d.index(best.base_d)
+    inputs = {**inputs, "index": shared.material.index, "rotation_distance_mm": params.rotation_distance_mm,
+              "obliquity_deg": math.degrees(theta),
+              "candidates": [{"base_d": base, "score_d": float(score) if math.isfinite(score) else None,
+                              "center_thickness_mm": float(centre_mm)}
+                             for base, score, centre_mm in zip(best.bases_d, best.score_d, best.center_mm)],
+              "off_axis": off_axis_record(best.errors, chosen)}
+    return _Choice(trials[best.base_d], EXACT_BEST_FORM_TITLE, EXACT_BEST_FORM_SOURCE, inputs, [], "")
 
 
 def _matched(shared: _Shared, lenses: list[_Eye], choices: list[_Choice], params: GeometryParams) -> list[_Choice]:
@@ -650,19 +708,52 @@ def run(view, params: GeometryParams):
                        "the lens geometry was not worked out; check the lab's chain.", eye)
     if all(surfacing is None for surfacing in surfacings.values()):
         return  # no lens to make, only flags to raise: the material is not looked up
-    shared = _shared(view, params, _outline(view, params))
-    thinning = thinning_prism(view, params)
-    lenses = [_prepare(view, eye, surfacing, params, thinning)
-              for eye, surfacing in surfacings.items() if surfacing is not None]
-    choices = [_own_choice(view, shared, lens, params) for lens in lenses]
-    if len(lenses) == 2 and view.order.lens.front_curve_d is None:
-        choices = _matched(shared, lenses, choices, params)
+    shared, thinning, lenses, choices = _chosen(view, params, surfacings)
     for lens, choice in zip(lenses, choices):
         yield from choice.flags
         if isinstance(choice.trial.solved, LensNotMakeable):
             yield _not_makeable(lens, shared, choice.trial)
         else:
             yield from _eye_geometry(view, params, shared, lens, choice, thinning)
+
+
+def _chosen(view, params: GeometryParams, surfacings: dict):
+    """The pair's lenses and front curves for these surfacing powers (eye → power, or None for no lens)."""
+    shared = _shared(view, params, _outline(view, params))
+    thinning = thinning_prism(view, params, surfacings)
+    lenses = [_prepare(view, eye, surfacing, params, thinning)
+              for eye, surfacing in surfacings.items() if surfacing is not None]
+    choices = [_own_choice(view, shared, lens, params) for lens in lenses]
+    if len(lenses) == 2 and view.order.lens.front_curve_d is None:
+        choices = _matched(shared, lenses, choices, params)
+    return shared, thinning, lenses, choices
+
+
+def planned_fronts(view, surfacings: dict, params: GeometryParams | None = None) -> dict[str, float]:
+    """The front curve this stage gives each eye's lens for these surfacing powers (eye → power).
+
+    For a stage before this one whose optics depend on the lens's shape (the
+    exact tilt compensation): the same choice as :func:`run` — the rule, the
+    stock, a concave back, matched fronts — with ``params`` the lab's
+    ``[stages.geometry]``.
+    """
+    _, _, lenses, choices = _chosen(view, params or GeometryParams(), surfacings)
+    return {lens.eye: choice.trial.front_d for lens, choice in zip(lenses, choices)}
+
+
+def planned_centre_mm(view, eye: str, surfacings: dict, front_d: float, params: GeometryParams | None = None) -> float:
+    """The centre thickness (mm) this stage solves for the eye's lens on a given front curve.
+
+    Raises :class:`~lenslane.plugins.optics.thickness.LensNotMakeable` when no
+    thickness makes the lens.
+    """
+    params = params or GeometryParams()
+    shared = _shared(view, params, _outline(view, params))
+    lens = _prepare(view, eye, surfacings[eye], params, thinning_prism(view, params, surfacings))
+    trial = _try(shared, lens, front_d, params)
+    if isinstance(trial.solved, LensNotMakeable):
+        raise trial.solved
+    return trial.solved.center_mm
 
 
 def _not_makeable(lens: _Eye, shared: _Shared, trial: _Trial) -> Flag:

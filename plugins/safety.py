@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import math
 from datetime import datetime, timezone
-from typing import Annotated, Literal
+from typing import Annotated
 
 from pydantic import BaseModel, ConfigDict, Field
 
@@ -24,12 +24,11 @@ from lenslane.plugins.optics.power import power_matrix, principal_powers, spheri
 from lenslane.plugins.optics.prentice import (
     READING_DEPTH_MM, prentice_prism, transverse_chromatic_aberration, vertical_imbalance,
 )
+from lenslane.vocabulary import CAUTION, Mount
 
-VERIFY = "Results are for a licensed professional to verify; local codes and licensed practice prevail."
 DROP_BALL = ("21 CFR 801.410: in the US every glass dress lens must be hardened and pass the drop-ball test "
              "(a 5/8-inch steel ball dropped from 50 inches)")
 
-Mount = Literal["full_rim", "grooved", "drilled"]
 Positive = Annotated[float, Field(gt=0)]
 
 
@@ -182,7 +181,7 @@ def _impact_checks(view, params: SafetyParams):
                 "impact-resistance-minor", "review" if glass else "warning",
                 f"The wearer, born {birth_year}, is about {age} in {year} (under {params.minor_age_years}) and the "
                 f"lens is {material}, not an impact-resistant material: confirm with the practice, or change to "
-                f"{' or '.join(params.impact_resistant_materials)}. {VERIFY}",
+                f"{' or '.join(params.impact_resistant_materials)}. {CAUTION}",
                 None, {"birth_year": birth_year, "age_years": age, "year": year, "material": material,
                        "minor_age_years": params.minor_age_years},
             )
@@ -192,14 +191,14 @@ def _impact_checks(view, params: SafetyParams):
             "impact-resistance-mount", "review" if glass else "warning",
             f"A {mount} mount holds the lens by its edge or holes, where {material} can chip or crack: "
             f"an impact-resistant material ({', '.join(params.impact_resistant_materials)}) is advised; "
-            f"confirm the material with the practice. {VERIFY}",
+            f"confirm the material with the practice. {CAUTION}",
             None, {"mount": mount, "material": material},
         )
     if glass:
         yield Flag(
             "glass-hardening", "warning",
             f"The lens is glass ({material}): it must be hardened (heat or chemical tempering) and tested — {DROP_BALL}. "
-            f"Follow local rules where they differ. {VERIFY}",
+            f"Follow local rules where they differ. {CAUTION}",
             None, {"material": material, "regulation": "21 CFR 801.410"},
         )
 

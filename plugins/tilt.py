@@ -13,14 +13,26 @@ and why.
 from __future__ import annotations
 
 import math
+from typing import Literal, NamedTuple
 
-from pydantic import Field
+import numpy as np
+from pydantic import Field, model_serializer
 
 from lenslane import Flag, Stage, hookimpl
 from lenslane.plugins.compensation import (
     CompensationParams, Design, matrix_of, no_surfacing, not_applied, power_dict, propose, trade_notation,
 )
+from lenslane.contract.precision import present
+from lenslane.plugins.geometry import GeometryParams, planned_centre_mm, planned_fronts
+from lenslane.plugins.optics.asworn import (
+    coddington_vergence, exact_compensation, gaze_errors, largest_meridional_error, off_axis_record, power_elements,
+    worn_lenses,
+)
+from lenslane.plugins.optics.power import PowerMatrix
+from lenslane.plugins.optics.raytrace import RayMissedSurface
+from lenslane.plugins.optics.thickness import LensNotMakeable
 from lenslane.plugins.optics.tilt import compensate_tilt, martin_factor, tangential_meridian_deg, tilt_obliquity
+from lenslane.vocabulary import DESIGNS
 
 METHOD = ("exact inverse of Martin's tilt formula on the power matrix, F = S⁻ᵀ F_w S⁻¹ / k, "
           "k = 1 + sin²θ/(2n), S = I + (sec θ − 1) t tᵀ, cos θ = cos p · cos w")
@@ -28,7 +40,18 @@ SOURCE = ("Martin's formula, as given in Jalie, The Principles of Ophthalmic Len
           "System for Ophthalmic Dispensing; power-matrix generalisation: Harris, Optom Vis Sci 2002; "
           "Keating, Optom Vis Sci 1995")
 
-ALL_DESIGNS: list[Design] = ["single_vision", "progressive", "bifocal"]
+EXACT_METHOD = ("the surfacing power whose lens, traced with real rays (vector Snell's law through the spherical "
+                "front and toric back at the centre thickness the lens geometry gives it), tilted by θ about the "
+                "axis perpendicular to t with cos θ = cos p · cos w, has an as-worn vergence at the back-vertex "
+                "plane equal to the wanted power; Newton's method on the surfacing power matrix, the thickness "
+                "re-derived at each step")
+EXACT_SOURCE = ("Spencer & Murty, \"General ray-tracing procedure\", JOSA 52:672, 1962; Kneisly, JOSA 54:229, "
+                "1964 (wavefront curvature about the chief ray); Jalie, The Principles of Ophthalmic Lenses "
+                "(thickness); Thibos, Wheeler & Horner, Optom Vis Sci 74:367, 1997 (off-axis errors)")
+
+ALL_DESIGNS: list[Design] = list(DESIGNS)
+#: The solve is repeated at most this often when the solved powers make the geometry choose other front curves.
+_FRONT_ROUNDS = 4
 
 
 class TiltParams(CompensationParams):
@@ -38,6 +61,82 @@ class TiltParams(CompensationParams):
     """The designs whose surfacing power is compensated for pantoscopic tilt."""
     face_form_apply_to: list[Design] = Field(default_factory=lambda: list(ALL_DESIGNS))
     """The designs whose surfacing power is compensated for face form."""
+    method: Literal["martin", "exact"] = "martin"
+    """"martin": the inverse of Martin's thin-lens formula; "exact": the lens whose real-ray traced
+    as-worn power equals the wanted power, solved together with its front curve and centre thickness."""
+
+    @model_serializer(mode="wrap")
+    def _effective(self, handler):
+        # The default method is left out of the effective config, so the config hash (and with it every
+        # result) of a lab that does not choose "exact" stays what it was before the method existed.
+        data = handler(self)
+        if data.get("method") == "martin":
+            del data["method"]
+        return data
+
+
+class _Exact(NamedTuple):
+    """The exact compensation of one lens: its power matrix and what its change record adds."""
+
+    matrix: PowerMatrix
+    inputs: dict
+
+
+def _exact_pair(view, befores: dict, martins: dict, tilts: dict, index: float, form: str) -> dict[str, _Exact]:
+    """Solve the surfacing powers, the front curves and the thicknesses the geometry stage will give them, together.
+
+    The front curves are the geometry stage's choice for the pair's surfacing
+    powers (matched fronts included); each power is solved for its eye's front
+    (the thickness re-derived at every step), and again if the solved powers
+    make the geometry stage choose other fronts, until the fronts it chooses
+    are the ones solved for. Raises :class:`LensNotMakeable` (no lens can be
+    made) or :class:`RayMissedSurface` (a chief ray cannot get through).
+    """
+    geometry = view.settings.stage_params.get("geometry") or GeometryParams()
+    surfacings = dict(martins)
+    fronts, solved = None, {}
+
+    def powers(matrices):
+        return {eye: power_dict(matrix, befores[eye], form) for eye, matrix in matrices.items()}
+
+    for _ in range(_FRONT_ROUNDS):
+        chosen = planned_fronts(view, powers(surfacings), geometry)
+        if chosen == fronts:
+            break
+        fronts = chosen
+        for eye, before in befores.items():
+            theta, tangential = tilts[eye]
+
+            def thickness_of(candidates, eye=eye):
+                return [planned_centre_mm(view, eye, powers({**surfacings, eye: PowerMatrix(*c)}), fronts[eye],
+                                          geometry) for c in candidates]
+
+            solved[eye] = exact_compensation([matrix_of(before)], fronts[eye], index, theta, tangential, thickness_of)
+            surfacings[eye] = PowerMatrix(*(float(v) for v in solved[eye].surfacing[0]))
+    else:
+        raise LensNotMakeable(f"the solved powers keep changing the front curves the lab would choose "
+                              f"({_FRONT_ROUNDS} rounds)")
+    exact = {}
+    for eye, before in befores.items():
+        theta, tangential = tilts[eye]
+        wanted, front, centre = matrix_of(before), fronts[eye], float(solved[eye].center_mm[0])
+        published = matrix_of(present(power_dict(surfacings[eye], before, form), "surfacing"))
+        lenses = worn_lenses([front, front], [surfacings[eye], published], centre, index, theta, tangential)
+        published_residual = float(largest_meridional_error(
+            np.array(wanted) - power_elements(coddington_vergence(lenses.take([1])))[0]))
+        errors = gaze_errors(lenses.take([0]), [wanted], [eye], geometry.rotation_distance_mm)
+        exact[eye] = _Exact(surfacings[eye], {
+            "method": "exact",
+            "martin_surfacing": power_dict(martins[eye], before, form),
+            "asworn_residual_d": float(solved[eye].residual_d[0]),
+            "published_asworn_residual_d": published_residual,
+            "newton_steps": solved[eye].steps,
+            "front_curve_d": front,
+            "center_thickness_mm": centre,
+            "rotation_distance_mm": geometry.rotation_distance_mm,
+            "off_axis": off_axis_record(errors),
+        })
+    return exact
 
 
 def _missing_fit(view, params: TiltParams, pantoscopic, face_form):
@@ -109,13 +208,25 @@ def run(view, params: TiltParams):
     form = view.settings.cylinder_form
     angles = (f"pantoscopic tilt {pantoscopic:.1f}°, face form {face_form:.1f}°"
               + (f" ({'; '.join(assumptions)})" if assumptions else ""))
-    for eye in view.eyes:
-        before = view.get(f"lenses.{eye}.surfacing")
+    befores = {eye: view.get(f"lenses.{eye}.surfacing") for eye in view.eyes}
+    tilts = {eye: tilt_obliquity(pantoscopic, face_form, eye) for eye in view.eyes}
+    martins = {eye: compensate_tilt(matrix_of(before), *tilts[eye], index)
+               for eye, before in befores.items() if before is not None}
+    exact: dict[str, _Exact] = {}
+    if params.method == "exact" and martins:
+        try:
+            exact = _exact_pair(view, {eye: befores[eye] for eye in martins}, martins, tilts, index, form)
+        except (LensNotMakeable, RayMissedSurface) as exc:
+            yield Flag("tilt-exact-not-possible", "warning",
+                       f"The exact tilt compensation needs the lenses' shape, and no lens can be made for these "
+                       f"powers and this frame ({exc}); Martin's formula is used instead.", None, {})
+    for eye, before in befores.items():
         if before is None:
             yield no_surfacing("tilt", eye)
             continue
-        theta, tangential = tilt_obliquity(pantoscopic, face_form, eye)
-        after = power_dict(compensate_tilt(matrix_of(before), theta, tangential, index), before, form)
+        theta, tangential = tilts[eye]
+        method, source = (METHOD, SOURCE) if eye not in exact else (EXACT_METHOD, EXACT_SOURCE)
+        after = power_dict(martins[eye] if eye not in exact else exact[eye].matrix, before, form)
         obliquity_deg = math.degrees(theta)
         meridian = tangential_meridian_deg(tangential)
         inputs = {
@@ -136,8 +247,14 @@ def run(view, params: TiltParams):
             f"{meridian:.0f}° meridian (index {index:.3f}), so it is made {trade_notation(before)} → "
             f"{trade_notation(after)} for its tilted effect to equal the wanted power."
         )
+        if eye in exact:
+            inputs.update(exact[eye].inputs)
+            reason = reason[:-1] + (
+                f", traced with real rays through its front of {exact[eye].inputs['front_curve_d']:.2f} D and "
+                f"centre thickness of {exact[eye].inputs['center_thickness_mm']:.1f} mm (Martin's thin-lens "
+                f"formula would give {trade_notation(exact[eye].inputs['martin_surfacing'])}).")
         yield from propose(
-            "tilt", eye, before, after, params, reason=reason, method=METHOD, source=SOURCE, inputs=inputs,
+            "tilt", eye, before, after, params, reason=reason, method=method, source=source, inputs=inputs,
             described=f"Tilt compensation for {angles} (obliquity {obliquity_deg:.1f}°)",
         )
 

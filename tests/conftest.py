@@ -3,13 +3,19 @@ from __future__ import annotations
 
 import copy
 import json
+import os
 from pathlib import Path
 
 import pytest
 
-from lenslane.chain.host import start_host
+from lenslane.chain.host import NO_AUTOLOAD_VARIABLE, PLUGINS_VARIABLE, start_host
 from lenslane.config import LabConfig
 from lenslane.lab.folder import Lab, init_lab
+
+# The engine's own tests run the built-in plugins only, here and in the processes they start, so a plugin
+# installed in this environment changes no outcome. A test that wants installed plugins asks for them.
+os.environ[NO_AUTOLOAD_VARIABLE] = "1"
+os.environ.pop(PLUGINS_VARIABLE, None)
 
 REPO = Path(__file__).resolve().parent.parent
 SAMPLES = REPO / "inbox_samples"

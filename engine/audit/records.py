@@ -16,8 +16,8 @@ once into the chain as a ``define`` record and referred to by the first
   The record keeps ``[ref, [numbers…]]``; :func:`fill` puts the numbers back and
   gives the change exactly as the stage made it;
 - the **run**: engine version, the chain of stages, the plugins' distributions
-  and versions, and the configuration in force (itself a ``define`` of kind
-  ``config``).
+  and versions (the host's provenance), and the configuration in force (itself
+  a ``define`` of kind ``config``).
 
 A define record holds ``sha256`` (of its body's canonical JSON) and the body, so
 a text cannot be swapped without breaking either that hash or the chain.
@@ -168,11 +168,10 @@ def ref_of(sha256: str) -> str:
     return sha256[:REF_LENGTH]
 
 
-def run_definition(version: str, config_sha256: str, config: dict[str, Any], stages: list[str],
-                   plugins: dict[str, dict[str, str]]) -> dict[str, Any]:
-    """What ran an order: the engine, its chain, the plugins' distributions and versions, the configuration."""
-    return {"engine_version": version, "config_sha256": config_sha256, "config": config, "stages": stages,
-            "plugins": plugins}
+def run_definition(provenance: dict[str, Any], config: dict[str, Any]) -> dict[str, Any]:
+    """What ran an order: the host's provenance (the engine's version, the config's digest, the chain and each
+    stage's distribution and version, the plugins taking part through hooks) and the configuration itself."""
+    return {**provenance, "config": config}
 
 
 def pack(event: dict[str, Any], known: Callable[[str], bool]) -> list[dict[str, Any]]:
@@ -245,10 +244,15 @@ def refs_in(record: dict[str, Any]) -> list[str | None]:
 # --------------------------------------------------------------------------
 
 
-def received(name: str, size: int | None, sha256: str | None, at: str, claim: str,
+def received(name: str, size: int | None, sha256: str | None, at: str, claim: str | None,
              order: dict[str, Any] | None = None, kind: str | None = None) -> dict[str, Any]:
-    """The ``received`` part of an order's record: the input's own time, file and bytes, and who it came from."""
-    part: dict[str, Any] = {"at": at, "file": name, "size": size, "sha256": sha256, "claim": claim}
+    """The ``received`` part of an order's record: the input's own time, file and bytes, and who it came from.
+
+    ``claim``: the inbox's claim key (``None`` for a version a person's decision sent through the chain).
+    """
+    part: dict[str, Any] = {"at": at, "file": name, "size": size, "sha256": sha256}
+    if claim is not None:
+        part["claim"] = claim
     if kind:
         part["kind"] = kind
     if isinstance(order, dict):

@@ -22,6 +22,11 @@ PROJECT = "lenslane"
 hookspec = pluggy.HookspecMarker(PROJECT)
 hookimpl = pluggy.HookimplMarker(PROJECT)
 
+#: The version of the hook API: (major, minor). The minor grows when a hook or an argument is added
+#: (a plugin written for an older minor keeps working); the major grows when a hook changes or goes.
+#: A plugin checks it with ``lenslane.HOOK_API_VERSION >= (1, 0)`` or ``[0] == 1``.
+HOOK_API_VERSION: tuple[int, int] = (1, 0)
+
 
 # --------------------------------------------------------------------------
 # Registration: called once at start, never per order
@@ -29,7 +34,7 @@ hookimpl = pluggy.HookimplMarker(PROJECT)
 
 
 @hookspec
-def lenslane_stages() -> "Iterable[Stage]":
+def lenslane_stages() -> "Iterable[Stage] | None":
     """Contribute stages to the lab's chain.
 
     Called once when the engine starts. Return the :class:`lenslane.Stage`
@@ -56,7 +61,7 @@ def lenslane_stages() -> "Iterable[Stage]":
 
 
 @hookspec
-def lenslane_materials() -> "Mapping[str, Mapping[str, float]]":
+def lenslane_materials() -> "Mapping[str, Mapping[str, float]] | None":
     """Contribute lens materials to the lab's material table.
 
     Called once at start. Return a mapping of material key to
@@ -69,6 +74,37 @@ def lenslane_materials() -> "Mapping[str, Mapping[str, float]]":
     >>> @hookimpl
     ... def lenslane_materials():
     ...     return {"trivex-1.53": {"index": 1.532, "abbe": 45, "density": 1.11}}
+    """
+
+
+@hookspec
+def lenslane_configure(settings: "dict[str, Any]") -> None:
+    """Receive this plugin's ``[plugins.<name>]`` table from the lab config.
+
+    Called once at start, for every registered plugin that implements it, with
+    its own table (an empty dict when the config has none), whether or not its
+    stages are in the chain. Validate the table and keep what the plugin's
+    other hooks need; raise ``ValueError`` (a pydantic ``ValidationError`` is
+    one) to refuse it: the engine stops before any order, naming the key. A
+    ``[plugins.<name>]`` table for a plugin that does not implement this hook
+    stops the engine too. Stages take their settings from ``[stages.<name>]``
+    (``Stage.params``) instead.
+
+    Parameters
+    ----------
+    settings : dict
+        The plugin's ``[plugins.<name>]`` table, as TOML gives it.
+
+    Example
+    -------
+    >>> from pydantic import BaseModel, ConfigDict
+    >>> class Settings(BaseModel):
+    ...     model_config = ConfigDict(extra="forbid")
+    ...     queue: str = "held-orders"
+    >>> SETTINGS = {}
+    >>> @hookimpl
+    ... def lenslane_configure(settings):
+    ...     SETTINGS["current"] = Settings.model_validate(settings)
     """
 
 
@@ -116,11 +152,16 @@ def lenslane_run_stage(stage: "Stage", view: "OrderView", params: Any) -> "list[
 def lenslane_result_ready(order_id: str, result: Mapping[str, Any]) -> None:
     """Observe a finished result before it is published.
 
-    Called once per order that produced a result, after the last stage and
-    before the result is written. The result is read-only: it is the exact
+    Called once per order that produced a valid result, after the last stage
+    and before the result is written; each plugin's implementation on its own,
+    so a failure names that plugin. The result is read-only: it is the exact
     ``lens-order-result/1`` document that will be published. Use it to feed a
     lab's own systems; anything the hook wants recorded must instead be a
     stage's :class:`lenslane.Change`. An exception here fails the order.
+
+    It is the one hook with side effects, so ``lenslane preview`` does not call
+    it; an order redone after a crash calls it again (at least once, not
+    exactly once: make what it does idempotent, keyed by the order id).
 
     Parameters
     ----------

@@ -2,33 +2,54 @@
 
 The pipeline is the only place a result value is set. Each stage proposes
 changes and flags; the pipeline checks each change against what the stage may
-write, applies it, and records it in ``changes`` with the value before and
-after. So nothing reaches a result without a record, by construction.
+write and against JSON's numbers, applies it, and records it in ``changes``
+with the value before and after. The finished result is validated against the
+result model before anyone sees it. So nothing reaches a result without a
+record, and nothing the contract refuses reaches it at all, by construction.
 """
 from __future__ import annotations
 
 import copy
+import math
 import time
 from dataclasses import dataclass, field
+from types import TracebackType
 from typing import Any
 
-from lenslane import __version__
-from lenslane.chain.host import Host
-from lenslane.contract.models import CAUTION, RESULT_FORMAT, LensOrder
-from lenslane.contract.precision import present
-from lenslane.chain.stage import _ATOMS, LEVELS, Change, Flag, OrderView, copy_value
+from pydantic import ValidationError
 
-#: Bound on each stage's may-write memo, so a plugin writing ever-new fields cannot grow it without end.
-_WRITABLE_LIMIT = 4096
+from lenslane.chain import core
+from lenslane.chain.host import Host, PluginInfo
+from lenslane.chain.stage import Change, Flag, OrderView, Stage, copy_value
+from lenslane.contract.models import RESULT_FORMAT, LensOrder, LensOrderResult
+from lenslane.contract.precision import present
+from lenslane.vocabulary import CAUTION, EYES, LEVELS
 
 
 class StageFailure(Exception):
-    """A stage raised, proposed something malformed, or wrote outside its fields."""
+    """The chain failed this order: a stage raised, proposed something malformed, wrote outside its
+    fields or a value the contract refuses — or a plugin's hook raised.
 
-    def __init__(self, stage: str, message: str):
-        super().__init__(f"stage {stage!r} failed: {message}")
+    ``field`` says where, as a rejected order's reasons name it: ``(stage <name>)``,
+    or ``(result)`` when the result breaks the contract with no stage to blame.
+    """
+
+    def __init__(self, stage: str | None, message: str, field: str | None = None):
         self.stage = stage
         self.message = message
+        self.field = field or f"(stage {stage})"
+        super().__init__(f"{self.field}: {message}")
+
+
+class HookFailure(StageFailure):
+    """A plugin's per-order hook raised (or ran past the time limit); it is named with its distribution."""
+
+    def __init__(self, plugin: PluginInfo, hook: str, message: str, stage: str | None = None):
+        self.plugin = plugin
+        self.hook = hook
+        during = f" while stage {stage!r} ran" if stage else ""
+        super().__init__(stage, f"{message} ({plugin.distribution} {plugin.version}{during})",
+                         f"(plugin {plugin.name}: {hook})")
 
 
 @dataclass
@@ -40,18 +61,28 @@ class Outcome:
 
 
 class Pipeline:
-    def __init__(self, host: Host):
+    """The chain of one host, ready to run orders.
+
+    ``side_effects=False`` (``lenslane preview``) runs no hook that acts
+    outside the engine: ``lenslane_result_ready`` is not called.
+    """
+
+    def __init__(self, host: Host, side_effects: bool = True):
         self.host = host
         self.run_stage = host.hook.lenslane_run_stage
-        self.result_ready = host.hook.lenslane_result_ready
-        self.stage_names = [link.stage.name for link in host.chain]
-        self.engine_info = {
-            "version": __version__,
-            "config_sha256": host.config_sha256,
-            "stages": self.stage_names,
-        }
-        # Per stage: whether it may write a field, decided once per field (see _apply).
-        self._writable: dict[str, dict[str, tuple[str, ...] | None]] = {}
+        provenance = host.provenance
+        self.engine_info = {"version": provenance["engine_version"],
+                            **{k: v for k, v in provenance.items() if k != "engine_version"}}
+        pm = host.plugin_manager
+        # Each observer on its own, so a failure (or the order's time limit) names its plugin.
+        observers = [impl.plugin_name for impl in host.hook.lenslane_result_ready.get_hookimpls()]
+        self.result_ready = [
+            (host.plugins[name], pm.subset_hook_caller("lenslane_result_ready",
+                                                       [p for n, p in pm.list_name_plugin() if n != name and p is not None]))
+            for name in observers] if side_effects else []
+        # The code of each plugin's lenslane_run_stage wrapper, to tell a failing wrapper from its stage.
+        self.wrappers = {impl.function.__code__: host.plugins[impl.plugin_name]
+                         for impl in self.run_stage.get_hookimpls() if impl.plugin_name != "core"}
 
     def run(self, order: LensOrder, received: dict[str, Any]) -> Outcome:
         """Run every enabled stage in order; raise :class:`StageFailure` on any fault.
@@ -59,7 +90,7 @@ class Pipeline:
         ``received`` is the order as parsed from its file; it is echoed in the
         result unchanged.
         """
-        eyes = [e for e in ("right", "left") if getattr(order.rx, e) is not None]
+        eyes = [eye for eye in EYES if getattr(order.rx, eye) is not None]
         # ``state`` holds the lenses at full precision, ``shown`` the same tree rounded (present()), kept in
         # step by _apply: each value is rounded once, when it is set, for its record and for the result.
         state: dict[str, Any] = {"lenses": {eye: {} for eye in eyes}}
@@ -68,27 +99,23 @@ class Pipeline:
         flags: list[dict[str, Any]] = []
         timings: dict[str, float] = {}
         view = OrderView(order, state, self.host.settings)
-        clock = time.perf_counter
         for link in self.host.chain:
             stage = link.stage
-            started = clock()
-            writable = self._writable.get(stage.name)
-            if writable is None:
-                writable = self._writable[stage.name] = {}
+            started = time.perf_counter()
             try:
                 proposals = self.run_stage(stage=stage, view=view, params=link.params)
             except StageFailure:
                 raise
             except Exception as exc:  # a plugin fault fails the order, never the engine
-                raise StageFailure(stage.name, f"{type(exc).__name__}: {exc}") from exc
+                raise self._blame(stage, exc) from exc
             for proposal in proposals or ():
-                if type(proposal) is Change or isinstance(proposal, Change):
-                    changes.append(self._apply(stage, proposal, state, shown, eyes, writable))
+                if isinstance(proposal, Change):
+                    changes.append(_apply(stage, proposal, state, shown, eyes))
                 elif isinstance(proposal, Flag):
                     flags.append(_flag_record(stage.name, proposal, eyes))
                 else:
                     raise StageFailure(stage.name, f"proposed {proposal!r}, which is neither a Change nor a Flag")
-            timings[stage.name] = clock() - started
+            timings[stage.name] = time.perf_counter() - started
 
         status = "review" if any(f["level"] == "review" for f in flags) else "ready"
         result = {
@@ -102,57 +129,75 @@ class Pipeline:
             "engine": self.engine_info,
             "caution": CAUTION,
         }
-        if self.result_ready.get_hookimpls():
-            self.result_ready(order_id=order.order_id, result=copy.deepcopy(result))
+        _validate(result)
+        for plugin, observe in self.result_ready:
+            try:
+                observe(order_id=order.order_id, result=copy.deepcopy(result))
+            except Exception as exc:
+                raise HookFailure(plugin, "lenslane_result_ready", f"{type(exc).__name__}: {exc}") from exc
         return Outcome(result, timings)
 
-    @staticmethod
-    def _apply(stage, change: Change, state: dict[str, Any], shown: dict[str, Any], eyes: list[str],
-               writable: dict[str, tuple[str, ...] | None] | None = None) -> dict[str, Any]:
-        """Apply one change to ``state`` and its rounded twin ``shown``; return its record.
+    def _blame(self, stage: Stage, exc: Exception) -> StageFailure:
+        """The stage, or the ``lenslane_run_stage`` wrapper of another plugin when the fault is the wrapper's.
 
-        ``writable`` remembers, for this stage, each field it wrote as its split
-        path (None: it may not write it).
+        The engine's own implementation (``core``) is the one that calls the
+        stage: when the exception passed through it, the stage raised;
+        otherwise a wrapper raised on its own, and the innermost one is named.
         """
-        path = change.field
-        # What a stage may do with a field depends on the two names only: checked once, remembered.
-        parts = writable.get(path, False) if writable is not None else False
-        if parts is False:
-            parts = tuple(path.split(".")) if stage.may_write(path) else None
-            if writable is not None and len(writable) < _WRITABLE_LIMIT:
-                writable[path] = parts
-        if parts is None:
-            allowed = ", ".join(stage.writes) or "nothing"
-            raise StageFailure(stage.name, f"may not write {path!r} (it may write: {allowed})")
-        if parts[0] != "lenses" or len(parts) < 3 or parts[1] not in eyes:
-            raise StageFailure(stage.name, f"{path!r} is not a field of an eye being made ({', '.join(eyes)})")
-        node = state["lenses"][parts[1]]  # made for every eye at the start; no change can replace it
-        shown = shown[parts[1]]
-        for part in parts[2:-1]:
-            node = node.setdefault(part, {})
-            if type(node) is not dict and not isinstance(node, dict):
-                raise StageFailure(stage.name, f"{path!r} goes through a value that is not an object")
-            # A rounded object may be an earlier record's "after": replaced by a copy, never changed.
-            shown[part] = shown = dict(shown.get(part, {}))
-        key = parts[-1]
-        value = change.value
-        if type(value) not in _ATOMS:
-            value = copy_value(value)
-        node[key] = value
-        before = shown.get(key)
-        shown[key] = after = present(value, key)
-        inputs = change.inputs
-        return {
-            "stage": stage.name,
-            "field": path,
-            "before": before,
-            "after": after,
-            "reason": change.reason,
-            "method": change.method,
-            "source": change.source,
-            # Inputs are kept at full precision: they are what the method computed with.
-            "inputs": copy_value(inputs if type(inputs) is dict else dict(inputs)),
-        }
+        message = f"{type(exc).__name__}: {exc}"
+        codes = [frame.f_code for frame, _ in _frames(exc.__traceback__)]
+        if core.lenslane_run_stage.__code__ in codes:
+            return StageFailure(stage.name, message)
+        wrappers = [self.wrappers[code] for code in codes if code in self.wrappers]
+        if wrappers:
+            return HookFailure(wrappers[-1], "lenslane_run_stage", message, stage.name)
+        return StageFailure(stage.name, message)
+
+
+def _frames(tb: TracebackType | None) -> list[tuple[Any, int]]:
+    found = []
+    while tb is not None:
+        found.append((tb.tb_frame, tb.tb_lineno))
+        tb = tb.tb_next
+    return found
+
+
+def _apply(stage: Stage, change: Change, state: dict[str, Any], shown: dict[str, Any],
+           eyes: list[str]) -> dict[str, Any]:
+    """Apply one change to ``state`` and its rounded twin ``shown``; return its record."""
+    path = change.field
+    if not isinstance(path, str) or not stage.may_write(path):
+        allowed = ", ".join(stage.writes) or "nothing"
+        raise StageFailure(stage.name, f"may not write {path!r} (it may write: {allowed})")
+    parts = path.split(".")
+    if parts[0] != "lenses" or len(parts) < 3 or parts[1] not in eyes:
+        raise StageFailure(stage.name, f"{path!r} is not a field of an eye being made ({', '.join(eyes)})")
+    _check_json(stage.name, path, change.value)
+    _check_json(stage.name, f"{path} (inputs)", change.inputs)
+    node = state["lenses"][parts[1]]  # made for every eye at the start; no change can replace it
+    shown = shown[parts[1]]
+    for part in parts[2:-1]:
+        node = node.setdefault(part, {})
+        if not isinstance(node, dict):
+            raise StageFailure(stage.name, f"{path!r} goes through a value that is not an object")
+        # A rounded object may be an earlier record's "after": replaced by a copy, never changed.
+        shown[part] = shown = dict(shown.get(part, {}))
+    key = parts[-1]
+    value = copy_value(change.value)
+    node[key] = value
+    before = shown.get(key)
+    shown[key] = after = present(value, key)
+    return {
+        "stage": stage.name,
+        "field": path,
+        "before": before,
+        "after": after,
+        "reason": change.reason,
+        "method": change.method,
+        "source": change.source,
+        # Inputs are kept at full precision: they are what the method computed with.
+        "inputs": copy_value(dict(change.inputs)),
+    }
 
 
 def _flag_record(stage: str, flag: Flag, eyes: list[str]) -> dict[str, Any]:
@@ -160,8 +205,57 @@ def _flag_record(stage: str, flag: Flag, eyes: list[str]) -> dict[str, Any]:
         raise StageFailure(stage, f"flag {flag.code!r} has level {flag.level!r}, not one of {', '.join(LEVELS)}")
     if flag.eye is not None and flag.eye not in eyes:
         raise StageFailure(stage, f"flag {flag.code!r} names eye {flag.eye!r}, which is not being made")
-    record = {"code": flag.code, "level": flag.level, "eye": flag.eye, "message": flag.message, "stage": stage}
+    record: dict[str, Any] = {"code": flag.code, "level": flag.level, "eye": flag.eye, "message": flag.message,
+                              "stage": stage}
     if flag.values:
-        values = flag.values
-        record["values"] = present(values if type(values) is dict else dict(values))
+        _check_json(stage, f"flag {flag.code!r} values", flag.values)
+        record["values"] = present(dict(flag.values))
     return record
+
+
+def _check_json(stage: str, where: str, value: Any) -> None:
+    """Refuse what JSON cannot carry faithfully: NaN, infinities, non-string keys, objects of other kinds."""
+    if value is None or isinstance(value, (str, bool, int)):
+        return
+    if isinstance(value, float):
+        if not math.isfinite(value):
+            raise StageFailure(stage, f"wrote {value!r} to {where}: not a finite number")
+        return
+    if isinstance(value, dict):
+        for key, item in value.items():
+            if not isinstance(key, str):
+                raise StageFailure(stage, f"wrote a key {key!r} to {where}: keys must be strings")
+            _check_json(stage, f"{where}.{key}", item)
+        return
+    if isinstance(value, (list, tuple)):
+        for index, item in enumerate(value):
+            _check_json(stage, f"{where}[{index}]", item)
+        return
+    raise StageFailure(stage, f"wrote a {type(value).__name__} to {where}: not a JSON value")
+
+
+def _validate(result: dict[str, Any]) -> None:
+    """Check the result against ``lens-order-result/1``; a fault names the stage that wrote the field."""
+    try:
+        LensOrderResult.model_validate(result)
+    except ValidationError as exc:
+        error = exc.errors(include_url=False)[0]
+        location = [str(part) for part in error["loc"]]
+        where = ".".join(location)
+        problem = f"{where}: {error['msg']}" + ("" if error["type"] == "missing" else f" (got {error['input']!r})")
+        stage = _writer(result, location)
+        if stage is None:
+            raise StageFailure(None, f"{problem}; no stage of the chain wrote it", "(result)") from None
+        raise StageFailure(stage, f"wrote a value the result contract refuses: {problem}") from None
+
+
+def _writer(result: dict[str, Any], location: list[str]) -> str | None:
+    """The stage that last wrote the field at ``location`` (or a field inside it, or around it)."""
+    if location[0] in ("flags", "changes") and len(location) > 1:
+        return result[location[0]][int(location[1])].get("stage")
+    where = ".".join(location)
+    for change in reversed(result["changes"]):
+        written = change["field"]
+        if where == written or where.startswith(written + ".") or written.startswith(where + "."):
+            return str(change["stage"])
+    return None

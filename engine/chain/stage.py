@@ -7,18 +7,17 @@ proposals; the pipeline applies the changes in order and records each one.
 from __future__ import annotations
 
 import copy
-from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any, Callable, Iterable, Literal, Mapping
+import dataclasses
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any, Callable, Iterable, Mapping
+
+from lenslane.vocabulary import EYES, Eye, Level
 
 if TYPE_CHECKING:  # pragma: no cover
     from pydantic import BaseModel
 
     from lenslane.config import LabSettings, Material
     from lenslane.contract.models import LensOrder
-
-Level = Literal["info", "warning", "review"]
-LEVELS: tuple[str, ...] = ("info", "warning", "review")
-EYES: tuple[str, str] = ("right", "left")
 
 
 @dataclass(frozen=True, slots=True)
@@ -47,7 +46,7 @@ class Change:
     reason: str
     method: str
     source: str
-    inputs: Mapping[str, Any] = field(default_factory=dict)
+    inputs: Mapping[str, Any] = dataclasses.field(default_factory=dict)
 
 
 @dataclass(frozen=True, slots=True)
@@ -62,8 +61,8 @@ class Flag:
     code: str
     level: Level
     message: str
-    eye: str | None = None
-    values: Mapping[str, Any] = field(default_factory=dict)
+    eye: Eye | None = None
+    values: Mapping[str, Any] = dataclasses.field(default_factory=dict)
 
 
 Proposal = Change | Flag
@@ -137,7 +136,7 @@ class OrderView:
 
     def __init__(self, order: "LensOrder", state: dict[str, Any], settings: "LabSettings"):
         self.order = order
-        self.eyes: tuple[str, ...] = tuple(e for e in EYES if getattr(order.rx, e) is not None)
+        self.eyes: tuple[Eye, ...] = tuple(e for e in EYES if getattr(order.rx, e) is not None)
         self.settings = settings
         self._state = state
         self._material: "Material | None" = None

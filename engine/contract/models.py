@@ -13,6 +13,8 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationInfo, field_validator, model_validator
 
+from lenslane.vocabulary import EYES, Design, Eye, Level, Mount, Status
+
 ORDER_ID_PATTERN = r"^[A-Za-z0-9_-][A-Za-z0-9._-]{0,63}$"
 ORDER_ID_RE = re.compile(ORDER_ID_PATTERN)
 _RFC3339 = re.compile(
@@ -91,7 +93,7 @@ class Wearer(_Strict):
 
 
 class Lens(_Strict):
-    design: Literal["single_vision", "progressive", "bifocal"]
+    design: Design
     material: Annotated[str, Field(min_length=1, max_length=64)]
     index: Annotated[float, Field(ge=1.40, le=1.95)] | None = None
     front_curve_d: Annotated[float, Field(ge=0, le=14, description="true power at the lens index, D")] | None = None
@@ -111,7 +113,7 @@ class Frame(_Strict):
     box_height_mm: Annotated[float, Field(gt=0, le=100, description="boxing B, mm")]
     bridge_mm: Annotated[float, Field(ge=0, le=60, description="boxing DBL, mm")]
     effective_diameter_mm: Annotated[float, Field(gt=0, le=140, description="ED, mm")] | None = None
-    mount: Literal["full_rim", "grooved", "drilled"] = "full_rim"
+    mount: Mount = "full_rim"
     outline_mm: Annotated[
         list[Annotated[float, Field(gt=0, le=70)]],
         Field(min_length=36, max_length=1000, description="radii of the right lens about its box centre, mm"),
@@ -170,7 +172,7 @@ class LensOrder(_Strict):
     @model_validator(mode="after")
     def _cross_field_rules(self) -> "LensOrder":
         problems = []
-        for eye in ("right", "left"):
+        for eye in EYES:
             eye_rx = getattr(self.rx, eye)
             if eye_rx is None:
                 continue
@@ -193,31 +195,34 @@ class LensOrder(_Strict):
 
 
 class _Out(BaseModel):
-    # The result models are for the published JSON Schema and tests: built when first used, not at start-up.
-    model_config = ConfigDict(extra="forbid", defer_build=True)
+    # The engine validates every result before it is published: strictly (a number is a number, never a
+    # string that looks like one), NaN and infinities refused. The bounds are what any spectacle lens can
+    # be, wider than an order's: they catch a broken stage, not a judgement call.
+    # Built when first used, not at every start of the command line.
+    model_config = ConfigDict(extra="forbid", strict=True, allow_inf_nan=False, defer_build=True)
 
 
 class Power(_Out):
-    sphere: float
-    cylinder: float
+    sphere: Annotated[float, Field(ge=-50, le=50, description="D")]
+    cylinder: Annotated[float, Field(ge=-20, le=20, description="D")]
     axis: Annotated[int, Field(ge=1, le=180)]
-    add: float | None = None
+    add: Annotated[float, Field(ge=0, le=6, description="D")] | None = None
 
 
 class ResultantPrism(_Out):
-    amount: Annotated[float, Field(ge=0, description="Δ")]
+    amount: Annotated[float, Field(ge=0, le=50, description="Δ")]
     base_deg: Annotated[float, Field(ge=0, lt=360)]
 
 
 class Geometry(_Out):
     model_config = ConfigDict(extra="allow")
 
-    front_curve_d: float
-    center_thickness_mm: float
-    edge_min_mm: float
-    edge_max_mm: float
-    blank_min_diameter_mm: float
-    weight_g: float
+    front_curve_d: Annotated[float, Field(ge=0, le=30, description="D")]
+    center_thickness_mm: Annotated[float, Field(ge=0, le=100)]
+    edge_min_mm: Annotated[float, Field(ge=0, le=100)]
+    edge_max_mm: Annotated[float, Field(ge=0, le=100)]
+    blank_min_diameter_mm: Annotated[float, Field(ge=0, le=200)]
+    weight_g: Annotated[float, Field(ge=0, le=1000)]
 
 
 class LensResult(_Out):
@@ -231,8 +236,8 @@ class LensResult(_Out):
 
 class ResultFlag(_Out):
     code: str
-    level: Literal["info", "warning", "review"]
-    eye: Literal["right", "left"] | None = None
+    level: Level
+    eye: Eye | None = None
     message: str
     stage: str | None = None
     values: dict[str, Any] = {}
@@ -249,10 +254,30 @@ class ChangeRecord(_Out):
     inputs: dict[str, Any] = {}
 
 
+class ChainEntry(_Out):
+    """One stage of the chain and what made it."""
+
+    stage: str
+    plugin: str
+    distribution: str
+    version: str
+
+
+class HookEntry(_Out):
+    """A plugin that takes part in every order through its hooks, without a stage of its own."""
+
+    plugin: str
+    distribution: str
+    version: str
+    hooks: list[str]
+
+
 class EngineInfo(_Out):
     version: str
     config_sha256: str
     stages: list[str]
+    chain: list[ChainEntry] = []
+    hooks: list[HookEntry] = []
 
 
 class Approval(_Out):
@@ -267,13 +292,13 @@ class Approval(_Out):
 class LensOrderResult(_Out):
     """``lens-order-result/1``: what the engine publishes in ``outbox/<order_id>.json``."""
 
-    model_config = ConfigDict(extra="forbid", title="lens-order-result/1")
+    model_config = ConfigDict(extra="forbid", strict=True, allow_inf_nan=False, title="lens-order-result/1")
 
     format: Literal["lens-order-result/1"]
     order_id: str
-    status: Literal["ready", "review"]
+    status: Status
     order: dict[str, Any]
-    lenses: dict[Literal["right", "left"], LensResult]
+    lenses: dict[Eye, LensResult]
     flags: list[ResultFlag]
     changes: list[ChangeRecord]
     engine: EngineInfo
@@ -282,11 +307,6 @@ class LensOrderResult(_Out):
     revision: int | None = Field(default=None, ge=2, description="set on a replaced order's next version")
     supersedes: str | None = Field(default=None, description="sha256 of the result this revision replaces")
 
-
-CAUTION = (
-    "For a licensed eye-care professional to verify before use. lenslane suggests; local codes, "
-    "impact-resistance rules and licensed practice prevail."
-)
 
 
 _FIELD_PREFIX = re.compile(r"^[a-z_][a-z0-9_]*(\.[a-z0-9_]+)*$")

@@ -11,7 +11,7 @@ not at all:
    ``rejected/``, a replacing revision in ``outbox/`` or ``review/`` (the
    result it supersedes hard-linked into ``archive/`` first). Every byte is
    fixed by the request, the files and the log, so a redo writes the same;
-3. append the ``decided`` record (with a replace, the revision's records too)
+3. append the ``decided`` record (with a replace, the revision's own record too)
    in one write, fsynced: from here on the decision is made;
 4. the record's ``moves``: take each file it names from where it was (review/,
    held/, the old result's place) to where it goes, or remove it — only while
@@ -29,6 +29,7 @@ from typing import Any
 
 import orjson
 
+from lenslane.audit.records import received as received_part
 from lenslane.audit.results import file_sha256
 from lenslane.chain.pipeline import StageFailure
 from lenslane.decide import requests
@@ -38,7 +39,7 @@ from lenslane.decide.model import (
 )
 from lenslane.lab.files import claim_tag, free_name, fsync_dir, printable, write_durably
 from lenslane.lab.folder import (
-    ERRORS_SUFFIX, HELD_SUFFIX, Lab, StageWontStop, note_published, order_events, result_bytes,
+    ERRORS_SUFFIX, HELD_SUFFIX, Lab, StageWontStop, note_published, result_bytes, story_fields,
 )
 
 #: Tests only: ``LENSLANE_DECISION_FAULT=<step>`` ends the process abruptly right after a step, as a crash would.
@@ -90,7 +91,7 @@ class Applier:
 
     def apply(self, request: dict[str, Any]) -> DecisionResult:
         order_id = request["order_id"]
-        log = order_log(self.root, order_id)
+        log = order_log(self.root, order_id, self.lab.audit.index if self.lab.audit is not None else None)
         earlier = log.decided_by_request(request["request"])
         if earlier is not None:  # recorded before a crash: only the moves may be left
             self._move(earlier.get("moves") or ())
@@ -173,21 +174,20 @@ class Applier:
                     outcome = lab.pipeline.run(examined.order, examined.parsed)
                 result = outcome.result
             except StageFailure as exc:
-                reasons = [{"field": f"(stage {exc.stage})", "message": exc.message}]
+                reasons = [{"field": exc.field, "message": exc.message}]
             except (Exception, StageWontStop) as exc:  # a stage or hook that fails, the time limit: refused
                 reasons = [{"field": "(engine)", "message": f"{type(exc).__name__}: {exc}"}]
         revision = log.revision + 1
-        received = {"event": "received", "file": printable(name), "size": len(data),
-                    "sha256": hashlib.sha256(data).hexdigest(), "order_id": order_id, "from": held,
-                    "revision": revision}
+        # The revision's pass is one record, as the inbox writes it; what arrived is the held version.
+        received = {**received_part(printable(name), len(data), hashlib.sha256(data).hexdigest(),
+                                    request["requested_at"], None, examined.parsed), "from": held}
         if result is None:
             target = free_name(self.root / "rejected", name, claim_tag(request["request"]), ERRORS_SUFFIX)
             write_durably(self.root / "rejected" / f"{target}{ERRORS_SUFFIX}", _report(
                 {"file": printable(name), "rejected": True, "problems": reasons, "input": f"rejected/{target}"}))
             moves.append({"from": held, "to": f"rejected/{target}", "sha256": log.held[held]})
-            events += [received, {"event": "rejected", "order_id": order_id, "file": printable(name),
-                                  "reasons": reasons, "input": f"rejected/{target}", "revision": revision,
-                                  **lab.engine_fields}]
+            events.append({"event": "rejected", "order_id": order_id, "received": received, "reasons": reasons,
+                           "input": f"rejected/{target}", "revision": revision, "run": lab.run})
             decided["outcome"] = "rejected"
             return f"the new version was refused by the chain ({reasons[0]['field']}: {reasons[0]['message']}); " \
                    "the published result stays"
@@ -209,11 +209,11 @@ class Applier:
         destination = free_name(self.root / "archive", name, claim_tag(request["request"]))
         moves.append({"from": held, "to": f"archive/{destination}", "sha256": log.held[held]})
         decided.update(revision=revision, outcome=folder)
-        events += [received, *order_events(result), {
-            "event": "published", "order_id": order_id, "file": printable(name), "status": result["status"],
-            "result": target, "result_sha256": hashlib.sha256(published).hexdigest(), "lenses": result["lenses"],
+        events.append({
+            "event": "published", "order_id": order_id, "received": received, "status": result["status"],
+            "result": target, "result_sha256": hashlib.sha256(published).hexdigest(),
             "content_sha256": examined.content_sha256, "input": f"archive/{destination}", "revision": revision,
-            "supersedes": superseded, **lab.engine_fields}]
+            "supersedes": superseded, "run": lab.run, **story_fields(result)})
         note_published(lab, order_id, examined.content_sha256)
         waits = " and waits for review" if folder == "review" else ""
         return f"replaced: revision {revision} published as {target}{waits}" + (

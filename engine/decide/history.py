@@ -1,15 +1,16 @@
 """What the audit log says about one order, for deciding on it.
 
-Read from the whole log for now (:func:`order_log`); once the audit index
-exists, the same answer comes from it.
+Only the order's own records are read, found through the audit index
+(:class:`lenslane.audit.index.Index`).
 """
 from __future__ import annotations
 
+import contextlib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from lenslane.audit.log import iter_records
+from lenslane.audit.index import Index
 from lenslane.audit.results import Placed, ResultFiles
 
 
@@ -33,10 +34,19 @@ class OrderLog:
         return next((d for d in self.decisions if d.get("request") == request), None)
 
 
-def order_log(lab_root: Path, order_id: str) -> OrderLog:
+def order_log(lab_root: Path, order_id: str, index: Index | None = None) -> OrderLog:
+    """What the log says about ``order_id``; ``index``: the lab's audit index, when the caller has it open."""
+    with contextlib.ExitStack() as stack:
+        if index is None:
+            index = stack.enter_context(contextlib.closing(Index(Path(lab_root))))
+            index.catch_up()
+        return _order_log(index, order_id)
+
+
+def _order_log(index: Index, order_id: str) -> OrderLog:
     state = OrderLog(order_id)
     received: dict[Any, str] = {}  # claim (or file) → sha256 of the bytes received
-    for record in iter_records(Path(lab_root)):
+    for record in filter(None, map(index.read, index.places_of_order(order_id))):
         if record.get("order_id") != order_id:
             continue
         state.known = True

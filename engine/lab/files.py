@@ -9,9 +9,11 @@ from __future__ import annotations
 import errno
 import fcntl
 import hashlib
+import json
 import os
 import stat
 from pathlib import Path
+from typing import Any, Callable
 
 TEMP_SUFFIX = ".tmp"
 LOCK_NAME = ".lock"
@@ -58,6 +60,80 @@ def _load_syncfs():
 
 
 _syncfs = _load_syncfs()
+
+
+def _load_renameat2():
+    """Linux's renameat2(2) with RENAME_NOREPLACE: a rename that fails instead of replacing its target."""
+    try:
+        import ctypes
+
+        function = ctypes.CDLL(None, use_errno=True).renameat2
+    except (OSError, AttributeError, ImportError):
+        return None
+    function.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p, ctypes.c_uint]
+    at_fdcwd, noreplace = -100, 1
+
+    def renameat2(source: str, target: str) -> bool:
+        """True when done; False when the file system does not offer it; raises OSError otherwise."""
+        if function(at_fdcwd, os.fsencode(source), at_fdcwd, os.fsencode(target), noreplace) == 0:
+            return True
+        number = ctypes.get_errno()
+        if number in (errno.EINVAL, errno.ENOSYS, errno.ENOTSUP):
+            return False
+        raise OSError(number, os.strerror(number), source, None, target)
+
+    return renameat2
+
+
+_renameat2 = _load_renameat2()
+
+
+def rename_noreplace(source: str | Path, target: str | Path) -> None:
+    """Rename ``source`` to ``target``, never replacing a file there: raises FileExistsError instead.
+
+    renameat2(RENAME_NOREPLACE) where the kernel and file system offer it, else a
+    hard link and an unlink (a folder, which cannot be linked, after a check).
+    A crash between the link and the unlink leaves one file under both names;
+    the next rename of it finds its target is the same file and only removes
+    the source name.
+    """
+    source, target = os.fspath(source), os.fspath(target)
+    try:
+        if _renameat2 is not None and _renameat2(source, target):
+            return
+        if stat.S_ISDIR(os.lstat(source).st_mode):
+            if os.path.lexists(target):
+                raise FileExistsError(errno.EEXIST, os.strerror(errno.EEXIST), target)
+            os.rename(source, target)
+            return
+        os.link(source, target, follow_symlinks=False)
+    except FileExistsError:
+        if not os.path.samestat(os.lstat(source), os.lstat(target)):
+            raise
+    os.unlink(source)
+
+
+def publish_file(temp: str | Path, target: str | Path) -> None:
+    """Rename a written temp file to ``target``; a file already there is kept when it has the same bytes.
+
+    Raises FileExistsError when ``target`` holds other bytes (the temp file is then left for the caller).
+    """
+    try:
+        rename_noreplace(temp, target)
+    except FileExistsError:
+        with open(temp, "rb") as handle:
+            if not holds(target, handle.read()):
+                raise
+        _remove_quietly(temp)
+
+
+def holds(path: str | Path, data: bytes) -> bool:
+    """Whether the file at ``path`` holds exactly ``data``."""
+    try:
+        with open(path, "rb") as handle:
+            return handle.read() == data
+    except OSError:
+        return False
 
 
 def write_all(fd: int, data: bytes) -> None:
@@ -130,16 +206,29 @@ def write_durably(path: str | Path, data: bytes, sync_folder: bool = True) -> No
     The bytes go to ``.<name>.tmp`` in the same folder, are fsynced, renamed over
     ``path``, and the folder is fsynced so the rename itself survives power loss.
     A failed write (disk full, no permission) removes its temp file and raises.
+    For a file that must not replace another, :func:`create_durably`.
     """
+    _write_durably(path, data, sync_folder, os.replace)
+
+
+def create_durably(path: str | Path, data: bytes, sync_folder: bool = True) -> None:
+    """:func:`write_durably` for a new file: never renamed over another one.
+
+    A file already at ``path`` with the same bytes is kept (a redo wrote it
+    before a crash); one with other bytes raises FileExistsError.
+    """
+    _write_durably(path, data, sync_folder, publish_file)
+
+
+def _write_durably(path: str | Path, data: bytes, sync_folder: bool, rename: Callable[[str, str | Path], None]) -> None:
     temp = _write_temp(path, data, sync=True)
     try:
-        os.replace(temp, path)
+        rename(temp, path)
     except OSError:
         _remove_quietly(temp)
         raise
-    folder = os.path.dirname(os.fspath(path))
     if sync_folder:
-        fsync_dir(folder or ".")
+        fsync_dir(os.path.dirname(os.fspath(path)) or ".")
 
 
 def _remove_quietly(path: str | Path) -> None:
@@ -149,7 +238,7 @@ def _remove_quietly(path: str | Path) -> None:
         pass
 
 
-def remove_temp_leftovers(folder: Path) -> list[str]:
+def remove_temp_leftovers(folder: str | Path) -> list[str]:
     """Delete ``.<name>.tmp`` files a crash left behind (never published); returns their names."""
     removed = []
     try:
@@ -158,28 +247,37 @@ def remove_temp_leftovers(folder: Path) -> list[str]:
         return removed
     for name in names:
         if name.startswith(".") and name.endswith(TEMP_SUFFIX):
-            _remove_quietly(folder / name)
+            _remove_quietly(os.path.join(folder, name))
             removed.append(name)
     return removed
 
 
-def free_name(folder: str | Path, name: str, tag: str, never_ends_with: str = "") -> str:
+def shortened(name: str, keep_bytes: int = NAME_KEEP_BYTES) -> str:
+    """``name`` cut to ``keep_bytes`` bytes, so that a prefix or suffix added to it still fits a file name."""
+    encoded = os.fsencode(name)
+    return os.fsdecode(encoded[:keep_bytes]) if len(encoded) > keep_bytes else name
+
+
+def free_name(folder: str | Path, name: str, tag: str, never_ends_with: str = "",
+              taken: Callable[[str], bool] | None = None) -> str:
     """A name for ``name`` in ``folder`` that nothing there uses yet, chosen the same way every time.
 
     The name is kept when it is free; otherwise ``.<tag>`` is added, ``tag``
     being derived from the claim, so a redo after a crash picks the same name.
     A name ending in ``never_ends_with`` (the suffix of the report files beside
     the inputs) always gets the tag, so an input can never be taken for, or
-    overwrite, another input's report.
+    overwrite, another input's report. ``taken`` (given a candidate) says what
+    else makes a name unavailable; by default only an entry of that name.
     """
-    encoded = os.fsencode(name)
-    base = os.fsdecode(encoded[:NAME_KEEP_BYTES]) if len(encoded) > NAME_KEEP_BYTES else name
-    clash = bool(never_ends_with) and base.endswith(never_ends_with)
     folder = os.fspath(folder)
-    if base == name and not clash and not os.path.lexists(os.path.join(folder, name)):
+    if taken is None:
+        taken = lambda candidate: os.path.lexists(os.path.join(folder, candidate))  # noqa: E731
+    base = shortened(name)
+    clash = bool(never_ends_with) and base.endswith(never_ends_with)
+    if base == name and not clash and not taken(name):
         return name
     candidate, counter = f"{base}.{tag}", 0
-    while os.path.lexists(os.path.join(folder, candidate)):
+    while taken(candidate):
         counter += 1
         candidate = f"{base}.{tag}-{counter}"
     return candidate
@@ -264,14 +362,72 @@ def lock_lab(root: Path) -> int:
     try:
         fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
     except OSError as exc:
-        holder = os.pread(fd, 32, 0).decode("ascii", "replace").strip()
+        holder = os.pread(fd, 32, 0).decode("ascii", "replace").partition("\n")[0].strip()
         os.close(fd)
         if exc.errno in (errno.EWOULDBLOCK, errno.EAGAIN, errno.EACCES):
             raise LabLocked(path, holder) from None
         raise
-    os.ftruncate(fd, 0)
-    os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
+    write_lock_state(fd, {})
     return fd
+
+
+def write_lock_state(fd: int, state: dict[str, Any]) -> None:
+    """Write the holder's pid, then one line of JSON about the running engine (for ``lenslane status``).
+
+    Written in place (the lock must stay the same open file); the state line
+    ends with a newline, so a reader that finds no whole line reads again.
+    """
+    data = f"{os.getpid()}\n{json.dumps(state, ensure_ascii=False)}\n".encode()
+    os.pwrite(fd, data, 0)
+    os.ftruncate(fd, len(data))
+
+
+def read_lock(root: Path) -> tuple[int | None, dict[str, Any] | None, os.stat_result | None]:
+    """The pid and the state line in ``LAB/.lock`` (as the last holder left them), and the lock file's stat."""
+    path = Path(root) / LOCK_NAME
+    for _ in range(3):
+        try:
+            data = path.read_bytes()
+            info = path.stat()
+        except FileNotFoundError:
+            return None, None, None
+        first, _, rest = data.partition(b"\n")
+        line, newline, _ = rest.partition(b"\n")
+        try:
+            pid = int(first)
+            return pid, (json.loads(line) if newline else {}), info
+        except ValueError:
+            continue  # caught while being written
+    return None, None, info
+
+
+def lock_holder(lock: os.stat_result, pid: int | None, locks: str | None = None) -> int | None:
+    """The pid of the live process holding the lab's lock, from ``/proc/locks`` (Linux), or ``None``.
+
+    Where ``/proc/locks`` cannot be read, whether process ``pid`` is alive.
+    """
+    if locks is None:
+        try:
+            with open("/proc/locks", encoding="ascii", errors="replace") as handle:
+                locks = handle.read()
+        except OSError:
+            if pid is None:
+                return None
+            try:
+                os.kill(pid, 0)
+            except ProcessLookupError:
+                return None
+            except PermissionError:
+                pass
+            return pid
+    for line in locks.splitlines():
+        fields = line.split()
+        if len(fields) < 6 or fields[1] != "FLOCK" or "->" in fields:
+            continue
+        device = fields[5].split(":")
+        if len(device) == 3 and device[2].isdigit() and int(device[2]) == lock.st_ino and fields[4].isdigit():
+            return int(fields[4])
+    return None
 
 
 #: File-system types whose changes made elsewhere inotify does not see (network and shared folders).

@@ -2,77 +2,50 @@
 
 One order's life, in the order that makes a crash at any instant safe:
 
-1. look: an inbox entry is taken only when it is complete — moved in by a
-   rename, closed after writing, or unchanged for ``watch.quiet_seconds``; a
-   young file that does not parse yet is looked at again, not rejected;
-2. claim: atomic rename ``inbox/<name>`` → ``work/<name>``;
-3. read, validate, run the chain (nothing written yet);
-4. publish: the result to ``outbox/.<id>.json.tmp``, fsync, rename to
-   ``outbox/<id>.json``, fsync the folder (or, for a rejected order, the
-   ``rejected/<name>.errors.json`` the same way; for a held one,
-   ``held/<name>.held.json``);
-5. audit: the order's records appended to ``audit.jsonl`` and fsynced;
-6. archive: rename ``work/<name>`` → ``archive/<name>`` (or ``rejected/`` or ``held/``).
+1. look (:mod:`~lenslane.lab.arrival`): an inbox entry is taken only when it is complete;
+2. claim (:mod:`~lenslane.lab.claim`): an atomic rename into ``work/``;
+3. read, validate, run the chain (:mod:`~lenslane.lab.examine`; nothing written yet);
+4. end it (:mod:`~lenslane.lab.outcomes`): the result under a temp name, or a report;
+5. group commit (:mod:`~lenslane.lab.commit`): results durable and renamed into
+   ``outbox/``, the audit records appended and fsynced, the inputs moved out of ``work/``.
 
-A file still in ``work/`` at start was claimed but not finished. Its claim key
-(inode and the change time the claim gave it) says whether its final audit
-record was already written: if so only step 6 is left; if not, it is redone
-from step 3, and because processing is deterministic the redo publishes the
-same bytes over the same name — never a second copy, never a second record.
-The audit log also says which order ids were published, with a digest of their
-content: the same order again is recorded and archived, a different order under
-the same id is held for a person.
+After a crash, :mod:`~lenslane.lab.recovery` finishes what ``work/`` holds. The
+audit history (:mod:`~lenslane.lab.history`) says which order ids were
+published, with a digest of their content: the same order again is recorded and
+archived, a different order under the same id is held for a person.
 """
 from __future__ import annotations
 
 import contextlib
-import errno
-import hashlib
-import json
 import os
-import stat
 import time
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable, ContextManager
 
-import orjson
-
-from lenslane import __version__
-from lenslane.audit.history import History
-from lenslane.audit.log import AUDIT_NAME, AuditError, AuditLog, canonical
+from lenslane.audit.log import AUDIT_NAME, AuditLog
 from lenslane.audit.records import received as received_part, run_definition, utc_now
-from lenslane.config import CONFIG_NAME, LabConfig, template_text
-from lenslane.lab.files import (
-    NotRegular, fsync_dir, claim_key, claim_tag, entry_kind, free_name, open_regular, printable, read_exactly,
-    make_durable, remove_temp_leftovers, write_durably, write_unsynced,
-)
 from lenslane.chain.host import Host
-from lenslane.contract.intake import OrderRejected, parse_json, read_order
-from lenslane.contract.models import ORDER_ID_RE, LensOrder
 from lenslane.chain.pipeline import Pipeline, StageFailure
+from lenslane.config import CONFIG_NAME, LabConfig, template_text
+from lenslane.lab.arrival import Arrivals, Complete, Wait, is_order_name, order_names
+from lenslane.lab.aside import Aside, SetAside
+from lenslane.lab.claim import Claims
+from lenslane.lab.commit import GroupCommit
+from lenslane.lab.errors import Interrupted, OrderTimeLimit, OutputBlocked, StageWontStop
+from lenslane.lab.examine import Examined, examine, examine_claimed
+from lenslane.lab.files import claim_key, printable
+from lenslane.lab.history import History
+from lenslane.lab.outcomes import ERRORS_SUFFIX, HELD_SUFFIX, Claimed, Outcomes, Processed, result_bytes, story_fields
+from lenslane.lab.recovery import recover
 
 #: review/ holds results that wait for a person and decisions/ the requests of ``lenslane decide`` (lenslane.decide).
 FOLDERS = ("inbox", "outbox", "review", "rejected", "archive", "work", "held", "decisions")
-ERRORS_SUFFIX = ".errors.json"
-HELD_SUFFIX = ".held.json"
-#: Results are written compact (a person reads them through `lenslane explain` or any JSON viewer):
-#: an order's result is some 20 kB, and every byte is written and flushed once per order.
-_RESULT_JSON = orjson.OPT_SERIALIZE_NUMPY
-FINAL_EVENTS = ("published", "rejected", "held", "skipped")
+#: The steps of an order's way that :class:`Lab` reports to its ``on_step`` callback, as each completes.
+STEPS = ("claimed", "published", "audited", "archived")
 
-#: Tests only: ``LENSLANE_FAULT_AFTER=<step>[:<n>]`` ends the process abruptly right after the
-#: n-th time (default the first) a step of the publish sequence completes, as a crash would.
-FAULT_VARIABLE = "LENSLANE_FAULT_AFTER"
-FAULT_STEPS = ("claimed", "published", "audited", "archived")
-FAULT_EXIT_CODE = 86
-
-#: Errors opening an input that are the file's own (its permissions): the order is rejected. Any other
-#: error (out of file descriptors, an I/O error) is the machine's: the read is retried.
-UNREADABLE = frozenset({errno.EACCES, errno.EPERM})
-
-#: How often a young file that does not parse yet is looked at again (s), at the least.
-INCOMPLETE_RECHECK_SECONDS = 0.25
+__all__ = ["ERRORS_SUFFIX", "FOLDERS", "HELD_SUFFIX", "STEPS", "Interrupted", "Lab", "OrderTimeLimit",
+           "OutputBlocked", "Processed", "StageWontStop", "Wait", "init_lab", "is_order_name", "note_published",
+           "result_bytes", "story_fields"]
 
 
 def init_lab(lab: Path) -> list[str]:
@@ -95,400 +68,137 @@ def init_lab(lab: Path) -> list[str]:
     return created
 
 
-def is_order_name(name: str) -> bool:
-    """Only ``*.json`` files are orders; hidden, ``.tmp`` and ``.part`` names wait until renamed."""
-    return name.endswith(".json") and not name.startswith(".") and not name.endswith((".tmp", ".part"))
-
-
-# --------------------------------------------------------------------------
-# What a look at an inbox entry can give
-# --------------------------------------------------------------------------
-
-
-@dataclass
-class Processed:
-    """An order that reached its end: published, rejected, held, or skipped as already published."""
-
-    name: str
-    outcome: str  # "published" | "rejected" | "held" | "skipped"
-    order_id: str | None
-    status: str | None = None
-    reasons: list[dict[str, str]] | None = None
-    redo: bool = False  # finished after a restart or a retry
-
-
-@dataclass(frozen=True)
-class Wait:
-    """Not yet: look at the entry again at ``until`` (wall-clock seconds)."""
-
-    until: float
-    reason: str  # "settling" (still changing) | "incomplete" (young and does not parse yet)
-
-
-class OutputBlocked(Exception):
-    """A step that writes failed (disk full, no permission…); nothing was lost.
-
-    ``claimed`` says whether the input is already in ``work/`` (retry with
-    :meth:`Lab.process_claimed`) or still in the inbox (retry with :meth:`Lab.consider`).
-    """
-
-    def __init__(self, step: str, path: str | Path, error: Exception, claimed: bool):
-        super().__init__(f"{step}: {path}: {error}")
-        self.step = step
-        self.path = path
-        self.error = error
-        self.claimed = claimed
-
-
-class OrderTimeLimit(Exception):
-    """The order ran past ``watch.order_time_limit_seconds``.
-
-    Raised inside the running stage, so the pipeline fails the order with that
-    stage's name.
-    """
-
-
-class StageWontStop(BaseException):
-    """A stage caught the time-limit exception and kept running; raised past ``except Exception``."""
-
-
-class Interrupted(BaseException):
-    """A stop was asked while a stage still ran: the order stays claimed and is redone at the next start."""
-
-
-@dataclass
-class _Examined:
-    size: int | None
-    sha256: str | None
-    order: LensOrder | None = None
-    parsed: dict[str, Any] | None = None
-    content_sha256: str | None = None
-    problems: list[dict[str, str]] | None = None
-    maybe_incomplete: bool = False
-    kind: str | None = None  # what a non-regular entry is
-    order_id: str | None = None
-
-
-@dataclass
-class _Seen:
-    signature: tuple[int, int, int]  # size, mtime (ns), inode
-    since: float  # when this signature was first seen (wall clock)
-    failed: bool = False  # read with this signature and found incomplete
-
-
-@dataclass(frozen=True)
-class _Recorded:
-    """A claim whose final audit record is written; only moving the input is left."""
-
-    input: str
-    outcome: str
-    order_id: str | None
-    status: str | None
-
-
-@dataclass
-class _Pending:
-    """An order whose output file is written, waiting for the group commit."""
-
-    name: str
-    claim: str
-    events: list[dict[str, Any]]
-    recorded: _Recorded
-    processed: Processed
-    recorded_in_log: bool = False
-
-
-class _Commit:
-    """One batch on its way through :meth:`Lab.commit`: what is left of each step."""
-
-    def __init__(self, batch: list[_Pending], unpublished: list[tuple[str, str]], folders: set[str]):
-        self.batch = batch
-        self.unpublished = unpublished  # (temp, result) still to rename
-        self.folders = folders  # still to fsync
-        self.durable = False  # the temp files' bytes are on disk
-
-
-def result_bytes(result: dict[str, Any]) -> bytes:
-    """The bytes of a published result."""
-    return orjson.dumps(result, option=_RESULT_JSON) + b"\n"
-
-
-def _readable(raw: bytes) -> dict[str, Any] | None:
-    """What can be read of a refused order (its id, who sent it), for the audit log; ``None`` when nothing."""
-    try:
-        data = parse_json(raw)
-    except Exception:
-        return None
-    return data if isinstance(data, dict) else None
-
-
 def note_published(lab: "Lab", order_id: str, content_sha256: str | None) -> None:
     """An order id published with this content by something other than the inbox (a person's replace)."""
-    lab._history().note_published(order_id, content_sha256)
-
-
-def order_events(result: dict[str, Any]) -> list[dict[str, Any]]:
-    """The audit events of a result's changes and flags, one record each (the first format's way, still
-    written by a decision's replace; the inbox writes them inside its one record per order)."""
-    order_id = result["order_id"]
-    events = [{"event": "change", "order_id": order_id, **change} for change in result["changes"]]
-    events += [{"event": "flag", "order_id": order_id, **flag} for flag in result["flags"]]
-    return events
-
-
-def _report_bytes(report: dict[str, Any]) -> bytes:
-    return json.dumps(report, ensure_ascii=False, indent=1).encode("utf-8", "backslashreplace") + b"\n"
-
-
-def _fault_from_environment() -> tuple[str, int] | None:
-    value = os.environ.get(FAULT_VARIABLE, "").strip()
-    if not value:
-        return None
-    step, _, count = value.partition(":")
-    if step not in FAULT_STEPS:
-        raise ValueError(f"{FAULT_VARIABLE}={value!r}: the step must be one of {', '.join(FAULT_STEPS)}")
-    return step, int(count or 1)
+    lab.history.note_published(order_id, content_sha256)
 
 
 class Lab:
     """A lab folder with its engine: looks at inbox entries and takes orders through to the end, one at a time.
 
-    ``time_limit`` is a factory of the context manager that bounds one run of
-    the chain; the daemon installs its clock there (the default sets no limit).
+    Parameters
+    ----------
+    time_limit : callable
+        A factory of the context manager that bounds one run of the chain; the
+        daemon gives its clock (the default sets no limit).
+    on_step : callable, optional
+        Called with each step's name (:data:`STEPS`) as it completes; for
+        observers of the engine's progress, tests among them.
     """
 
-    def __init__(self, root: Path, host: Host):
+    def __init__(self, root: Path, host: Host, *, time_limit: Callable[[], ContextManager[Any]] = contextlib.nullcontext,
+                 on_step: Callable[[str], None] | None = None):
         self.root = Path(root)
-        # Opened by recover(), under the lab's lock: opening may close a torn last line.
-        self.audit: AuditLog | None = None
-        self.use_host(host)
         for name in FOLDERS:
             setattr(self, name, self.root / name)
             (self.root / name).mkdir(exist_ok=True)
-        # The same folders as plain strings: joining them costs far less per order than pathlib does.
-        self._root = os.fspath(self.root)
-        self._inbox, self._work, self._outbox = (os.path.join(self._root, n) for n in ("inbox", "work", "outbox"))
-        self.time_limit: Callable[[], ContextManager[Any]] = contextlib.nullcontext
-        self.history: History | None = None  # the audit history, once recover() has opened the log
+        root_text = os.fspath(self.root)
+        self._work = os.path.join(root_text, "work")
+        self.time_limit = time_limit
+        self._on_step = on_step or (lambda step: None)
         self.stage_seconds: dict[str, float] = {}  # time spent in each stage, summed over the run
-        self._recorded: dict[str, _Recorded] = {}
-        self._batch: list[_Pending] = []  # processed, waiting for commit()
-        self._unsynced_folders: set[str] = set()
-        self._unpublished: list[tuple[str, str]] = []  # (temp, result) written, not yet durable and renamed
-        self._committing: _Commit | None = None  # the batch commit() began and has not finished
-        self._final: list[Processed] = []  # made final, not yet returned by commit()
-        self._watching: dict[str, _Seen] = {}
-        self._fault = _fault_from_environment()
-        self._fault_count = 0
+        self.history = History(self.root)
+        self.aside = Aside()  # entries that could not be taken, left where they are
+        self.arrivals = Arrivals(os.path.join(root_text, "inbox"), host.config.watch, self.examine)
+        self.claims = Claims(os.path.join(root_text, "inbox"), self._work)
+        self.commits = GroupCommit(root_text, self.history, self._open_audit, self._on_step)
+        self.outcomes = Outcomes(root_text, self.history, self.commits, {}, self._on_step)
+        self.use_host(host)
 
     def use_host(self, host: Host) -> None:
         """Work with ``host`` (its config and chain) from the next order on: at start, and on a reload."""
         self.host = host
         self.config: LabConfig = host.config
         self.pipeline = Pipeline(host)
-        chain = [link.stage.name for link in host.chain]
-        self.engine_fields = {"engine_version": __version__, "config_sha256": host.config_sha256, "stages": chain}
-        self.run = run_definition(__version__, host.config_sha256, host.effective_config, chain, {
-            name: {"plugin": info.plugin, "from": info.origin, "version": info.version}
-            for name, info in host.stages.items() if name in chain})
-        watch = host.config.watch
-        self.quiet_seconds = watch.quiet_seconds
-        self.young_seconds = watch.young_seconds
-        self.max_order_bytes = watch.max_order_bytes
-        if self.audit is not None:
-            self.audit.rotate_bytes = host.config.audit.rotate_bytes
-            self.audit.rotate_period = host.config.audit.rotate_period
+        self.outcomes.run = run_definition(host.provenance, host.effective_config)
+        self.arrivals.use(host.config.watch)
+        if self.commits.audit is not None:
+            self.commits.audit.rotate_bytes = host.config.audit.rotate_bytes
+            self.commits.audit.rotate_period = host.config.audit.rotate_period
+
+    @property
+    def run(self) -> dict[str, Any]:
+        """What ran the orders, as every final record refers to it: the engine's version, the chain and who made
+        each stage, the configuration and its digest."""
+        return self.outcomes.run
+
+    @property
+    def audit(self) -> AuditLog | None:
+        """The audit log, opened by :meth:`recover`."""
+        return self.commits.audit
 
     def _open_audit(self) -> AuditLog:
         audit = self.config.audit
         return AuditLog(self.root / AUDIT_NAME, audit.rotate_bytes, audit.rotate_period)
 
-    def _history(self) -> History:
-        if self.history is None:
-            if self.audit is None:
-                self.audit = self._open_audit()
-            self.history = History(self.audit.index)
-        return self.history
-
-    # -- start -----------------------------------------------------------------
-
     def recover(self) -> list[str]:
         """Get ready to work after whatever ended the last run; returns the names in ``work/`` to finish.
 
         Call it once, holding the lab's lock, before anything else: it reopens
-        the audit log (so its tail is the one on disk), removes temp files a
-        crash left (never published), and reads the audit history: which order
-        ids were published, and which claims in ``work/`` already have their
-        final record.
+        the audit log (so its tail is the one on disk) and reads its history.
         """
-        if self.audit is not None:
-            self.audit.close()
-        self.audit = self._open_audit()
-        for folder in (self.outbox, self.review, self.rejected, self.held, self.archive):
-            remove_temp_leftovers(folder)
-        names = sorted(os.listdir(self.work))
-        claims = {}
-        for name in names:
-            with contextlib.suppress(FileNotFoundError):
-                claims[claim_key(os.lstat(self.work / name))] = name
-        self.history = History(self.audit.index)
-        self._recorded.clear()
-        for claim in claims:
-            record = self.history.final_record(claim)
-            if record is not None and isinstance(record.get("input"), str):
-                self._recorded[claim] = _Recorded(record["input"], record["event"], record.get("order_id"),
-                                                  record.get("status"))
-        return names
+        self.commits.open_audit()
+        return recover(os.fspath(self.root), self.claims, self.history)
 
     def pending(self) -> list[str]:
         """Order names in the inbox, oldest name first."""
-        try:
-            names = os.listdir(self.inbox)
-        except FileNotFoundError:
-            return []
-        return sorted(n for n in names if is_order_name(n))
+        return order_names(self.arrivals.inbox)
 
-    def forget_missing(self, present: set[str]) -> None:
-        """Drop what was remembered about entries no longer in the inbox."""
-        for name in [n for n in self._watching if n not in present]:
-            del self._watching[name]
+    def forget_missing(self, present: set[str]) -> bool:
+        """Drop what was remembered about entries no longer in the inbox; True when one set aside is gone."""
+        self.arrivals.forget_missing(present)
+        return self.aside.forget_missing(present)
 
-    # -- looking at an inbox entry -------------------------------------------
+    def set_aside(self, blocked: OutputBlocked, tries: int) -> SetAside:
+        """Give up on the entry a step failed for: left where it is, not tried again while unchanged.
+
+        An input whose move out of ``work/`` failed leaves the batch (its records are written; the
+        next start moves it).
+        """
+        if blocked.work_name is not None:
+            self.commits.set_aside(blocked.work_name)
+        return self.aside.add_blocked(blocked, tries, self._work)
+
+    def examine(self, raw: bytes) -> Examined:
+        """Parse and validate the bytes of one order (no file is touched)."""
+        return examine(raw, self.host.settings.materials)
+
+    # -- one entry, from the inbox to its end --------------------------------------------
 
     def consider(self, name: str, moved: bool = False, closed: bool = False) -> Processed | Wait | None:
         """Look at ``inbox/<name>``: take it through to the end if it is complete, else say when to look again.
 
-        Parameters
-        ----------
-        name : str
-            An order name (see :func:`is_order_name`) in the inbox.
-        moved : bool
-            It was renamed into the inbox (so it is complete; a file that
-            does not parse is rejected at once).
-        closed : bool
-            A writer closed it after writing (so no quiet time is waited).
-
-        Returns
-        -------
-        Processed, Wait or None
-            ``None`` when the entry is gone (taken by someone else, deleted).
+        ``moved``: it was renamed into the inbox (so it is complete; a file that
+        does not parse is rejected at once). ``closed``: a writer closed it after
+        writing (so no quiet time is waited). Returns ``None`` when the entry is
+        gone (taken by someone else, deleted).
         """
-        path = f"{self._inbox}/{name}"
-        try:
-            info = os.lstat(path)
-        except FileNotFoundError:
-            self._watching.pop(name, None)
+        if self.aside.entries and self._still_aside(name):
             return None
-        if not stat.S_ISREG(info.st_mode) or info.st_size > self.max_order_bytes:
-            return self._claim(name)  # judged in work/, never opened here
-        now = time.time()
-        seen = self._seen(name, info, now)
-        age = now - info.st_mtime if info.st_mtime <= now else now - seen.since  # a future mtime: a skewed clock
-        quiet = age >= self.quiet_seconds or now - seen.since >= self.quiet_seconds
-        if not (moved or quiet or (closed and info.st_size > 0)):
-            return Wait(now + self.quiet_seconds - max(age, now - seen.since), "settling")
-        young = not moved and age < self.young_seconds
-        if seen.failed and young:
-            return self._wait_incomplete(now, age)
-        try:
-            fd, opened = open_regular(path)
-        except FileNotFoundError:
-            self._watching.pop(name, None)
+        seen = self.arrivals.look(name, moved, closed)
+        if not isinstance(seen, Complete):
+            return seen
+        claimed = self.claims.claim(name)
+        self.arrivals.forget(name)
+        if claimed is None:
             return None
-        except NotRegular:
-            return self._claim(name)  # swapped meanwhile: work/ says what it is
-        except OSError as exc:
-            if exc.errno not in UNREADABLE:
-                raise OutputBlocked("read", path, exc, claimed=False) from exc
-            return self._claim(name)  # the sender's permissions: work/ says why
-        try:
-            if opened.st_size > self.max_order_bytes:
-                return self._claim(name)
-            examined = self.examine(read_exactly(fd, opened.st_size))
-        finally:
-            os.close(fd)
-        if examined.maybe_incomplete and young and opened.st_size > 0:
-            seen.failed = True
-            return self._wait_incomplete(now, age)
-        return self._claim(name, opened, examined)
-
-    def _seen(self, name: str, info: os.stat_result, now: float) -> _Seen:
-        signature = (info.st_size, info.st_mtime_ns, info.st_ino)
-        seen = self._watching.get(name)
-        if seen is None or seen.signature != signature:
-            seen = self._watching[name] = _Seen(signature, now)
-        return seen
-
-    def _wait_incomplete(self, now: float, age: float) -> Wait:
-        recheck = max(self.quiet_seconds, INCOMPLETE_RECHECK_SECONDS)
-        return Wait(now + min(recheck, self.young_seconds - age), "incomplete")
-
-    def _claim(self, name: str, opened: os.stat_result | None = None,
-               examined: _Examined | None = None) -> Processed | None:
-        claimed = f"{self._work}/{name}"
-        try:
-            os.rename(f"{self._inbox}/{name}", claimed)
-        except FileNotFoundError:
-            self._watching.pop(name, None)
-            return None
-        except OSError as exc:
-            raise OutputBlocked("claim", self._work, exc, claimed=False) from exc
-        self._watching.pop(name, None)
-        try:
-            info = os.lstat(claimed)
-        except FileNotFoundError:
-            return None
-        self._reached("claimed")
+        work_name, info = claimed
+        self._on_step("claimed")
+        examined, opened = seen.examined, seen.opened
         if opened is not None and (info.st_ino, info.st_size, info.st_mtime_ns) != (
                 opened.st_ino, opened.st_size, opened.st_mtime_ns):
             examined = None  # not the bytes that were read: read the claimed file itself
-        return self.process_claimed(name, info, examined)
+        return self.process_claimed(work_name, info, examined)
 
-    # -- one claimed order -----------------------------------------------------
-
-    def examine(self, raw: bytes) -> _Examined:
-        """Parse and validate the bytes of one order (no file is touched)."""
-        sha256 = hashlib.sha256(raw).hexdigest()
+    def _still_aside(self, name: str) -> bool:
         try:
-            order, parsed = read_order(raw, self.host.settings.materials)
-        except OrderRejected as exc:
-            readable = _readable(raw)
-            order_id = readable.get("order_id") if readable is not None else None
-            return _Examined(len(raw), sha256, parsed=readable, problems=exc.problems,
-                             maybe_incomplete=exc.maybe_incomplete,
-                             order_id=order_id if isinstance(order_id, str) and ORDER_ID_RE.match(order_id) else None)
-        content = hashlib.sha256(canonical(parsed)).hexdigest()
-        return _Examined(len(raw), sha256, order, parsed, content, order_id=order.order_id)
+            return self.aside.holds(name, os.lstat(f"{self.arrivals.inbox}/{name}"))
+        except OSError:
+            return False
 
-    def _examine_claimed(self, path: str, info: os.stat_result) -> _Examined:
-        if not stat.S_ISREG(info.st_mode):
-            return self._not_a_file(entry_kind(info.st_mode))
-        try:
-            fd, opened = open_regular(path)
-        except NotRegular as exc:
-            return self._not_a_file(exc.kind)
-        except OSError as exc:
-            if exc.errno not in UNREADABLE:  # out of file descriptors, an I/O error: not the order's fault
-                raise OutputBlocked("read", path, exc, claimed=True) from exc
-            return _Examined(info.st_size, None, problems=[
-                {"field": "(file)", "message": f"cannot be read: {exc.strerror or exc}"}])
-        try:
-            if opened.st_size > self.max_order_bytes:
-                return _Examined(opened.st_size, None, problems=[{"field": "(file)", "message": (
-                    f"the file is {opened.st_size} bytes, over the limit of {self.max_order_bytes} bytes "
-                    "(watch.max_order_bytes); it was not read")}])
-            return self.examine(read_exactly(fd, opened.st_size))
-        finally:
-            os.close(fd)
-
-    @staticmethod
-    def _not_a_file(kind: str) -> _Examined:
-        return _Examined(None, None, kind=kind, problems=[{"field": "(file)", "message": (
-            f"is a {kind}, not a plain file: moved aside without being followed or opened")}])
-
-    def process_claimed(self, name: str, info: os.stat_result | None = None,
-                        examined: _Examined | None = None, redo: bool = False) -> Processed | None:
-        """Take ``work/<name>`` through to its end; the same call finishes it after a crash or a failed write.
+    def process_claimed(self, work_name: str, info: os.stat_result | None = None,
+                        examined: Examined | None = None, redo: bool = False) -> Processed | None:
+        """Take ``work/<work_name>`` through to its end; the same call finishes it after a crash or a failed write.
 
         Raises
         ------
@@ -497,251 +207,96 @@ class Lab:
         Interrupted
             A stop was asked while a stage ran; the input is still in ``work/``.
         """
-        path = f"{self._work}/{name}"
+        path = f"{self._work}/{work_name}"
         if info is None:
             try:
                 info = os.lstat(path)
             except FileNotFoundError:
                 return None
-        claim = claim_key(info)
-        done = self._recorded.get(claim)
+        claimed = Claimed(work_name, self.claims.original_name(work_name), claim_key(info), redo)
+        done = self.history.final_record(claimed.claim)
         if done is not None:
-            self._move_input(name, done.input, claim)
-            return Processed(printable(name), done.outcome, done.order_id, done.status, redo=True)
+            self.commits.move_input(work_name, done.input, claimed.claim)
+            return Processed(printable(claimed.name), done.outcome, done.order_id, done.status, redo=True)
         if examined is None:
-            examined = self._examine_claimed(path, info)
-        received = received_part(printable(name), examined.size, examined.sha256, utc_now(), claim,
+            try:
+                examined = examine_claimed(path, info, self.config.watch.max_order_bytes, self.host.settings.materials)
+            except OSError as exc:  # out of file descriptors, an I/O error: not the order's fault
+                raise OutputBlocked("read", path, exc, work_name) from exc
+        return self._decide(claimed, examined)
+
+    def _decide(self, claimed: Claimed, examined: Examined) -> Processed:
+        received = received_part(printable(claimed.name), examined.size, examined.sha256, utc_now(), claimed.claim,
                                  examined.parsed, examined.kind)
         order_id = examined.order_id
         if examined.problems is not None:
-            return self._reject(name, claim, received, examined.problems, order_id, redo=redo)
-        history = self._history()
-        if history.is_published(order_id):
-            if history.published_content(order_id) == examined.content_sha256:
-                return self._skip(name, claim, received, examined, redo)
-            return self._hold(name, claim, received, examined, redo)
+            return self.outcomes.reject(claimed, received, examined.problems, order_id)
+        published = self.history.published_content(order_id)
+        if published is not None:
+            if published == examined.content_sha256:
+                return self.outcomes.skip(claimed, received, examined)
+            return self.outcomes.hold(claimed, received, examined)
         try:
             with self.time_limit():
                 outcome = self.pipeline.run(examined.order, examined.parsed)
         except StageFailure as exc:
-            problems = [{"field": f"(stage {exc.stage})", "message": exc.message}]
-            return self._reject(name, claim, received, problems, order_id, redo)
+            problems = [{"field": exc.field, "message": exc.message}]
+            return self.outcomes.reject(claimed, received, problems, order_id)
         except (OrderTimeLimit, StageWontStop) as exc:
             problems = [{"field": "(stage unknown)", "message": str(exc)}]
-            return self._reject(name, claim, received, problems, order_id, redo)
+            return self.outcomes.reject(claimed, received, problems, order_id)
         except Exception as exc:  # e.g. a result_ready hook that raised: the order fails, the engine goes on
             problems = [{"field": "(engine)", "message": f"{type(exc).__name__}: {exc}"}]
-            return self._reject(name, claim, received, problems, order_id, redo)
+            return self.outcomes.reject(claimed, received, problems, order_id)
         for stage, seconds in outcome.timings.items():
             self.stage_seconds[stage] = self.stage_seconds.get(stage, 0.0) + seconds
-        return self._publish(name, claim, received, outcome.result, examined, redo)
+        return self.outcomes.publish(claimed, received, outcome.result, examined)
 
-    def _publish(self, name: str, claim: str, received: dict[str, Any], result: dict[str, Any],
-                 examined: _Examined, redo: bool) -> Processed:
-        """Write the result under a temp name and queue the order's records for :meth:`commit`."""
-        order_id = result["order_id"]
-        if not ORDER_ID_RE.match(order_id):  # validated by the contract already; never a path
-            raise ValueError(f"order id {order_id!r} cannot name a file")
-        data = result_bytes(result)
-        # A result that needs a person waits in review/, never in outbox/ (lenslane decide approves or refuses it).
-        folder = "review" if result["status"] == "review" else "outbox"
-        target = f"{self._root}/{folder}/{order_id}.json"
-        try:
-            self._unpublished.append((write_unsynced(target, data), target))  # made durable by commit()
-        except OSError as exc:
-            raise OutputBlocked("publish", target, exc, claimed=True) from exc
-        destination = f"archive/{free_name(self.archive, name, claim_tag(claim))}"
-        event = {"event": "published", "order_id": order_id, "received": received, "status": result["status"],
-                 "result": f"{folder}/{order_id}.json", "result_sha256": hashlib.sha256(data).hexdigest(),
-                 "content_sha256": examined.content_sha256, "input": destination, "run": self.run,
-                 "changes": result["changes"], "flags": result["flags"]}
-        self._history().note_published(order_id, examined.content_sha256)
-        return self._defer(name, claim, [event], _Recorded(destination, "published", order_id, result["status"]),
-                           Processed(printable(name), "published", order_id, result["status"], redo=redo))
+    # -- the group commit -------------------------------------------------------------------
 
-    def _reject(self, name: str, claim: str, received: dict[str, Any], problems: list[dict[str, str]],
-                order_id: str | None = None, redo: bool = False) -> Processed:
-        target = free_name(self.rejected, name, claim_tag(claim), ERRORS_SUFFIX)
-        destination = f"rejected/{target}"
-        report = {"file": printable(name), "rejected": True, "problems": problems, "input": printable(destination)}
-        self._write("reject", self.rejected / f"{target}{ERRORS_SUFFIX}", _report_bytes(report))
-        return self._defer(name, claim, [{"event": "rejected", "order_id": order_id, "received": received,
-                                          "reasons": problems, "input": printable(destination), "run": self.run}],
-                           _Recorded(destination, "rejected", order_id, None),
-                           Processed(printable(name), "rejected", order_id, reasons=problems, redo=redo))
-
-    def _hold(self, name: str, claim: str, received: dict[str, Any], examined: _Examined, redo: bool) -> Processed:
-        order_id = examined.order_id
-        target = free_name(self.held, name, claim_tag(claim), HELD_SUFFIX)
-        destination = f"held/{target}"
-        reasons = [{"field": "order_id", "message": (
-            f"order {order_id} was already published (outbox/{order_id}.json) with different content; this "
-            "copy is held for a person to compare the two and decide — it was not processed")}]
-        report = {"file": printable(name), "held": True, "order_id": order_id, "reasons": reasons,
-                  "published": f"outbox/{order_id}.json", "input": printable(destination)}
-        self._write("hold", self.held / f"{target}{HELD_SUFFIX}", _report_bytes(report))
-        return self._defer(name, claim, [{"event": "held", "order_id": order_id, "received": received,
-                                          "reasons": reasons, "content_sha256": examined.content_sha256,
-                                          "input": printable(destination), "run": self.run}],
-                           _Recorded(destination, "held", order_id, None),
-                           Processed(printable(name), "held", order_id, reasons=reasons, redo=redo))
-
-    def _skip(self, name: str, claim: str, received: dict[str, Any], examined: _Examined, redo: bool) -> Processed:
-        order_id = examined.order_id
-        destination = f"archive/{free_name(self.archive, name, claim_tag(claim))}"
-        return self._defer(name, claim, [{
-            "event": "skipped", "order_id": order_id, "received": received,
-            "reason": f"the same order (same content) was already published as outbox/{order_id}.json; "
-                      "this copy is recorded and archived, nothing is published again",
-            "content_sha256": examined.content_sha256, "input": destination, "run": self.run}], _Recorded(destination, "skipped", order_id, None),
-            Processed(printable(name), "skipped", order_id, redo=redo))
-
-    # -- the steps that write ------------------------------------------------
-
-    def _write(self, step: str, path: str | Path, data: bytes) -> None:
-        try:
-            write_durably(path, data, sync_folder=False)  # the folder is fsynced by commit()
-        except OSError as exc:
-            raise OutputBlocked(step, path, exc, claimed=True) from exc
-        self._unsynced_folders.add(os.path.dirname(os.fspath(path)))
-        self._reached("published")
-
-    def _defer(self, name: str, claim: str, events: list[dict[str, Any]], recorded: _Recorded,
-               processed: Processed) -> Processed:
-        """Queue an order whose output file is written for :meth:`commit`, which records and archives it."""
-        self._batch.append(_Pending(name, claim, events, recorded, processed))
-        return processed
+    def commit(self) -> list[Processed]:
+        """Make the orders processed since the last commit final (see :mod:`lenslane.lab.commit`)."""
+        return self.commits.commit()
 
     def is_pending(self, processed: Processed) -> bool:
         """Whether ``processed`` still waits for :meth:`commit`."""
-        batches = [self._batch] if self._committing is None else [self._batch, self._committing.batch]
-        return any(pending.processed is processed for batch in batches for pending in batch)
+        return self.commits.is_pending(processed)
 
     @property
     def uncommitted(self) -> int:
-        """Orders processed whose audit records and archiving wait for :meth:`commit`."""
-        return len(self._batch) + (len(self._committing.batch) if self._committing is not None else 0)
+        return self.commits.uncommitted
 
     @property
     def batched(self) -> int:
-        """Orders processed since the last call of :meth:`commit` (the batch it will take next)."""
-        return len(self._batch)
-
-    def commit(self) -> list[Processed]:
-        """Make the orders processed since the last commit final: group commit.
-
-        In this order: make the batch's result files (written under temp
-        names) durable with one flush of the file system; rename each to its
-        ``outbox/<order_id>.json``; fsync the folders the output files were
-        renamed into; append all the batch's audit records in one write and
-        fsync it; then move each input out of ``work/``. A result is never
-        renamed before its bytes are on disk, and until the audit fsync returns
-        every input of the batch is still in ``work/``, so a crash at any
-        instant leaves each order either recorded (only the move is left) or
-        redone from its input, deterministically, over the same output name.
-        That is the guarantee of one order at a time, with one flush, one
-        folder fsync and one audit fsync per batch instead of per order.
-
-        Returns the orders now final. Raises :class:`OutputBlocked` when a step
-        fails; what is not final stays queued, and the next call resumes it.
-        """
-        if self._committing is None and self._batch:
-            self._committing = _Commit(self._batch, self._unpublished, self._unsynced_folders)
-            self._batch, self._unpublished, self._unsynced_folders = [], [], set()
-        if self._committing is not None:
-            self._finish(self._committing)
-            self._committing = None
-        done, self._final = self._final, []
-        return done
-
-    def _finish(self, unit: "_Commit") -> None:
-        """The steps of :meth:`commit` for one batch, resuming after the last one that succeeded.
-
-        Each order made final goes to ``_final`` at once, so one that a later
-        failure in the same call would hide is still returned by the next call.
-        """
-        if unit.unpublished and not unit.durable:
-            try:
-                make_durable(self._outbox, [temp for temp, _ in unit.unpublished])
-            except OSError as exc:
-                raise OutputBlocked("publish", self._outbox, exc, claimed=True) from exc
-            unit.durable = True
-        while unit.unpublished:
-            temp, target = unit.unpublished[0]
-            try:
-                os.replace(temp, target)
-            except OSError as exc:
-                raise OutputBlocked("publish", target, exc, claimed=True) from exc
-            unit.unpublished.pop(0)
-            unit.folders.add(os.path.dirname(target))  # outbox/, or review/
-            self._reached("published")
-        while unit.folders:
-            folder = next(iter(unit.folders))
-            try:
-                fsync_dir(folder)
-            except OSError as exc:
-                raise OutputBlocked("publish", folder, exc, claimed=True) from exc
-            unit.folders.discard(folder)
-        batch = unit.batch
-        unrecorded = [pending for pending in batch if not pending.recorded_in_log]
-        if unrecorded:
-            if self.audit is None:
-                self.audit = self._open_audit()
-            try:
-                self.audit.append([event for pending in unrecorded for event in pending.events])
-            except (OSError, AuditError) as exc:
-                raise OutputBlocked("audit", self.audit.path, exc, claimed=True) from exc
-            for pending in unrecorded:
-                pending.recorded_in_log = True
-                self._recorded[pending.claim] = pending.recorded
-            self._history().note_recorded([pending.processed.order_id for pending in unrecorded])
-            self._reached("audited")
-        while batch:
-            pending = batch[0]
-            self._move_input(pending.name, pending.recorded.input, pending.claim)
-            self._final.append(batch.pop(0).processed)
-
-    def _move_input(self, name: str, destination: str, claim: str) -> None:
-        target = f"{self._root}/{destination}"
-        try:
-            os.rename(f"{self._work}/{name}", target)
-        except FileNotFoundError:
-            pass  # already moved, or removed by hand: nothing is left to do
-        except OSError as exc:
-            raise OutputBlocked("archive", target, exc, claimed=True) from exc
-        self._recorded.pop(claim, None)
-        self._reached("archived")
-
-    def _reached(self, step: str) -> None:
-        if self._fault is not None and self._fault[0] == step:
-            self._fault_count += 1
-            if self._fault_count >= self._fault[1]:
-                os._exit(FAULT_EXIT_CODE)  # as abrupt as a crash: no clean-up, no flushing
-
-    # -- for library use -------------------------------------------------------
+        return self.commits.batched
 
     def drain(self) -> list[Processed]:
-        """Finish what ``work/`` holds, then every complete order now in the inbox, one commit per order.
+        """Finish what ``work/`` holds, then every complete order now in the inbox (see :func:`drain`)."""
+        return drain(self)
 
-        For scripts and tests; ``lenslane watch --once`` goes through the
-        daemon, which adds the lock, the time limit, retries, logs and the
-        group commit of a backlog.
-        """
-        done = []
-        for name in self.recover():
-            processed = self.process_claimed(name, redo=True)
-            if processed is not None:
-                done += self.commit() if self.uncommitted else [processed]
-        names = self.pending()
-        while names:
-            settling = []
-            for name in names:
-                outcome = self.consider(name)
-                if isinstance(outcome, Processed):
-                    done += self.commit() if self.uncommitted else [outcome]
-                elif isinstance(outcome, Wait) and outcome.reason == "settling":
-                    settling.append((outcome.until, name))
-            if settling:
-                time.sleep(max(0.0, min(until for until, _ in settling) - time.time()))
-            names = [name for _, name in settling]
-        return done
+
+def drain(lab: Lab) -> list[Processed]:
+    """Finish what ``work/`` holds, then every complete order now in the inbox, one commit per order.
+
+    For scripts and tests; ``lenslane watch --once`` goes through the daemon,
+    which adds the lock, the time limit, retries, logs and the group commit of a
+    backlog.
+    """
+    done = []
+    for name in lab.recover():
+        processed = lab.process_claimed(name, redo=True)
+        if processed is not None:
+            done += lab.commit() if lab.uncommitted else [processed]
+    names = lab.pending()
+    while names:
+        settling = []
+        for name in names:
+            outcome = lab.consider(name)
+            if isinstance(outcome, Processed):
+                done += lab.commit() if lab.uncommitted else [outcome]
+            elif isinstance(outcome, Wait) and outcome.reason == "settling":
+                settling.append((outcome.until, name))
+        if settling:
+            time.sleep(max(0.0, min(until for until, _ in settling) - time.time()))
+        names = [name for _, name in settling]
+    return done

@@ -102,7 +102,7 @@ def test_history_answers_the_lab_from_the_index(make_lab, drop, order_dict):
                  for line in path.read_bytes().splitlines() if b'"order_id":"IDX-0003"' in line]
     assert history.published_content("IDX-0003") == published[-1]["content_sha256"]
     claim = published[-1]["received"]["claim"]
-    assert history.final_record(claim)["seq"] == published[-1]["seq"]
+    assert history.final_record(claim).seq == published[-1]["seq"]  # the lab's FinalRecord
     assert history.final_record("0:0") is None
 
 

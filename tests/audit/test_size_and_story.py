@@ -11,7 +11,7 @@ from lenslane.audit.records import AUDIT_NAME, DEFINE_EVENT, TORN_EVENT
 from lenslane.audit.verify import verify
 from lenslane.audit.writer import AuditLog
 from lenslane.cli import main
-from lenslane.report.explain import order_story
+from lenslane.report import order_story
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 from tests.benchmarks.orders import write_orders  # noqa: E402

@@ -75,17 +75,13 @@ def order_event(number: int, story: tuple[dict, dict], run: dict, at: str) -> di
 
 def build(lab: Path, count: int, start: int = 0, note: str = "") -> float:
     """Append ``count`` orders to the lab's log through AuditLog; returns seconds."""
-    from lenslane import __version__
     from lenslane.audit.records import run_definition, utc_now
     from lenslane.audit.writer import AuditLog
     from lenslane.chain.host import start_host
     from lenslane.config import load_config
 
     host = start_host(load_config(lab))
-    chain = [link.stage.name for link in host.chain]
-    run = run_definition(__version__, host.config_sha256, host.effective_config, chain,
-                         {name: {"plugin": info.plugin, "from": info.origin, "version": info.version}
-                          for name, info in host.stages.items() if name in chain})
+    run = run_definition(host.provenance, host.effective_config)
     pool = stories(host)
     audit = host.config.audit
     log = AuditLog(lab / "audit.jsonl", audit.rotate_bytes, audit.rotate_period)
@@ -114,7 +110,7 @@ EXPLAIN_PROBE = """
 import json, random, sys, time, resource
 from pathlib import Path
 from lenslane.audit.index import Index
-from lenslane.report.explain import order_story, render
+from lenslane.report import order_story, render_text as render
 lab, count = Path(sys.argv[1]), int(sys.argv[2])
 rng = random.Random(7)
 times = []

@@ -46,13 +46,20 @@ def _peak_rss_mb(argv: list[str]) -> tuple[float, float, str]:
     return elapsed, usage.ru_maxrss / 1024.0, out
 
 
-def bench(count: int, workdir: Path) -> dict:
+def bench(count: int, workdir: Path, settings: dict[str, str] | None = None) -> dict:
+    """Drain ``count`` orders; ``settings`` replaces lines of the lab's config (a commented default by its setting)."""
     source = workdir / f"orders-{count}"
     write_orders(source, count)
     engine_lab = workdir / f"engine-{count}"
     floor_labs = [workdir / f"floor-before-{count}", workdir / f"floor-after-{count}"]
     lenslane = [sys.executable, "-m", "lenslane.cli"]
     subprocess.run([*lenslane, "init", str(engine_lab)], check=True, stdout=subprocess.DEVNULL)
+    config = engine_lab / "lenslane.toml"
+    for line, setting in (settings or {}).items():
+        text = config.read_text(encoding="utf-8")
+        if line not in text:
+            raise SystemExit(f"the lab config has no line {line!r} to replace")
+        config.write_text(text.replace(line, setting, 1), encoding="utf-8")
     for lab in floor_labs:
         (lab / "inbox").mkdir(parents=True)
     for name in os.listdir(source):

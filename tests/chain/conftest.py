@@ -8,6 +8,8 @@ from pathlib import Path
 import pytest
 from plugin_dists import write_distribution, write_example_distribution
 
+from lenslane.chain.host import PLUGINS_VARIABLE
+
 _unique = itertools.count(1)
 
 
@@ -27,6 +29,9 @@ def install_plugin(tmp_path, monkeypatch):
         (site / f"{module}.py").write_text(source, encoding="utf-8")
         write_distribution(site, project or f"lenslane-test-{entry_name.replace('_', '-')}", version,
                            {entry_name: module})
+        # Installed plugins load only by name in the engine's tests (see tests/conftest.py): this one is asked for.
+        wanted = [n for n in os.environ.get(PLUGINS_VARIABLE, "").split(",") if n]
+        monkeypatch.setenv(PLUGINS_VARIABLE, ",".join([*wanted, entry_name]))
         return module
 
     return install

@@ -38,9 +38,15 @@ def write_example_distribution(root: Path) -> Path:
                               project["entry-points"][GROUP])
 
 
+def example_only() -> dict[str, str]:
+    """The environment that has the engine load, of the installed plugins, only the example."""
+    return {"LENSLANE_DISABLE_PLUGIN_AUTOLOAD": "1", "LENSLANE_PLUGINS": "edger_limits"}
+
+
 def run_lenslane(args: list[str], site: Path | None, cwd: Path) -> subprocess.CompletedProcess:
     """Run ``lenslane ARGS`` in a child process with the example plugin installed through ``site``."""
     env = dict(os.environ)
+    env.update(example_only())
     paths = [str(site), str(EXAMPLE_SOURCE)] if site is not None else []
     env["PYTHONPATH"] = os.pathsep.join(paths + [p for p in [env.get("PYTHONPATH")] if p])
     return subprocess.run([sys.executable, "-m", "lenslane.cli", *args], cwd=cwd, env=env,

@@ -10,7 +10,7 @@ import sys
 import sysconfig
 
 import pytest
-from plugin_dists import EXAMPLE, EXAMPLE_SOURCE, run_lenslane
+from plugin_dists import EXAMPLE, EXAMPLE_SOURCE, example_only, run_lenslane
 
 from lenslane.audit.log import Index, iter_records, unpack
 from lenslane.lab.folder import init_lab
@@ -125,7 +125,7 @@ def test_trace_hooks_prints_every_hook_call_of_the_example(lab, example_site, tm
 
 
 def test_the_example_packages_own_tests_pass(example_site, tmp_path):
-    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(example_site), str(EXAMPLE_SOURCE)]))
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(example_site), str(EXAMPLE_SOURCE)]), **example_only())
     ran = subprocess.run([sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider", str(EXAMPLE / "tests")],
                          cwd=tmp_path, env=env, capture_output=True, text=True, check=False)
     assert ran.returncode == 0, ran.stdout + ran.stderr
@@ -136,7 +136,8 @@ def test_the_example_packages_own_tests_pass(example_site, tmp_path):
 def test_pip_install_editable_into_a_temporary_environment(tmp_path):
     """The documented path: ``pip install -e examples/edger-limits``, then ``lenslane plugins`` lists it."""
     environment = tmp_path / "env"
-    subprocess.run([sys.executable, "-m", "venv", str(environment)], check=True)
+    # Without pip of its own: the engine's site folder (below) lends it pip and setuptools, so the build needs no index.
+    subprocess.run([sys.executable, "-m", "venv", "--without-pip", str(environment)], check=True)
     python = environment / "bin" / "python"
     site_packages = subprocess.run([str(python), "-c", "import sysconfig; print(sysconfig.get_paths()['purelib'])"],
                                    capture_output=True, text=True, check=True).stdout.strip()
@@ -145,17 +146,16 @@ def test_pip_install_editable_into_a_temporary_environment(tmp_path):
         f"import site; site.addsitedir({sysconfig.get_paths()['purelib']!r})\n", encoding="utf-8")
     package = tmp_path / "edger-limits"
     shutil.copytree(EXAMPLE, package, ignore=shutil.ignore_patterns("__pycache__", "*.egg-info"))
-    installed = subprocess.run([str(python), "-m", "pip", "install", "--quiet", "--no-deps", "-e", str(package)],
-                               capture_output=True, text=True, check=False)
-    if "No matching distribution found for setuptools" in installed.stderr:
-        pytest.skip("pip cannot reach an index with setuptools to build the package")
+    installed = subprocess.run([str(python), "-m", "pip", "install", "--quiet", "--no-deps", "--no-build-isolation",
+                                "-e", str(package)], capture_output=True, text=True, check=False)
     assert installed.returncode == 0, installed.stderr
 
     lab = tmp_path / "lab"
     init_lab(lab)
     (lab / "lenslane.toml").write_text(CONFIG.format(blocked=""), encoding="utf-8")
+    env = dict(os.environ, **example_only())
     listed = subprocess.run([str(python), "-m", "lenslane.cli", "plugins", "--lab", str(lab)],
-                            capture_output=True, text=True, check=False, cwd=tmp_path)
+                            capture_output=True, text=True, check=False, cwd=tmp_path, env=env)
     assert listed.returncode == 0, listed.stderr
     row = [line.split() for line in listed.stdout.splitlines() if line.startswith("edger_limits ")][0]
     assert row[3:5] == ["lenslane-edger-limits", "1.0.0"]

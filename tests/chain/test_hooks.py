@@ -166,6 +166,45 @@ def test_result_ready_observes_the_exact_result_and_cannot_change_it(install_plu
     assert {k: v for k, v in seen.items() if k != "status"} == {k: v for k, v in result.items() if k != "status"}
 
 
+CONFIGURED = '''
+from pydantic import BaseModel, ConfigDict
+from lenslane import hookimpl
+
+class Settings(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    queue: str = "held-orders"
+
+SETTINGS = []
+
+@hookimpl
+def lenslane_configure(settings):
+    SETTINGS.append(Settings.model_validate(settings))
+'''
+
+
+def test_configure_receives_the_plugins_own_table_at_start(install_plugin):
+    import importlib
+
+    module = importlib.import_module(install_plugin("notify", CONFIGURED))
+    start_host(LabConfig.model_validate({"plugins": {"notify": {"queue": "lab-2"}}}))
+    start_host(LabConfig())  # no table: the plugin's defaults
+    assert [s.queue for s in module.SETTINGS] == ["lab-2", "held-orders"]
+
+
+def test_configure_refusing_its_table_stops_the_engine_with_the_key(install_plugin):
+    install_plugin("notify", CONFIGURED)
+    with pytest.raises(ConfigError, match=r"plugins\.notify\.queu: Extra inputs are not permitted"):
+        start_host(LabConfig.model_validate({"plugins": {"notify": {"queu": "lab-2"}}}))
+
+
+def test_a_plugins_table_for_no_plugin_or_a_plugin_without_settings_stops_the_engine(install_plugin):
+    install_plugin("observer", OBSERVER)
+    with pytest.raises(ConfigError, match=r"plugins\.nosuch: no plugin is named 'nosuch'"):
+        start_host(LabConfig.model_validate({"plugins": {"nosuch": {"a": 1}}}))
+    with pytest.raises(ConfigError, match=r"plugins\.observer: plugin 'observer' .* takes no settings"):
+        start_host(LabConfig.model_validate({"plugins": {"observer": {"a": 1}}}))
+
+
 HOOK_TESTS = {
     "lenslane_stages": [test_stages_from_a_plugin_run_in_the_chain_and_are_recorded,
                         test_two_plugins_providing_one_stage_name_stop_the_engine],
@@ -173,6 +212,9 @@ HOOK_TESTS = {
                            test_the_lab_config_overrides_a_plugins_material],
     "lenslane_run_stage": [test_a_run_stage_wrapper_sees_every_stage_and_changes_nothing],
     "lenslane_result_ready": [test_result_ready_observes_the_exact_result_and_cannot_change_it],
+    "lenslane_configure": [test_configure_receives_the_plugins_own_table_at_start,
+                           test_configure_refusing_its_table_stops_the_engine_with_the_key,
+                           test_a_plugins_table_for_no_plugin_or_a_plugin_without_settings_stops_the_engine],
 }
 
 
@@ -237,6 +279,7 @@ def test_every_hook_example_in_developers_md_runs(name):
         "lenslane_run_stage": lambda: pm.hook.lenslane_run_stage(stage=stage, view=None, params=None),
         "lenslane_result_ready": lambda: pm.hook.lenslane_result_ready(
             order_id="TST-0001", result={"status": "review", "order_id": "TST-0001"}),
+        "lenslane_configure": lambda: pm.hook.lenslane_configure(settings={"queue": "lab-2"}),
     }
     assert name in calls, f"{name}: add a call for the new hook here"
     outcome = calls[name]()
@@ -246,6 +289,8 @@ def test_every_hook_example_in_developers_md_runs(name):
         assert all(set(values) == {"index", "abbe", "density"} for entry in outcome for values in entry.values())
     elif name == "lenslane_run_stage":
         assert [p.code for p in outcome] == ["probe"]
+    elif name == "lenslane_configure":
+        assert module.SETTINGS["current"].queue == "lab-2"
     else:
         assert module.HELD == ["TST-0001"]
 

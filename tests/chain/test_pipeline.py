@@ -53,12 +53,61 @@ def test_every_changed_field_has_a_change_record(order_dict):
     assert note["reason"] and note["method"] and note["source"]
 
 
+class Overwrite(NoteStage):
+    """Writes ``value`` to ``lenses.<eye>.surfacing.<key>`` (or to the whole power when ``key`` is None)."""
+
+    def __init__(self, value, key=None):
+        super().__init__(name="overwrite", writes=("lenses.*.surfacing",))
+        self.value, self.key = value, key
+
+    def run(self, view, params):
+        for eye in view.eyes:
+            field = f"lenses.{eye}.surfacing" + (f".{self.key}" if self.key else "")
+            yield Change(field, self.value, "Overwrites the power.", "test", "Common practice")
+
+
 def test_a_change_records_the_value_before_and_after(order_dict):
-    overwrite = NoteStage(name="overwrite", writes=("lenses.*.surfacing",), field="lenses.{eye}.surfacing")
-    result = run_order(host_with(chain_with("overwrite"), overwrite=overwrite), order_dict)
+    power = {"sphere": -1.254, "cylinder": -0.5, "axis": 90}
+    result = run_order(host_with(chain_with("overwrite"), overwrite=Overwrite(power)), order_dict)
     last = [c for c in result["changes"] if c["stage"] == "overwrite" and c["field"] == "lenses.right.surfacing"][0]
     assert last["before"] == {"sphere": -1.0, "cylinder": -0.5, "axis": 90}
-    assert last["after"] == "checked"
+    assert last["after"] == {"sphere": -1.25, "cylinder": -0.5, "axis": 90}
+
+
+@pytest.mark.parametrize("value, key, problem", [
+    ("abc", "sphere", r"lenses\.right\.surfacing\.sphere: Input should be a valid number"),
+    (float("nan"), "sphere", r"wrote nan to lenses\.right\.surfacing\.sphere: not a finite number"),
+    (float("inf"), "cylinder", r"wrote inf to lenses\.right\.surfacing\.cylinder: not a finite number"),
+    (-80.0, "sphere", r"lenses\.right\.surfacing\.sphere: Input should be greater than or equal to -50"),
+    (0, "axis", r"lenses\.right\.surfacing\.axis: Input should be greater than or equal to 1"),
+    ({1, 2}, "sphere", r"wrote a set to lenses\.right\.surfacing\.sphere: not a JSON value"),
+    ({"sphere": -1.0}, None, r"lenses\.right\.surfacing\.cylinder: Field required"),
+])
+def test_a_value_the_result_contract_refuses_fails_the_order_naming_the_stage(order_dict, value, key, problem):
+    # ORDER_FORMAT.md: a power is a number in dioptres, the axis a whole degree 1–180; JSON has no NaN.
+    with pytest.raises(StageFailure, match=problem) as caught:
+        run_order(host_with(chain_with("overwrite"), overwrite=Overwrite(value, key)), order_dict)
+    assert caught.value.stage == "overwrite" and caught.value.field == "(stage overwrite)"
+
+
+def test_a_result_missing_what_the_contract_requires_fails_without_blaming_a_stage(order_dict):
+    # A chain without normalize writes no rx or surfacing, which every published lens must have.
+    with pytest.raises(StageFailure, match=r"lenses\.right\.rx: Field required; no stage of the chain wrote it") as caught:
+        run_order(host_with('[engine]\nchain = ["validate"]\n'), order_dict)
+    assert caught.value.field == "(result)" and caught.value.stage is None
+
+
+def test_a_nan_in_a_lab_field_or_in_flag_values_is_refused(order_dict):
+    # The result model lets a lab keep its own fields (lenses.<eye>.lab…); they must still be JSON numbers.
+    lab_nan = NoteStage(name="labnan", field="lenses.{eye}.lab.note")
+    lab_nan.run = lambda view, params: [Change("lenses.right.lab.seal_mm", float("nan"), "r", "m", "s")]
+    with pytest.raises(StageFailure, match="not a finite number"):
+        run_order(host_with(chain_with("labnan"), labnan=lab_nan), order_dict)
+
+    flagging = NoteStage(name="flagging")
+    flagging.run = lambda view, params: [Flag("odd", "info", "m", values={"gap_mm": float("-inf")})]
+    with pytest.raises(StageFailure, match="flag 'odd' values.gap_mm: not a finite number"):
+        run_order(host_with(chain_with("flagging"), flagging=flagging), order_dict)
 
 
 def test_a_later_write_inside_an_object_leaves_the_earlier_record_as_it_was(order_dict):

@@ -12,7 +12,7 @@ from lenslane.cli import main
 from lenslane.contract.models import LensOrderResult
 from lenslane.decide import DecisionError, decide
 from lenslane.decide.model import EXIT_MISMATCH, EXIT_NOT_AWAITING, EXIT_UNKNOWN, EXIT_USAGE
-from lenslane.report.explain import order_story, render
+from lenslane.report import order_story, render_text as render
 from tests.decide.helpers import load, ready_order, records, review_order
 
 

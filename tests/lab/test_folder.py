@@ -13,12 +13,16 @@ import pytest
 import structlog
 from hypothesis import given, settings, strategies as st
 
-from lenslane.watch.daemon import Daemon, InboxEvents, StageClock, start_observer
+from lenslane.chain.host import start_host
+from lenslane.config import LabConfig
+from lenslane.watch.clock import StageClock
+from lenslane.watch.tally import Tally
+from lenslane.watch.observer import InboxEvents, start_observer
 from lenslane.lab.files import LabLocked, filesystem_type, free_name, is_network_file_system, lock_lab
 from lenslane.lab.folder import Interrupted, Lab, OrderTimeLimit, Processed, StageWontStop, Wait
 from lenslane.contract.intake import OrderRejected, parse_json, read_order
 from lenslane.watch.log import configure_logging, get_logger
-from tests.system.driver import make_lab, order
+from tests.system.driver import claimed, make_lab, order
 
 MATERIALS = {"resin-1.50": {}}
 NON_ASCII_ORDER = json.dumps(order("PART-1", account="optique-café-ü"), ensure_ascii=False, indent=1).encode()
@@ -67,10 +71,9 @@ def test_a_complete_order_with_wrong_fields_is_plainly_bad():
 
 
 @pytest.fixture
-def lab(tmp_path, default_host):
+def lab(tmp_path):
     root = make_lab(tmp_path / "lab")
-    lab = Lab(root, default_host)
-    lab.quiet_seconds, lab.young_seconds = 0.2, 60.0
+    lab = Lab(root, start_host(LabConfig.model_validate({"watch": {"quiet_seconds": 0.2, "young_seconds": 60.0}})))
     lab.recover()
     return lab
 
@@ -82,35 +85,37 @@ def _process(lab, *order_ids):
 
 
 def test_a_failed_flush_keeps_the_batch_for_the_retry(lab, monkeypatch):
+    import lenslane.lab.commit
     import lenslane.lab.folder
 
     _process(lab, "FLUSH-1")
     failing = OSError(errno.EIO, "Input/output error")
-    monkeypatch.setattr(lenslane.lab.folder, "make_durable", lambda folder, paths: (_ for _ in ()).throw(failing))
+    monkeypatch.setattr(lenslane.lab.commit, "make_durable", lambda folder, paths: (_ for _ in ()).throw(failing))
     with pytest.raises(lenslane.lab.folder.OutputBlocked) as blocked:
         lab.commit()
     assert blocked.value.error is failing and blocked.value.step == "publish"
-    assert os.listdir(lab.work) == ["FLUSH-1.json"] and not (lab.outbox / "FLUSH-1.json").exists()
+    assert claimed(lab.root) == ["FLUSH-1.json"] and not (lab.outbox / "FLUSH-1.json").exists()
     monkeypatch.undo()
     assert [p.order_id for p in lab.commit()] == ["FLUSH-1"]
     assert (lab.outbox / "FLUSH-1.json").exists() and os.listdir(lab.work) == []
 
 
 def test_orders_made_final_before_a_failure_are_returned_by_the_next_commit(lab, monkeypatch):
+    import lenslane.lab.commit
     import lenslane.lab.folder
 
     _process(lab, "FINAL-1", "FINAL-2")
-    real_rename = os.rename
+    real_rename = lenslane.lab.commit.rename_noreplace
 
     def archive_fails_for_the_second(source, target):
         if source.endswith("FINAL-2.json"):
             raise OSError(errno.EIO, "Input/output error")
         return real_rename(source, target)
 
-    monkeypatch.setattr(lenslane.lab.folder.os, "rename", archive_fails_for_the_second)
+    monkeypatch.setattr(lenslane.lab.commit, "rename_noreplace", archive_fails_for_the_second)
     with pytest.raises(lenslane.lab.folder.OutputBlocked):
         lab.commit()  # FINAL-1 is finished (archived); FINAL-2's move fails
-    assert (lab.outbox / "FINAL-1.json").exists() and os.listdir(lab.work) == ["FINAL-2.json"]
+    assert (lab.outbox / "FINAL-1.json").exists() and claimed(lab.root) == ["FINAL-2.json"]
     monkeypatch.undo()
     assert [p.order_id for p in lab.commit()] == ["FINAL-1", "FINAL-2"]  # neither is lost to the log
 
@@ -119,7 +124,7 @@ def test_a_fresh_file_written_in_place_waits_for_its_quiet_time(lab):
     (lab.inbox / "fresh.json").write_bytes(NON_ASCII_ORDER)
     outcome = lab.consider("fresh.json")
     assert isinstance(outcome, Wait) and outcome.reason == "settling"
-    assert outcome.until - time.time() <= lab.quiet_seconds
+    assert outcome.until - time.time() <= lab.config.watch.quiet_seconds
     assert isinstance(lab.consider("fresh.json", moved=True), Processed)  # renamed in: complete at once
 
 
@@ -128,7 +133,7 @@ def test_a_young_file_that_does_not_parse_is_retried_and_an_old_one_rejected(lab
     path.write_bytes(NON_ASCII_ORDER[:100])
     assert lab.consider("partial.json", closed=True).reason == "incomplete"
     assert path.exists()
-    old = time.time() - 2 * lab.young_seconds
+    old = time.time() - 2 * lab.config.watch.young_seconds
     os.utime(path, (old, old))
     done = lab.consider("partial.json")
     assert done.outcome == "rejected" and "invalid JSON" in done.reasons[0]["message"]
@@ -253,12 +258,11 @@ def test_log_lines_are_json_off_a_terminal_and_readable_on_one():
 
 
 def test_one_line_per_order_with_its_id_outcome_and_time(lab):
-    daemon = Daemon(lab)
-    daemon.log = get_logger()
+    tally = Tally(get_logger())
     with structlog.testing.capture_logs() as logs:
-        daemon._log_order(Processed("x.json", "rejected", None, reasons=[{"field": "(file)", "message": "empty"}]),
-                          time.perf_counter())
-        daemon._log_order(Processed("y.json", "published", "LOG-2", "ready"), time.perf_counter())
+        tally.final(Processed("x.json", "rejected", None, reasons=[{"field": "(file)", "message": "empty"}]),
+                    time.perf_counter())
+        tally.final(Processed("y.json", "published", "LOG-2", "ready"), time.perf_counter())
     assert [(e["event"], e["log_level"], e["outcome"]) for e in logs] == [
         ("order", "warning", "rejected"), ("order", "info", "published")]
     assert logs[0]["reason"] == "(file): empty" and logs[1]["order_id"] == "LOG-2" and logs[1]["ms"] >= 0

@@ -8,8 +8,8 @@ import json
 import pytest
 
 from lenslane.cli import main
-from lenslane.report.explain import geometry_text, power_text, prism_text
-from lenslane.contract.models import CAUTION
+from lenslane.report.notation import geometry_text, power_text, prism_text
+from lenslane.vocabulary import CAUTION
 
 MINUS = "\u2212"  # Source: Unicode U+2212 MINUS SIGN, the sign printed in the trade's notation
 
@@ -100,11 +100,12 @@ def test_explain_json_gives_the_same_story_as_data(make_lab, drop, compensated, 
     assert code == 0 and story["found"] and story["caution"] == CAUTION
     [processing] = story["processings"]
     assert processing["lenses"]["right"]["surfacing"]["sphere"] == -8.13
-    assert processing["lenses_text"]["left"]["surfacing"] == f"{MINUS}4.29 {MINUS}1.27 × 170"
+    assert processing["lenses"]["left"]["surfacing"] == {"sphere": -4.29, "cylinder": -1.27, "axis": 170}
+    assert processing["prescription"]["right"] == processing["lenses"]["right"]["rx"]
     vertex = [s for s in processing["stages"] if s["stage"] == "vertex"][0]
     change = [c for c in vertex["changes"] if c["field"] == "lenses.right.surfacing"][0]
     assert (change["before"]["sphere"], change["after"]["sphere"]) == (-8.0, -8.13)
-    assert change["after_text"] == f"{MINUS}8.13 DS" and change["method"] and change["source"]
+    assert change["method"] and change["source"]
     assert processing["outcome"]["event"] == "published"
     published = (lab.outbox / "CMP-0001.json").read_bytes()
     assert processing["outcome"]["result_sha256"] == hashlib.sha256(published).hexdigest()
@@ -191,3 +192,26 @@ def test_prism_and_geometry_are_written_with_their_units():
                 "blank_min_diameter_mm": 62.0, "weight_g": 11.4}
     assert geometry_text(geometry) == ("front curve +4.00 D, centre thickness 1.0 mm, edge 3.9–6.8 mm, "
                                        "minimum blank diameter 62.0 mm, weight 11.4 g")
+
+
+def test_explain_shows_the_exact_tilt_compensation_beside_martins(make_lab, drop, order_dict, capsys):
+    # Source: issue 16 — each compensated lens's change record carries the as-worn residual and the value Martin's
+    # formula would have given, and explain shows both.
+    lab = make_lab({"stages": {"tilt": {"method": "exact"}}})
+    order = copy.deepcopy(order_dict)
+    order["order_id"] = "EXA-0001"
+    order["rx"] = {"right": {"sphere": 5.00, "cylinder": -1.00, "axis": 80}, "left": {"sphere": 4.50}}
+    order["fit"].update({"pantoscopic_deg": 12.0, "face_form_deg": 10.0})
+    drop(lab, order)
+    lab.drain()
+    code, out, _ = explain(lab, "EXA-0001", capsys)
+    assert code == 0
+    compare = [line for line in out.splitlines() if "Martin's formula would give" in line]
+    assert len(compare) == 2  # one per lens
+    for line in compare:
+        assert f"{MINUS}1" in line or "+" in line
+        assert " D from the wanted power, as published (rounded) 0.0" in line
+    code, out, _ = explain(lab, "EXA-0001", capsys, "--json")
+    changes = [c for s in json.loads(out)["processings"][0]["stages"] for c in s["changes"]
+               if c["field"].endswith("surfacing") and s["stage"] == "tilt"]
+    assert all(c["inputs"]["asworn_residual_d"] < 1e-9 and "martin_surfacing" in c["inputs"] for c in changes)

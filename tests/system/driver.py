@@ -20,8 +20,10 @@ from typing import Any, Callable, Iterable
 
 import pytest
 
+from lenslane.chain.host import NO_AUTOLOAD_VARIABLE, PLUGINS_VARIABLE
 from lenslane.audit.log import iter_records, verify
 from lenslane.config import DEFAULT_CHAIN
+from lenslane.lab.claim import Claims
 from lenslane.lab.folder import init_lab
 from lenslane.contract.models import LensOrderResult
 from tests.conftest import BASE_ORDER, REPO
@@ -115,6 +117,11 @@ def names(folder: Path) -> list[str]:
     return sorted(os.listdir(folder))
 
 
+def claimed(lab: Path) -> list[str]:
+    """The names the inputs in ``work/`` arrived under (``work/`` holds them under claim names of their own)."""
+    return sorted(Claims.original_name(name) for name in os.listdir(lab / "work"))
+
+
 def count(folder: Path) -> int:
     return len(os.listdir(folder))
 
@@ -122,14 +129,16 @@ def count(folder: Path) -> int:
 class Watch:
     """A real ``lenslane watch`` process on a lab; its JSON log lines are kept in a file."""
 
-    def __init__(self, lab: Path, *args: str, env: dict[str, str] | None = None, ready: bool = True):
+    def __init__(self, lab: Path, *args: str, env: dict[str, str] | None = None, ready: bool = True,
+                 new_session: bool = False):
         self.lab = lab
         number = len(list(lab.parent.glob(f"{lab.name}-watch-*.log")))
         self.log_path = lab.parent / f"{lab.name}-watch-{number}.log"
         self.err_path = lab.parent / f"{lab.name}-watch-{number}.err"
         with open(self.log_path, "wb") as out, open(self.err_path, "wb") as err:
             self.process = subprocess.Popen([sys.executable, "-m", "lenslane.cli", "watch", str(lab), *args],
-                                            stdout=out, stderr=err, cwd=REPO, env=environment(env))
+                                            stdout=out, stderr=err, cwd=REPO, env=environment(env),
+                                            start_new_session=new_session)
         if ready and "--once" not in args:
             self.wait_for("observer")
 
@@ -145,14 +154,15 @@ class Watch:
     def events(self, event: str) -> list[dict[str, Any]]:
         return [line for line in self.lines() if line.get("event") == event]
 
-    def wait_for(self, event: str, where: Callable[[dict[str, Any]], bool] = lambda line: True) -> dict[str, Any]:
+    def wait_for(self, event: str, where: Callable[[dict[str, Any]], bool] = lambda line: True,
+                 timeout: float = WAIT_SECONDS) -> dict[str, Any]:
         def seen():
             if self.process.poll() is not None and not [x for x in self.events(event) if where(x)]:
                 raise AssertionError(f"lenslane watch exited {self.process.returncode} before logging {event!r}:\n"
                                      f"{self.log_path.read_text()}\n{self.err_path.read_text()}")
             return next((line for line in self.events(event) if where(line)), None)
 
-        return wait_until(seen, f"log line {event!r}")
+        return wait_until(seen, f"log line {event!r}", timeout)
 
     def stop(self, sig: int = signal.SIGTERM) -> int:
         if self.process.poll() is None:
@@ -162,6 +172,12 @@ class Watch:
     def kill(self) -> int:
         if self.process.poll() is None:
             self.process.kill()  # SIGKILL: no clean-up of any kind
+        return self.wait()
+
+    def kill_group(self) -> int:
+        """SIGKILL to the engine's whole process group (it must have been started with ``new_session``)."""
+        if self.process.poll() is None:
+            os.killpg(self.process.pid, signal.SIGKILL)
         return self.wait()
 
     def wait(self, timeout: float = WAIT_SECONDS) -> int:
@@ -179,7 +195,8 @@ class Watch:
 
 
 def environment(extra: dict[str, str] | None = None) -> dict[str, str]:
-    env = {k: v for k, v in os.environ.items() if not k.startswith("LENSLANE_")}
+    # Kept: the suite's own setting that the engine loads no installed plugin but those a test names.
+    env = {k: v for k, v in os.environ.items() if not k.startswith("LENSLANE_") or k == NO_AUTOLOAD_VARIABLE}
     env.update(extra or {})
     return env
 
@@ -187,6 +204,15 @@ def environment(extra: dict[str, str] | None = None) -> dict[str, str]:
 def run_once(lab: Path, env: dict[str, str] | None = None, extra_args: list[str] = ()) -> subprocess.CompletedProcess:
     return subprocess.run([sys.executable, "-m", "lenslane.cli", "watch", str(lab), "--once", *extra_args],
                           capture_output=True, text=True, cwd=REPO, env=environment(env), timeout=WAIT_SECONDS)
+
+
+def run_crashing(lab: Path, step: str, take: Iterable[str] = ()) -> subprocess.CompletedProcess:
+    """``watch --once`` that crashes right after ``step`` (``STEP[:N]``, see tests/system/crashing.py).
+
+    With ``take``, the engine takes exactly these inbox names, in this order, and commits them as one batch.
+    """
+    return subprocess.run([sys.executable, "-m", "tests.system.crashing", str(lab), step, *take],
+                          capture_output=True, text=True, cwd=REPO, env=environment(), timeout=WAIT_SECONDS)
 
 
 def temp_leftovers(lab: Path) -> list[str]:
@@ -251,7 +277,7 @@ def fault_plugin(tmp_path) -> dict[str, str]:
     (dist_info / "entry_points.txt").write_text("[lenslane.plugins]\nfault_stages = lenslane_fault_stages\n")
     (dist_info / "RECORD").write_text("")
     path = os.pathsep.join(filter(None, [str(site), os.environ.get("PYTHONPATH")]))
-    return {"PYTHONPATH": path}
+    return {"PYTHONPATH": path, PLUGINS_VARIABLE: "fault_stages"}
 
 
 FAULT_CHAIN = [*DEFAULT_CHAIN, "on_request"]

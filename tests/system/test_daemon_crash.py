@@ -7,9 +7,10 @@ import signal
 import pytest
 
 from lenslane.audit.log import iter_records
-from lenslane.lab.folder import FAULT_EXIT_CODE, FAULT_STEPS
+from lenslane.lab.folder import STEPS
+from tests.system.crashing import CRASH_EXIT_CODE
 from tests.system.driver import (
-    Watch, assert_exactly_once, count, drop, make_lab, names, order, order_bytes, run_once, sha256_of,
+    Watch, assert_exactly_once, count, drop, make_lab, names, order, order_bytes, run_crashing, run_once, sha256_of,
     temp_leftovers, wait_until, write_backlog,
 )
 
@@ -31,13 +32,13 @@ def test_kill_9_at_three_points_of_a_backlog_then_once(tmp_path):
     assert_exactly_once(lab, sent)
 
 
-@pytest.mark.parametrize("step", FAULT_STEPS)
+@pytest.mark.parametrize("step", STEPS)
 def test_a_crash_right_after_each_step_is_finished_once_at_restart(tmp_path, step):
     lab = make_lab(tmp_path / "lab")
     sent = write_backlog(lab, 6)
     # The third order of the batch; "audited" is reached once per group commit, so its first time.
-    crashed = run_once(lab, env={"LENSLANE_FAULT_AFTER": f"{step}:1" if step == "audited" else f"{step}:3"})
-    assert crashed.returncode == FAULT_EXIT_CODE
+    crashed = run_crashing(lab, f"{step}:1" if step == "audited" else f"{step}:3")
+    assert crashed.returncode == CRASH_EXIT_CODE
     results_before = sha256_of((lab / "outbox").glob("*.json"))
     left = 6 - count(lab / "archive")
     # Group commit: the orders of the batch that crashed are still claimed, none is lost or half-done.
@@ -58,8 +59,8 @@ def test_a_crash_while_rejecting_is_finished_once_at_restart(tmp_path, step):
     drop(lab, "a-bad.json", b'{"format": "lens-order/1", "order_id": "BAD-1", "account": NaN}')
     sent = {"b-good.json": order("GOOD-1")}
     drop(lab, "b-good.json", json.dumps(sent["b-good.json"]).encode())
-    crashed = run_once(lab, env={"LENSLANE_FAULT_AFTER": step})
-    assert crashed.returncode == FAULT_EXIT_CODE
+    crashed = run_crashing(lab, step)
+    assert crashed.returncode == CRASH_EXIT_CODE
     assert run_once(lab).returncode == 0
     assert names(lab / "rejected") == ["a-bad.json", "a-bad.json.errors.json"]
     rejected = [r for r in iter_records(lab) if r.get("event") == "rejected"]

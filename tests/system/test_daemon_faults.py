@@ -11,7 +11,7 @@ import pytest
 
 from lenslane.audit.log import iter_records
 from tests.system.driver import (
-    FAST_WATCH, FAULT_CHAIN, Watch, assert_exactly_once, count, drop, make_lab, names, order, order_bytes,
+    FAST_WATCH, FAULT_CHAIN, Watch, assert_exactly_once, claimed, count, drop, make_lab, names, order, order_bytes,
     run_once, temp_leftovers, wait_until,
 )
 
@@ -53,7 +53,7 @@ def test_a_stop_during_a_hanging_stage_leaves_the_order_claimed_for_the_next_sta
     wait_until(marker.exists, "the stage to start hanging")
     assert watch.stop() == 0  # within the shutdown grace, not the ten-minute limit
     assert watch.events("interrupted")[0]["file"] == "hang.json"
-    assert names(lab / "work") == ["hang.json"]
+    assert claimed(lab) == ["hang.json"]
     assert [r for r in iter_records(lab) if r.get("event") != "torn-line"] == []
 
     make_lab(lab, {**FAST_WATCH, "order_time_limit_seconds": 1.0}, chain=FAULT_CHAIN)
@@ -89,7 +89,7 @@ def _fill(folder):
 def _blocked_then_published(lab, watch, unblock):
     drop(lab, "blocked.json", order_bytes("BLOCKED-1"))
     watch.wait_for("output blocked")
-    assert names(lab / "work") == ["blocked.json"] and names(lab / "archive") == []
+    assert claimed(lab) == ["blocked.json"] and names(lab / "archive") == []
     unblock()
     wait_until(lambda: count(lab / "archive") == 1, "the retry to succeed")
     assert watch.stop() == 0

@@ -26,16 +26,9 @@ from rayoptics.raytr.trace import trace
 WAVELENGTH_NM = 587.6
 
 
-def singlet(front_radius_mm: float, back_radius_mm: float, thickness_mm: float, index: float, *,
-            tilt_about_x_deg: float = 0.0, tilt_about_y_deg: float = 0.0,
-            front_cross_radius_mm: float | None = None, toric_rotation_deg: float = 0.0,
-            object_distance_mm: float = 1e10, back_gap_mm: float = 50.0) -> OpticalModel:
-    """A lens in air; optionally tilted as a whole, optionally with a toric front surface.
-
-    ``front_cross_radius_mm`` makes the front a toroid (radius ``front_radius_mm``
-    in its y section, ``front_cross_radius_mm`` in its x section), turned by
-    ``toric_rotation_deg`` about the line of sight. A radius of 0 is a plane.
-    """
+def _two_surfaces(front_radius_mm: float, back_radius_mm: float, thickness_mm: float, index: float,
+                  object_distance_mm: float, back_gap_mm: float) -> OpticalModel:
+    """Two spherical surfaces in air, the front the stop; rays start on the object plane."""
     opm = OpticalModel()
     opm.radius_mode = True
     sm, osp = opm["seq_model"], opm["optical_spec"]
@@ -46,7 +39,21 @@ def singlet(front_radius_mm: float, back_radius_mm: float, thickness_mm: float, 
     sm.add_surface([front_radius_mm, thickness_mm, index])
     sm.set_stop()
     sm.add_surface([back_radius_mm, back_gap_mm])
-    front, back = sm.ifcs[1], sm.ifcs[2]
+    return opm
+
+
+def singlet(front_radius_mm: float, back_radius_mm: float, thickness_mm: float, index: float, *,
+            tilt_about_x_deg: float = 0.0, tilt_about_y_deg: float = 0.0,
+            front_cross_radius_mm: float | None = None, toric_rotation_deg: float = 0.0,
+            object_distance_mm: float = 1e10, back_gap_mm: float = 50.0) -> OpticalModel:
+    """A lens in air; optionally tilted as a whole, optionally with a toric front surface.
+
+    ``front_cross_radius_mm`` makes the front a toroid (radius ``front_radius_mm``
+    in its y section, ``front_cross_radius_mm`` in its x section), turned by
+    ``toric_rotation_deg`` about the line of sight. A radius of 0 is a plane.
+    """
+    opm = _two_surfaces(front_radius_mm, back_radius_mm, thickness_mm, index, object_distance_mm, back_gap_mm)
+    front, back = opm["seq_model"].ifcs[1], opm["seq_model"].ifcs[2]
     if front_cross_radius_mm is not None:
         front.profile = YToroid(r=front_radius_mm, rR=front_cross_radius_mm)
     if tilt_about_x_deg or tilt_about_y_deg:
@@ -57,7 +64,7 @@ def singlet(front_radius_mm: float, back_radius_mm: float, thickness_mm: float, 
         back.decenter = DecenterData("reverse", **angles)
     elif toric_rotation_deg:
         front.decenter = DecenterData("dec and return", gamma=toric_rotation_deg)
-    sm.do_apertures = False
+    opm["seq_model"].do_apertures = False
     opm.update_model()
     return opm
 
@@ -67,31 +74,37 @@ def paraxial_back_vertex_power(opm: OpticalModel) -> float:
     return 1000.0 / opm["analysis_results"]["parax_data"].fod.bfl
 
 
-def _exit_line(opm: OpticalModel, x: float, y: float) -> tuple[np.ndarray, np.ndarray]:
-    """Where a collimated ray entering at (x, y) leaves the back surface, and its direction."""
-    ray, _, _ = trace(opm["seq_model"], np.array([x, y, 0.0]), np.array([0.0, 0.0, 1.0]), WAVELENGTH_NM)
+def _exit_line(opm: OpticalModel, x: float, y: float,
+               direction: tuple[float, float, float] = (0.0, 0.0, 1.0)) -> tuple[np.ndarray, np.ndarray]:
+    """Where a ray starting at (x, y) on the object plane with the given direction leaves the back surface."""
+    ray, _, _ = trace(opm["seq_model"], np.array([x, y, 0.0]), np.asarray(direction, dtype=float), WAVELENGTH_NM)
     image_point, direction = np.asarray(ray[-1][0]), np.asarray(ray[-1][1])
     # The last segment runs straight from the back surface to the image plane,
     # whose frame is the untilted one: step back along it to the exit point.
     return image_point - ray[-2][2] * direction, direction
 
 
-def vergence_matrix(opm: OpticalModel, behind_mm: float = 0.0, step_mm: float = 1e-3) -> np.ndarray:
+def vergence_matrix(opm: OpticalModel, behind_mm: float = 0.0, step_mm: float = 1e-3,
+                    start: tuple[float, float] = (0.0, 0.0),
+                    direction: tuple[float, float, float] = (0.0, 0.0, 1.0)) -> np.ndarray:
     """The 2×2 vergence matrix (D) of the exit pencil about the chief ray through the lens centre.
 
     Measured on the plane perpendicular to the exit chief ray, ``behind_mm``
-    beyond the chief ray's exit point, in the x (right) / y (up) frame.
+    beyond the chief ray's exit point, in the x (right) / y (up) frame. The
+    chief ray starts at ``start`` on the object plane; all rays of the pencil
+    travel along ``direction`` (a plane wave).
     ``object_distance_mm`` of the model must be finite and small (rays start
     on the object plane).
     """
-    origin, axis = _exit_line(opm, 0.0, 0.0)
+    origin, axis = _exit_line(opm, *start, direction)
+    incoming = direction
     origin = origin + behind_mm * axis
     across = np.array([1.0, 0.0, 0.0]) - axis[0] * axis
     across /= np.linalg.norm(across)
     up = np.cross(axis, across)
 
     def transverse(x: float, y: float) -> tuple[np.ndarray, np.ndarray]:
-        point, direction = _exit_line(opm, x, y)
+        point, direction = _exit_line(opm, start[0] + x, start[1] + y, incoming)
         along = (origin - point).dot(axis) / direction.dot(axis)
         offset = point + along * direction - origin
         position = np.array([offset.dot(across), offset.dot(up)])
@@ -120,3 +133,34 @@ def lens_normal(opm: OpticalModel, step_mm: float = 1e-3) -> np.ndarray:
     normal = np.cross(across, up)
     normal /= np.linalg.norm(normal)
     return normal if normal[2] > 0 else -normal
+
+
+def worn_singlet(front_radius_mm: float, back_radius_mm: float, back_sweep_radius_mm: float, thickness_mm: float,
+                 index: float, rotation: np.ndarray, decenter_mm: tuple[float, float] = (0.0, 0.0),
+                 object_distance_mm: float = 10.0, back_gap_mm: float = 50.0) -> OpticalModel:
+    """A lens with a spherical front and a toric back (YToroid), posed by a rotation matrix and a decentration.
+
+    ``rotation``'s columns are the lens's own x, y and z axes in the object frame; the back's profile (radius
+    ``back_radius_mm``) lies in the lens's y section, swept about an axis parallel to its y at
+    ``back_sweep_radius_mm`` (0: a cylinder). The front vertex sits at ``decenter_mm`` (x, y) on the first
+    surface's plane; the frame returns after the back surface, so image space is the object frame again.
+    """
+    from transforms3d.euler import mat2euler
+
+    opm = _two_surfaces(front_radius_mm, back_radius_mm, thickness_mm, index, object_distance_mm, back_gap_mm)
+    front, back = opm["seq_model"].ifcs[1], opm["seq_model"].ifcs[2]
+    back.profile = YToroid(r=back_radius_mm, rR=back_sweep_radius_mm)
+    # rayoptics turns 'rxyz' Euler angles, alpha and beta taken left-handed, into the surface's rotation.
+    a, b, g = np.degrees(mat2euler(np.asarray(rotation, dtype=float), axes="rxyz"))
+    angles = {"alpha": -a, "beta": -b, "gamma": g}
+    front.decenter = DecenterData("decenter", x=decenter_mm[0], y=decenter_mm[1], **angles)
+    back.decenter = DecenterData("reverse", x=decenter_mm[0], y=decenter_mm[1], **angles)
+    opm["seq_model"].do_apertures = False
+    opm.update_model()
+    return opm
+
+
+def chief_exit(opm: OpticalModel, start: tuple[float, float] = (0.0, 0.0),
+               direction: tuple[float, float, float] = (0.0, 0.0, 1.0)) -> tuple[np.ndarray, np.ndarray]:
+    """Where the ray from ``start`` on the object plane (default along +z) leaves the lens, and its direction."""
+    return _exit_line(opm, start[0], start[1], direction)

@@ -18,13 +18,13 @@ from typing import Annotated
 from pydantic import BaseModel, ConfigDict, Field
 
 from lenslane import Change, Flag, Stage, hookimpl
+from lenslane.vocabulary import CAUTION
 
 __version__ = "1.0.0"
 
 LAB_LIMITS = "The lab's own equipment limits ([stages.edger_limits] in lenslane.toml)"
 BLANK_RULE = "Common practice: minimum blank size = effective diameter + 2 × decentration + allowance"
 BEVELS = {"full_rim": "v-bevel", "grooved": "groove", "drilled": "flat edge, drilled"}
-VERIFY = "Results are for a licensed eye-care professional to verify."
 
 
 class EdgerLimits(BaseModel):
@@ -79,14 +79,14 @@ def _frame_flags(view, params: EdgerLimits):
         yield Flag(
             "edger-lens-too-shallow", "review",
             f"The lens is {frame.box_height_mm:.1f} mm high; the {params.edger} block needs at least "
-            f"{params.min_box_height_mm:.1f} mm: edge it by hand or send it out, or choose a deeper frame. {VERIFY}",
+            f"{params.min_box_height_mm:.1f} mm: edge it by hand or send it out, or choose a deeper frame. {CAUTION}",
             None, {"box_height_mm": frame.box_height_mm, "min_box_height_mm": params.min_box_height_mm},
         )
     if frame.mount == "drilled" and not params.drills:
         yield Flag(
             "edger-no-drilling", "review",
             f"The frame is drilled (rimless) and the {params.edger} has no drilling unit: "
-            f"send the lenses out for drilling, or confirm another mount. {VERIFY}",
+            f"send the lenses out for drilling, or confirm another mount. {CAUTION}",
             None, {"mount": frame.mount},
         )
     wrap = order.fit.face_form_deg
@@ -113,7 +113,7 @@ def _eye_flags(view, eye: str, blank_mm: float, params: EdgerLimits):
         yield Flag(
             "edger-blank-too-large", "review",
             f"The lens needs a {blank_mm:.1f} mm blank; the {params.edger} chamber takes at most "
-            f"{params.max_blank_diameter_mm:.1f} mm: send it out for edging. {VERIFY}",
+            f"{params.max_blank_diameter_mm:.1f} mm: send it out for edging. {CAUTION}",
             eye, {"blank_mm": blank_mm, "max_blank_diameter_mm": params.max_blank_diameter_mm},
         )
     edge = view.get(f"lenses.{eye}.geometry.edge_max_mm")
@@ -122,7 +122,7 @@ def _eye_flags(view, eye: str, blank_mm: float, params: EdgerLimits):
             "edger-edge-too-thick", "review",
             f"The thickest edge is {edge:.1f} mm; the {params.edger} wheel bevels up to "
             f"{params.max_edge_thickness_mm:.1f} mm: send it out, or choose a higher index or a smaller frame. "
-            + VERIFY,
+            + CAUTION,
             eye, {"edge_max_mm": edge, "max_edge_thickness_mm": params.max_edge_thickness_mm},
         )
 

@@ -1,0 +1,119 @@
+"""What the lab knows from its audit history: the only place the lab reads the audit log.
+
+Two questions, asked at every order: was this order id already published, and
+with which content (a resent copy is skipped, a different order under the same
+id is held); and, for an input still in ``work/`` after a crash, was its final
+record already written (then only its move out of ``work/`` is left). Both are
+answered by the audit index (:class:`lenslane.audit.history.History`), never by
+reading the whole log; the ``note_*`` calls the lab makes after each commit
+cover what the log does not hold yet.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from lenslane.audit.history import History as AuditHistory
+from lenslane.audit.index import Index
+from lenslane.audit.log import AUDIT_NAME, audit_files
+from lenslane.audit.reader import read_tail
+from lenslane.vocabulary import OUTCOMES
+
+FINAL_EVENTS = OUTCOMES
+
+
+@dataclass(frozen=True)
+class FinalRecord:
+    """A claim whose final audit record is written; only moving the input is left."""
+
+    input: str  # where the input goes, relative to the lab
+    outcome: str  # published | rejected | held | skipped
+    order_id: str | None
+    status: str | None
+    seq: int | None = None  # the record's seq in the log (None: in this batch, not yet written)
+
+
+class History:
+    """The audit history of one lab, as the lab needs it.
+
+    :meth:`use` gives it the audit log's index (the lab does when it opens the
+    log); until then it knows nothing published and no final record.
+    """
+
+    def __init__(self, root: Path):
+        self.root = Path(root)
+        self.audit: AuditHistory | None = None
+        self._final: dict[str, FinalRecord] = {}  # recorded in this run, input not yet moved
+
+    def use(self, index: Index) -> None:
+        """Answer from ``index`` (the audit log's, opened or reopened); what was noted stays noted."""
+        if self.audit is None:
+            self.audit = AuditHistory(index)
+        else:
+            self.audit.index = index
+
+    def load(self) -> None:
+        """Get ready for a new run: forget what was noted (the log now holds all it will); ask the index anew."""
+        self._final.clear()
+        if self.audit is not None:
+            self.audit = AuditHistory(self.audit.index)
+
+    def is_published(self, order_id: str) -> bool:
+        return self.audit is not None and self.audit.is_published(order_id)
+
+    def published_content(self, order_id: str) -> str | None:
+        """The content sha256 of the published version of ``order_id``; ``None`` if never published.
+
+        An empty string: published, by a record that kept no content digest.
+        """
+        if not self.is_published(order_id):
+            return None
+        return self.audit.published_content(order_id) or ""
+
+    def final_record(self, claim: str) -> FinalRecord | None:
+        if claim in self._final:
+            return self._final[claim]
+        record = self.audit.final_record(claim) if self.audit is not None else None
+        if record is None or not isinstance(record.get("input"), str):
+            return None
+        final = FinalRecord(record["input"], record["event"], record.get("order_id"), record.get("status"),
+                            record.get("seq"))
+        self._final[claim] = final
+        return final
+
+    def note_published(self, order_id: str, content_sha256: str | None) -> None:
+        """An order is published (its records are on their way to the log in this batch)."""
+        if self.audit is not None:
+            self.audit.note_published(order_id, content_sha256)
+
+    def note_final(self, claim: str, record: FinalRecord) -> None:
+        """A claim's final record is on disk (and in the index); its input is still to be moved."""
+        self._final[claim] = record
+        if self.audit is not None:
+            self.audit.note_recorded([record.order_id])
+
+    def note_moved(self, claim: str) -> None:
+        """A claim's input has left ``work/``: nothing more is asked about it."""
+        self._final.pop(claim, None)
+
+    def last_record(self) -> dict[str, Any] | None:
+        """The newest whole record of the log (read from the end of the newest file that has one)."""
+        for path in reversed(audit_files(self.root)):
+            record = read_tail(path).record
+            if record is not None:
+                return record
+        return None
+
+    def size(self) -> int:
+        """Bytes in all the lab's audit files."""
+        total = 0
+        for path in audit_files(self.root):
+            try:
+                total += path.stat().st_size
+            except FileNotFoundError:
+                continue
+        return total
+
+
+__all__ = ["AUDIT_NAME", "FINAL_EVENTS", "FinalRecord", "History"]
