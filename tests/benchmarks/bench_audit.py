@@ -37,6 +37,7 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent.parent))
 
+from tests.benchmarks.bench_drain import timed  # noqa: E402
 from tests.benchmarks.orders import make_order  # noqa: E402
 
 STORIES = 400
@@ -93,17 +94,6 @@ def build(lab: Path, count: int, start: int = 0, note: str = "") -> float:
             print(f"  {note}: {first - start} orders, {time.perf_counter() - started:.0f} s", flush=True)
     log.close()
     return time.perf_counter() - started
-
-
-def timed(argv: list[str]) -> tuple[float, float, str]:
-    started = time.perf_counter()
-    child = subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL)
-    out = child.stdout.read().decode()
-    _, status, usage = os.wait4(child.pid, 0)
-    elapsed = time.perf_counter() - started
-    if os.waitstatus_to_exitcode(status) != 0:
-        raise SystemExit(f"{' '.join(argv)} exited {os.waitstatus_to_exitcode(status)}")
-    return elapsed, usage.ru_maxrss / 1024.0, out
 
 
 EXPLAIN_PROBE = """

@@ -35,7 +35,8 @@ sys.path.insert(0, str(HERE.parent.parent))
 from tests.benchmarks.orders import write_orders  # noqa: E402
 
 
-def _peak_rss_mb(argv: list[str]) -> tuple[float, float, str]:
+def timed(argv: list[str]) -> tuple[float, float, str]:
+    """Run a command; its wall time (s), its peak RSS (MB) and what it printed."""
     started = time.perf_counter()
     child = subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL)
     out = child.stdout.read().decode()
@@ -66,9 +67,9 @@ def bench(count: int, workdir: Path, settings: dict[str, str] | None = None) -> 
         for lab in (engine_lab, *floor_labs):
             shutil.copy(source / name, lab / "inbox" / name)
 
-    floor = lambda lab: _peak_rss_mb([sys.executable, str(HERE / "floor.py"), str(lab)])  # noqa: E731
+    floor = lambda lab: timed([sys.executable, str(HERE / "floor.py"), str(lab)])  # noqa: E731
     before_s, _, _ = floor(floor_labs[0])
-    engine_s, engine_rss, out = _peak_rss_mb([*lenslane, "watch", str(engine_lab), "--once", "--stats"])
+    engine_s, engine_rss, out = timed([*lenslane, "watch", str(engine_lab), "--once", "--stats"])
     after_s, floor_rss, _ = floor(floor_labs[1])
     floor_s = (before_s + after_s) / 2
     published = len(os.listdir(engine_lab / "outbox"))
