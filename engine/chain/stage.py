@@ -6,11 +6,11 @@ proposals; the pipeline applies the changes in order and records each one.
 """
 from __future__ import annotations
 
-import copy
 import dataclasses
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Callable, Iterable, Mapping
 
+from lenslane.contract.precision import plain_copy
 from lenslane.vocabulary import EYES, Eye, Level
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -106,24 +106,6 @@ class Stage:
 
 
 _MISSING = object()
-_ATOMS = frozenset((str, int, float, bool, type(None)))
-
-
-def copy_value(value: Any) -> Any:
-    """A deep copy of a result value, cheap for the plain JSON it normally is.
-
-    Dicts and lists are rebuilt, str / int / float / bool / None (immutable) are
-    shared, and anything else goes through :func:`copy.deepcopy`, so no part of
-    the copy can change the original.
-    """
-    kind = type(value)
-    if kind in _ATOMS:
-        return value
-    if kind is dict:
-        return {k: v if type(v) in _ATOMS else copy_value(v) for k, v in value.items()}
-    if kind is list:
-        return [v if type(v) in _ATOMS else copy_value(v) for v in value]
-    return copy.deepcopy(value)
 
 
 class OrderView:
@@ -150,7 +132,7 @@ class OrderView:
             node = node.get(part, _MISSING)
             if node is _MISSING:
                 return default
-        return copy_value(node)
+        return plain_copy(node)
 
     def material(self) -> "Material":
         """The order's material from the lab's table, with the order's index override applied."""
