@@ -560,7 +560,9 @@ def _matched(shared: _Shared, lenses: list[_Eye], choices: list[_Choice], params
     common = [b for b in set(lenses[0].stock) & set(lenses[1].stock) if max(abs(b - f) for f in fronts) <= limit]
     low, high = min(fronts), max(fronts)
     for base in sorted(common, key=lambda b: (max(abs(b - f) for f in fronts), b)):
-        trials = [_try(shared, lens, base, params) for lens in lenses]
+        # An eye whose own choice is this base has its lens solved on it already.
+        trials = [choice.trial if choice.trial.front_d == base else _try(shared, lens, base, params)
+                  for lens, choice in zip(lenses, choices)]
         if not any(trial.problems for trial in trials):
             own_text = ", ".join(f"{eye} {front:.2f} D" for eye, front in own.items())
             return [choice._replace(
