@@ -95,12 +95,16 @@ class Stage:
     writes: tuple[str, ...] = ()
     params: type["BaseModel"] | None = None
     description: str = ""
+    #: ``writes``, each pattern split at its dots once, when the stage is made.
+    _patterns: tuple[tuple[str, ...], ...] = dataclasses.field(init=False, repr=False, compare=False, default=())
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "_patterns", tuple(tuple(pattern.split(".")) for pattern in self.writes))
 
     def may_write(self, field_path: str) -> bool:
         parts = field_path.split(".")
-        for pattern in self.writes:
-            want = pattern.split(".")
-            if len(parts) >= len(want) and all(w in ("*", p) for w, p in zip(want, parts)):
+        for want in self._patterns:
+            if len(parts) >= len(want) and all(w == "*" or w == p for w, p in zip(want, parts)):
                 return True
         return False
 
