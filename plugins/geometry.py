@@ -11,7 +11,6 @@ Every value is proposed as its own change, with the method that made it.
 from __future__ import annotations
 
 import math
-from functools import lru_cache
 from typing import Annotated, NamedTuple
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
@@ -302,14 +301,8 @@ def _outline(view, params):
     frame = view.order.frame
     if frame.outline_mm is not None:
         return outline_grid(frame.outline_mm), f"outline from the order ({len(frame.outline_mm)} radii about the box centre)"
-    return _modelled(frame.box_width_mm, frame.box_height_mm, frame.effective_diameter_mm,
-                     params.outline_exponent_without_ed)
-
-
-@lru_cache(maxsize=256)
-def _modelled(box_width_mm, box_height_mm, effective_diameter_mm, exponent_without_ed):
-    # Frames repeat from order to order: the modelled outline's grid and its sentence are kept.
-    shape = modelled_outline(box_width_mm, box_height_mm, effective_diameter_mm, exponent_without_ed)
+    box_width_mm, box_height_mm, effective_diameter_mm = frame.box_width_mm, frame.box_height_mm, frame.effective_diameter_mm
+    shape = modelled_outline(box_width_mm, box_height_mm, effective_diameter_mm, params.outline_exponent_without_ed)
     if effective_diameter_mm is None:
         basis = f"the lab's exponent m = {shape.exponent:g}, as the order gives no effective diameter"
     else:
