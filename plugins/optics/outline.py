@@ -388,13 +388,21 @@ def vertical_extent_at(radii_mm: Sequence[float], x_mm: float) -> tuple[float, f
     >>> [round(v, 6) for v in vertical_extent_at([20.0] * 360, 0.0)]
     [-20.0, 20.0]
     """
-    points = outline_points(radii_mm)
-    x, y = points[:, 0], points[:, 1]
-    x_next, y_next = np.roll(x, -1), np.roll(y, -1)
-    crosses = (x - x_mm) * (x_next - x_mm) <= 0.0
-    crosses &= x != x_next
-    if not crosses.any():
+    radii = np.asarray(radii_mm, dtype=float)
+    cosines, sines = unit_circle(radii.size)
+    x, y = radii * cosines, radii * sines  # the points of outline_points, by coordinate
+    # Each side of the polygon runs from a point to the next; the last closes it, back to the first.
+    offset = x - x_mm
+    crosses = offset[:-1] * offset[1:] <= 0.0
+    crosses &= x[:-1] != x[1:]
+    closing = offset[-1] * offset[0] <= 0.0 and x[-1] != x[0]
+    if not (closing or crosses.any()):
         return None
-    fraction = (x_mm - x[crosses]) / (x_next[crosses] - x[crosses])
-    heights = y[crosses] + fraction * (y_next[crosses] - y[crosses])
+    start = np.flatnonzero(crosses)
+    end = start + 1
+    if closing:
+        start, end = np.append(start, radii.size - 1), np.append(end, 0)
+    x_start, y_start = x[start], y[start]
+    fraction = (x_mm - x_start) / (x[end] - x_start)
+    heights = y_start + fraction * (y[end] - y_start)
     return float(heights.min()), float(heights.max())
