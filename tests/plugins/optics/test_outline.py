@@ -93,13 +93,13 @@ def test_the_exponent_stays_within_ellipse_and_rectangle():
 @given(radius=st.floats(15.0, 35.0), count=st.sampled_from([36, 72, 100, 360]), along=st.floats(-0.99, 0.99))
 def test_the_vertical_extent_of_a_round_outline_is_the_circle_s_chord(radius, count, along):
     # Source: the circle x² + y² = R² meets the vertical x = a at y = ±√(R² − a²); the outline is the polygon
-    # through `count` points of it, whose sides lie inside the circle by at most R (1 − cos(π/count)).
+    # through `count` points of it, whose every point lies at least R cos(π/count) from the centre, so the
+    # polygon meets the vertical no nearer the centre than ±√(R² cos²(π/count) − a²).
     x_mm = along * radius
     low, high = vertical_extent_at([radius] * count, x_mm)
     chord = math.sqrt(radius * radius - x_mm * x_mm)
-    sagging = radius * (1.0 - math.cos(math.pi / count))
-    slack = sagging * radius / max(chord, 1e-9) + 1e-9  # a side's sag, seen along the vertical
-    assert -chord - 1e-9 <= low <= -chord + slack and chord - slack <= high <= chord + 1e-9
+    inner = math.sqrt(max(0.0, (radius * math.cos(math.pi / count)) ** 2 - x_mm * x_mm))
+    assert -chord - 1e-9 <= low <= -inner + 1e-9 and inner - 1e-9 <= high <= chord + 1e-9
 
 
 def test_the_vertical_extent_uses_the_side_that_closes_the_outline():
