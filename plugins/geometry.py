@@ -301,7 +301,8 @@ def _outline(view, params):
     frame = view.order.frame
     if frame.outline_mm is not None:
         return outline_grid(frame.outline_mm), f"outline from the order ({len(frame.outline_mm)} radii about the box centre)"
-    box_width_mm, box_height_mm, effective_diameter_mm = frame.box_width_mm, frame.box_height_mm, frame.effective_diameter_mm
+    box_width_mm, box_height_mm = frame.box_width_mm, frame.box_height_mm
+    effective_diameter_mm = frame.effective_diameter_mm
     shape = modelled_outline(box_width_mm, box_height_mm, effective_diameter_mm, params.outline_exponent_without_ed)
     if effective_diameter_mm is None:
         basis = f"the lab's exponent m = {shape.exponent:g}, as the order gives no effective diameter"
