@@ -41,8 +41,9 @@ SOURCE = ("Martin's formula, as given in Jalie, The Principles of Ophthalmic Len
 EXACT_METHOD = ("the surfacing power whose lens, traced with real rays (vector Snell's law through the spherical "
                 "front and toric back at the centre thickness the lens geometry gives it), tilted by θ about the "
                 "axis perpendicular to t with cos θ = cos p · cos w, has an as-worn vergence at the back-vertex "
-                "plane equal to the wanted power; Newton's method on the surfacing power matrix, the thickness "
-                "re-derived at each step")
+                "plane equal to the wanted power; the pencil carried along the traced chief ray by the generalised "
+                "Coddington equations, the surfacing power in closed form for each centre thickness tried and the "
+                "thickness re-derived for it until the two agree")
 EXACT_SOURCE = ("Spencer & Murty, \"General ray-tracing procedure\", JOSA 52:672, 1962; Kneisly, JOSA 54:229, "
                 "1964 (wavefront curvature about the chief ray); Jalie, The Principles of Ophthalmic Lenses "
                 "(thickness); Thibos, Wheeler & Horner, Optom Vis Sci 74:367, 1997 (off-axis errors)")
@@ -91,6 +92,7 @@ def _exact_pair(view, befores: dict, martins: dict, tilts: dict, index: float, f
     made) or :class:`RayMissedSurface` (a chief ray cannot get through).
     """
     geometry = view.settings.stage_params.get("geometry") or GeometryParams()
+    # The rounds of the solution start at the lab's minimum centre thickness: every minus lens's.
     minimums = geometry.minimum_thickness.get(view.order.lens.material, geometry.other_minimum_thickness)
     surfacings = dict(martins)
     fronts, solved = None, {}
