@@ -6,7 +6,7 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 
 from lenslane.plugins.optics.asworn import (
@@ -16,6 +16,7 @@ from lenslane.plugins.optics.asworn import (
 )
 from lenslane.plugins.optics.front_curve import tscherning_front_curves
 from lenslane.plugins.optics.power import PowerMatrix, power_matrix, sphero_cylinder
+from lenslane.plugins.optics.raytrace import RayMissedSurface
 from lenslane.plugins.optics.surfaces import back_vertex_power, surface_radius_mm, toric_back_surface
 from lenslane.plugins.optics.thickness import LensShape, LensNotMakeable, solve_center_thickness
 from lenslane.plugins.optics.tilt import exact_thin_factor, tilt_obliquity, tilted_power
@@ -193,6 +194,14 @@ def test_vergence_matches_rayoptics(case):
     assert np.max(np.abs(expected)) > 1.0  # a real power was compared
 
 
+def _differenced(reference, **where):
+    """rayoptics' vergence by central differences at steps of 5e-4 and 2.5e-4 mm, with Richardson's
+    extrapolation: the differences are off by the step squared (1e-6 D at a 1e-3 mm step for a
+    +10 D biconvex lens at 30°, more near a focal line), the extrapolation by its fourth power."""
+    coarse, fine = (vergence_matrix(reference, step_mm=step, **where) for step in (5e-4, 2.5e-4))
+    return (4.0 * fine - coarse) / 3.0
+
+
 def _gaze(angle_deg, towards, eye):
     """The chief ray of a gaze (toward the eye) and where it meets the vertex sphere, as gaze_errors has them."""
     x, y = GAZE_DIRECTIONS[towards]
@@ -218,7 +227,10 @@ def test_every_pencil_matches_rayoptics(power, front, thickness, index, p, w, ey
         surface_radius_mm(front, index), surface_radius_mm(back.power_a_d, index, "back"),
         surface_radius_mm(back.power_b_d, index, "back"), thickness, index, pose)
     chief, on_sphere = _gaze(gaze_deg, towards, eye)
-    ray = trace_chief_ray(lens, lens.to_lens(tuple(on_sphere)), lens.to_lens(tuple(chief)))
+    try:
+        ray = trace_chief_ray(lens, lens.to_lens(tuple(on_sphere)), lens.to_lens(tuple(chief)))
+    except RayMissedSurface:
+        assume(False)  # the gaze passes beyond the lens (a steep biconvex lens at 30°): no pencil to compare
     rotation = _rotation(lens)
     incoming = rotation @ np.array(ray.incoming)
     entry = rotation @ np.array(ray.front) + back_vertex
@@ -226,9 +238,11 @@ def test_every_pencil_matches_rayoptics(power, front, thickness, index, p, w, ey
     exit_point, direction = chief_exit(reference, tuple(start[:2]), tuple(incoming))
     assert np.max(np.abs(direction - chief)) < 1e-9
     assert np.linalg.norm(np.cross(exit_point - back_vertex - on_sphere, chief)) < 1e-7
-    expected = vergence_matrix(reference, behind_mm=ray.beyond, start=tuple(start[:2]), direction=tuple(incoming))
+    expected = _differenced(reference, behind_mm=ray.beyond, start=tuple(start[:2]), direction=tuple(incoming))
     ours = pencil_vergence(lens, tuple(on_sphere), tuple(chief), _frame_across(chief))
-    assert np.max(np.abs(_matrix(ours) - expected)) < 1e-6
+    # Where the vertex sphere lies near a focal line of the pencil (a biconvex +12 D lens at 30°: over 1 000 D)
+    # the agreement is taken relative to the vergence.
+    assert np.max(np.abs(_matrix(ours) - expected)) < max(1e-6, 1e-9 * np.max(np.abs(expected)))
 
 
 @pytest.mark.parametrize("eye, towards", [("right", "up"), ("left", "nasal"), ("right", "temporal")])
@@ -248,7 +262,7 @@ def test_gaze_errors_match_rayoptics(eye, towards):
     incoming = _rotation(lens) @ np.array(ray.incoming)
     entry = _rotation(lens) @ np.array(ray.front) + back_vertex
     start = entry - (entry[2] + 10.0) / incoming[2] * incoming
-    measured = vergence_matrix(reference, behind_mm=ray.beyond, start=tuple(start[:2]), direction=tuple(incoming))
+    measured = _differenced(reference, behind_mm=ray.beyond, start=tuple(start[:2]), direction=tuple(incoming))
     # rayoptics measures in x projected across the ray; Listing's frame is the eye's x and y turned with it.
     listing = np.array(no_roll_axes(tuple(chief))).T[:, :2]
     turn = np.column_stack(_frame_across(chief)).T @ listing
