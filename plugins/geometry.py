@@ -535,10 +535,10 @@ def _exact_best_form(view, shared: _Shared, lens: _Eye, params: GeometryParams, 
     chosen = best.bases_d.index(best.base_d)
     inputs = {**inputs, "index": shared.material.index, "rotation_distance_mm": params.rotation_distance_mm,
               "obliquity_deg": math.degrees(theta),
-              "candidates": [{"base_d": base, "score_d": float(score) if math.isfinite(score) else None,
-                              "center_thickness_mm": float(centre_mm)}
+              "candidates": [{"base_d": base, "score_d": score if math.isfinite(score) else None,
+                              "center_thickness_mm": centre_mm}
                              for base, score, centre_mm in zip(best.bases_d, best.score_d, best.center_mm)],
-              "off_axis": off_axis_record(best.errors, chosen)}
+              "off_axis": off_axis_record(best.errors[chosen])}
     return _Choice(trials[best.base_d], EXACT_BEST_FORM_TITLE, EXACT_BEST_FORM_SOURCE, inputs, [], "")
 
 
