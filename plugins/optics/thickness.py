@@ -23,7 +23,6 @@ References
 from __future__ import annotations
 
 import math
-from functools import lru_cache
 from typing import NamedTuple, Sequence
 
 import numpy as np
@@ -444,7 +443,7 @@ def _volume_stride(count: int) -> int:
 
 
 class _Layout(NamedTuple):
-    """Where the points of an outline of ``count`` radii sit (read-only arrays, the right lens's view).
+    """Where the points of an outline of ``count`` radii sit (the right lens's view).
 
     ``cosines`` / ``sines``: cos θ and sin θ of the ``count`` outline points
     first, then of the quadrature nodes, ``RADIAL_NODES`` on every ``stride``-th
@@ -458,17 +457,13 @@ class _Layout(NamedTuple):
     row: np.ndarray
 
 
-@lru_cache(maxsize=64)
 def _layout(count: int) -> _Layout:
     cosines, sines = unit_circle(count)
     stride = _volume_stride(count)
     row = (stride * 2.0 * math.pi / count) * _AREA_NODE_WEIGHTS
-    layout = _Layout(np.concatenate((cosines, np.repeat(cosines[::stride], RADIAL_NODES))),
-                     np.concatenate((sines, np.repeat(sines[::stride], RADIAL_NODES))),
-                     stride, row)
-    for array in (layout.cosines, layout.sines, layout.row):
-        array.flags.writeable = False
-    return layout
+    return _Layout(np.concatenate((cosines, np.repeat(cosines[::stride], RADIAL_NODES))),
+                   np.concatenate((sines, np.repeat(sines[::stride], RADIAL_NODES))),
+                   stride, row)
 
 
 class OutlineGrid(NamedTuple):
