@@ -286,7 +286,16 @@ def centre_minimum_applies(surfacing: PowerMatrix) -> bool:
     >>> centre_minimum_applies(power_matrix(2.0, -1.0, 90)), centre_minimum_applies(power_matrix(2.0, -3.0, 90))
     (False, True)
     """
-    return principal_powers(surfacing)[1] <= 0.0
+    return _minus_or_plano(principal_powers(surfacing)[1])
+
+
+#: A principal power this close to zero is plano (D): a meridian written 0.00 D, rebuilt from its sphere,
+#: cylinder and an axis in floating point, comes out within about 1e-15 D of zero on either side.
+PLANO_TOLERANCE_D = 1e-9
+
+
+def _minus_or_plano(smaller_principal_d: float) -> bool:
+    return smaller_principal_d <= PLANO_TOLERANCE_D
 
 
 class CentreThickness(NamedTuple):
@@ -340,7 +349,7 @@ class _Solved(NamedTuple):
 def _solve(profile: _Profile, edge_count: int, min_center_mm: float, min_edge_mm: float) -> _Solved:
     """The least centre thickness meeting the minimums; the profile's first ``edge_count`` points are the edge."""
     # The minimum centre applies to a lens with a minus or plano meridian (centre_minimum_applies).
-    centre_minimum = profile.back_vertex_b_d <= 0.0
+    centre_minimum = _minus_or_plano(profile.back_vertex_b_d)
     center = min_center_mm if centre_minimum else min_edge_mm
     relief = _relief_of(profile, center, strict=True)
     edge = relief[:edge_count]
