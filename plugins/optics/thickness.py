@@ -554,9 +554,10 @@ def _volume_from(relief_nodes: np.ndarray, grid: OutlineGrid, eye: str, centre_m
     volume = float(np.dot(relief_nodes, grid.weights)) + center_thickness_mm * grid.area
     if shape.prism_delta and grid.layout.stride > 1:
         radii = grid.radii
-        cosines, sines = unit_circle(radii.size)
+        count = radii.size
+        cosines, sines = grid.layout.cosines[:count], grid.layout.sines[:count]  # the outline's directions
         cubes = radii * radii * radii
-        third = 2.0 * math.pi / radii.size / 3.0
+        third = 2.0 * math.pi / count / 3.0
         mirror = -1.0 if eye == "left" else 1.0
         moment_x = mirror * third * float(np.dot(cosines, cubes)) - centre_mm[0] * grid.area
         moment_y = third * float(np.dot(sines, cubes)) - centre_mm[1] * grid.area
