@@ -1,11 +1,13 @@
 """The audit index: an SQLite file beside the log (``LAB/audit.sqlite``), derived from it, rebuildable at any time.
 
 It answers, without reading the log from its start: where each record is
-(``records``: seq → first seq of its file, offset, length; with the order id,
-the input file name and the claim it concerns), which content each published
-order id has (``published``: duplicate detection, never held in memory), where
-each define record is (``defines``), the chain's head in each file
-(``files``), counts per event and the last point ``audit verify`` checked.
+(``records``: seq → first seq of its file, offset, length; with its time, and
+the order id, input file name, claim, status or decided action it concerns),
+which content each published order id has (``published``: duplicate detection,
+never held in memory), each define record by what it is found by and the
+numbers it holds (``defines``), every order id and input file name once with a
+trigram index for searching parts of them (``keys``), the chain's head in each
+file (``files``), counts per event and the last point ``audit verify`` checked.
 
 The log stays the only source of truth. :meth:`Index.catch_up` compares the
 index's tail (the seq, hash and place of the last record it holds) with the
@@ -20,27 +22,42 @@ import os
 import sqlite3
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterable, Iterator
+from typing import Any, Iterable, Iterator, NamedTuple
 
 from lenslane.audit.reader import audit_files, iter_lines, file_of, read_at, ROTATED_RE
-from lenslane.audit.records import DEFINE_EVENT, OUTCOMES, ref_of
+from lenslane.audit.records import DEFINE_EVENT, OUTCOMES, REF_LENGTH, define_key
 
 INDEX_NAME = "audit.sqlite"
-SCHEMA = 1
+#: 2: records' time, status and action, defines by key with their numbers, the keys searched by trigram.
+SCHEMA = 2
+#: The events a record of which tells what became of an input (the first format's ``received`` too).
+PASS_EVENTS = (*OUTCOMES, "received")
 
 _TABLES = """
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value) WITHOUT ROWID;
 CREATE TABLE IF NOT EXISTS records (
     seq INTEGER PRIMARY KEY, file INTEGER NOT NULL, offset INTEGER NOT NULL, length INTEGER NOT NULL,
-    event TEXT, order_id TEXT, name TEXT, claim TEXT);
+    event TEXT, order_id TEXT, name TEXT, claim TEXT, ts TEXT, status TEXT);
 CREATE INDEX IF NOT EXISTS records_order ON records (order_id) WHERE order_id IS NOT NULL;
 CREATE INDEX IF NOT EXISTS records_name ON records (name) WHERE name IS NOT NULL;
 CREATE INDEX IF NOT EXISTS records_claim ON records (claim) WHERE claim IS NOT NULL;
-CREATE TABLE IF NOT EXISTS defines (ref TEXT PRIMARY KEY, seq INTEGER NOT NULL, kind TEXT) WITHOUT ROWID;
+CREATE INDEX IF NOT EXISTS records_ts ON records (ts);
+CREATE TABLE IF NOT EXISTS defines (
+    key TEXT NOT NULL, kind TEXT NOT NULL, seq INTEGER NOT NULL, numbers BLOB, PRIMARY KEY (key, kind)) WITHOUT ROWID;
+CREATE INDEX IF NOT EXISTS defines_seq ON defines (seq);
 CREATE TABLE IF NOT EXISTS published (order_id TEXT PRIMARY KEY, content TEXT, seq INTEGER) WITHOUT ROWID;
 CREATE TABLE IF NOT EXISTS files (first_seq INTEGER PRIMARY KEY, last_seq INTEGER, last_hash TEXT, size INTEGER);
 CREATE TABLE IF NOT EXISTS counts (event TEXT PRIMARY KEY, n INTEGER NOT NULL) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS keys (id INTEGER PRIMARY KEY, key TEXT NOT NULL UNIQUE);
+CREATE VIRTUAL TABLE IF NOT EXISTS keys_text USING fts5(key, content='keys', content_rowid='id', tokenize='trigram');
+CREATE TRIGGER IF NOT EXISTS keys_added AFTER INSERT ON keys BEGIN
+    INSERT INTO keys_text (rowid, key) VALUES (new.id, new.key);
+END;
 """
+#: The shortest part of an order id or file name the trigram index can find; a shorter search text must be whole.
+SEARCH_MIN = 3
+#: How many of the order ids and file names a search text is part of are looked at (the ones seen last).
+SEARCH_KEYS = 1000
 
 
 @dataclass(frozen=True)
@@ -53,18 +70,34 @@ class Place:
     length: int
 
 
-def facts(record: dict[str, Any]) -> tuple[str | None, str | None, str | None, str | None]:
-    """What the index keeps of a record: its event, order id, input file name and (final records) claim."""
-    event = record.get("event")
-    event = event if isinstance(event, str) else None
-    order_id = record.get("order_id") if isinstance(record.get("order_id"), str) else None
+class Facts(NamedTuple):
+    """What the index keeps of a record besides its place."""
+
+    event: str | None
+    order_id: str | None
+    name: str | None  # the input file's name
+    claim: str | None  # final records only
+    ts: str | None
+    status: str | None  # a published record's status, a decided record's action
+
+
+def facts(record: dict[str, Any]) -> Facts:
+    """What the index keeps of a record: its event, order id, input file name, (final records) claim, time, and
+    the status it published with or the action a person decided."""
+    event = _text(record.get("event"))
     received = record.get("received")
     if isinstance(received, dict):  # one record per pass (this format)
         name, claim = received.get("file"), received.get("claim")
     else:  # the first format: received, change…, flag…, outcome as records of their own
         name = record.get("file")
         claim = record.get("claim") if event in OUTCOMES else None
-    return (event, order_id, name if isinstance(name, str) else None, claim if isinstance(claim, str) else None)
+    status = record.get("status") if event == "published" else record.get("action") if event == "decided" else None
+    return Facts(event, _text(record.get("order_id")), _text(name), _text(claim), _text(record.get("ts")),
+                 _text(status))
+
+
+def _text(value: Any) -> str | None:
+    return value if isinstance(value, str) else None
 
 
 class Index:
@@ -204,39 +237,53 @@ class Index:
         return added
 
     def add(self, placed: Iterable[tuple[dict[str, Any], int, int, int]]) -> None:
-        """Index records just written (or read): each with its file's first seq, its offset and length."""
-        rows, defines, published, counts = [], [], [], {}
+        """Index records just written (or read): each with its file's first seq, its offset and length.
+
+        Records the index already holds are left alone (a reader that caught up with the log while the
+        engine was writing it may have indexed them first).
+        """
+        db = self.db
+        db.execute("BEGIN IMMEDIATE")
+        try:
+            self._add(placed, self.meta("tail_seq") or 0)
+            db.execute("COMMIT")
+        except BaseException:
+            db.execute("ROLLBACK")
+            raise
+
+    def _add(self, placed: Iterable[tuple[dict[str, Any], int, int, int]], after: int) -> None:
+        rows, defines, published, counts, keys = [], [], [], {}, set()
         heads: dict[int, tuple[int, str, int]] = {}
         last = None
         for record, first, offset, length in placed:
-            event, order_id, name, claim = facts(record)
             seq = record["seq"]
-            rows.append((seq, first, offset, length, event, order_id, name, claim))
-            if event == DEFINE_EVENT and isinstance(record.get("sha256"), str):
-                defines.append((ref_of(record["sha256"]), seq, record.get("kind")))
-            elif event == "published" and order_id is not None:
-                published.append((order_id, record.get("content_sha256"), seq))
-            counts[event] = counts.get(event, 0) + 1
+            if seq <= after:
+                continue
+            about = facts(record)
+            rows.append((seq, first, offset, length, *about))
+            if about.event == DEFINE_EVENT and isinstance(record.get("sha256"), str):
+                key, numbers = define_key(record)
+                defines.append((key, str(record.get("kind")), seq, numbers))
+            elif about.event == "published" and about.order_id is not None:
+                published.append((about.order_id, record.get("content_sha256"), seq))
+            if about.event in PASS_EVENTS:
+                keys.update(key for key in (about.order_id, about.name) if key)
+            counts[about.event] = counts.get(about.event, 0) + 1
             heads[first] = (seq, record["hash"], offset + length)
             last = (seq, record["hash"], first, offset, length)
         if last is None:
             return
         db = self.db
-        db.execute("BEGIN IMMEDIATE")
-        try:
-            db.executemany("INSERT OR REPLACE INTO records VALUES (?,?,?,?,?,?,?,?)", rows)
-            db.executemany("INSERT OR IGNORE INTO defines VALUES (?,?,?)", defines)
-            db.executemany("INSERT OR REPLACE INTO published VALUES (?,?,?)", published)
-            db.executemany("INSERT INTO counts VALUES (?, ?) ON CONFLICT(event) DO UPDATE SET n = n + excluded.n",
-                           [(event or "", n) for event, n in counts.items()])
-            db.executemany("INSERT OR REPLACE INTO files VALUES (?,?,?,?)",
-                           [(first, seq, digest, size) for first, (seq, digest, size) in heads.items()])
-            db.executemany("INSERT OR REPLACE INTO meta VALUES (?,?)", list(zip(
-                ("tail_seq", "tail_hash", "tail_file", "tail_offset", "tail_length"), last)))
-            db.execute("COMMIT")
-        except BaseException:
-            db.execute("ROLLBACK")
-            raise
+        db.executemany("INSERT OR REPLACE INTO records VALUES (?,?,?,?,?,?,?,?,?,?)", rows)
+        db.executemany("INSERT OR IGNORE INTO defines VALUES (?,?,?,?)", defines)
+        db.executemany("INSERT OR REPLACE INTO published VALUES (?,?,?)", published)
+        db.executemany("INSERT OR IGNORE INTO keys (key) VALUES (?)", [(key,) for key in sorted(keys)])
+        db.executemany("INSERT INTO counts VALUES (?, ?) ON CONFLICT(event) DO UPDATE SET n = n + excluded.n",
+                       [(event or "", n) for event, n in counts.items()])
+        db.executemany("INSERT OR REPLACE INTO files VALUES (?,?,?,?)",
+                       [(first, seq, digest, size) for first, (seq, digest, size) in heads.items()])
+        db.executemany("INSERT OR REPLACE INTO meta VALUES (?,?)", list(zip(
+            ("tail_seq", "tail_hash", "tail_file", "tail_offset", "tail_length"), last)))
 
     # -- questions -----------------------------------------------------------------
 
@@ -274,15 +321,32 @@ class Index:
     def is_published(self, order_id: str) -> bool:
         return self.db.execute("SELECT 1 FROM published WHERE order_id=?", (order_id,)).fetchone() is not None
 
-    def defined(self, ref: str) -> bool:
-        return self.db.execute("SELECT 1 FROM defines WHERE ref=?", (ref,)).fetchone() is not None
+    def define_of(self, kind: str, key: str) -> tuple[int, bytes | None] | None:
+        """The seq of the define record of ``kind`` found by ``key`` (:func:`lenslane.audit.records.define_key`),
+        and the numbers it holds."""
+        row = self.db.execute("SELECT seq, numbers FROM defines WHERE key=? AND kind=?", (key, kind)).fetchone()
+        return (row[0], row[1]) if row else None
 
-    def body(self, ref: str) -> Any:
-        """The body of a define record, read from the log (``KeyError`` when the log defines no such ref)."""
-        row = self.db.execute("SELECT r.seq, r.file, r.offset, r.length FROM defines d JOIN records r ON r.seq = d.seq "
-                              "WHERE d.ref=?", (ref,)).fetchone()
-        record = read_at(self.root, *row[1:]) if row else None
-        if record is None or ref_of(str(record.get("sha256"))) != ref:
+    def define_at(self, ref: int | str) -> tuple[int, str] | None:
+        """The seq and kind of the define a record refers to: by its seq, or (the second format) by the first
+        hex digits of its sha256."""
+        if isinstance(ref, str):
+            if len(ref) != REF_LENGTH:
+                return None
+            row = self.db.execute("SELECT seq, kind FROM defines WHERE key >= ? AND key < ? ORDER BY seq LIMIT 1",
+                                  (ref, ref + "g")).fetchone()
+        else:
+            row = self.db.execute("SELECT seq, kind FROM defines WHERE seq=?", (ref,)).fetchone()
+        return (row[0], row[1]) if row else None
+
+    def body(self, ref: int | str) -> Any:
+        """The body of the define record a record refers to, read from the log (``KeyError`` when the log
+        defines no such ref)."""
+        found = self.define_at(ref)
+        place = self.place(found[0]) if found else None
+        record = self.read(place) if place else None
+        if record is None or record.get("event") != DEFINE_EVENT or (
+                isinstance(ref, str) and not str(record.get("sha256")).startswith(ref)):
             raise KeyError(ref)
         return record["body"]
 
@@ -293,6 +357,35 @@ class Index:
             record = read_at(self.root, file, offset, length)
             if record is not None:
                 yield record
+
+    def outcomes_between(self, start: str, end: str) -> list[tuple[str, str | None, int]]:
+        """How many records of each event (and status or action) were written from ``start`` to before ``end``
+        (UTC times as the records write them), for outcomes and decisions."""
+        return self.db.execute(
+            "SELECT event, status, count(*) FROM records WHERE ts >= ? AND ts < ? "
+            "AND event IN ('published', 'rejected', 'held', 'skipped', 'decided') GROUP BY event, status",
+            (start, end)).fetchall()
+
+    def search(self, text: str, limit: int) -> list[tuple[str | None, str | None, str, str | None, str | None]]:
+        """The inputs whose order id or file name contains ``text`` (in any case), newest first: for each (order
+        id, file name), its last record's (order id, file name, event, status, time).
+
+        A text shorter than :data:`SEARCH_MIN` must be a whole order id or file name (with or without
+        ``.json``). Of the ids and names that contain it, the :data:`SEARCH_KEYS` seen last are looked at.
+        """
+        if len(text) >= SEARCH_MIN:
+            found = ("SELECT key FROM keys WHERE id IN (SELECT rowid FROM keys_text WHERE keys_text MATCH ? "
+                     "ORDER BY rowid DESC LIMIT ?)")
+            arguments: tuple[Any, ...] = ('"' + text.replace('"', '""') + '"', SEARCH_KEYS)
+        else:
+            found, arguments = "SELECT key FROM keys WHERE key IN (?, ?)", (text, f"{text}.json")
+        return self.db.execute(
+            f"WITH found(key) AS ({found}),"
+            " passes AS (SELECT seq, order_id, name, event, status, ts FROM records WHERE order_id IN found"
+            "  UNION SELECT seq, order_id, name, event, status, ts FROM records WHERE name IN found),"
+            " last AS (SELECT max(seq) AS seq FROM passes WHERE event IN (?, ?, ?, ?, ?) GROUP BY order_id, name)"
+            " SELECT p.order_id, p.name, p.event, p.status, p.ts FROM passes p JOIN last USING (seq)"
+            " ORDER BY p.seq DESC LIMIT ?", (*arguments, *PASS_EVENTS, limit)).fetchall()
 
     def counts(self) -> dict[str, int]:
         return {event: n for event, n in self.db.execute("SELECT event, n FROM counts ORDER BY event")}
@@ -314,7 +407,7 @@ class Index:
     def snapshot(self) -> dict[str, list[tuple]]:
         """Every row of every table but the verified point (for comparing a rebuilt index with a live one)."""
         tables = {}
-        for table in ("records", "defines", "published", "files", "counts"):
+        for table in ("records", "defines", "published", "files", "counts", "keys"):
             tables[table] = sorted(self.db.execute(f"SELECT * FROM {table}").fetchall(), key=repr)
         tables["meta"] = sorted(row for row in self.db.execute("SELECT * FROM meta") if not str(row[0]).startswith("verified"))
         return tables
