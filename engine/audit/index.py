@@ -5,9 +5,10 @@ It answers, without reading the log from its start: where each record is
 the order id, input file name, claim, status or decided action it concerns),
 which content each published order id has (``published``: duplicate detection,
 never held in memory), each define record by what it is found by and the
-numbers it holds (``defines``), every order id and input file name once with a
-trigram index for searching parts of them (``keys``), the chain's head in each
-file (``files``), counts per event and the last point ``audit verify`` checked.
+numbers it holds (``defines``), a trigram index of the records' order ids and
+input file names for finding them by a part (``records_text``), the chain's head
+in each file (``files``), counts per event and the last point ``audit verify``
+checked.
 
 The log stays the only source of truth. :meth:`Index.catch_up` compares the
 index's tail (the seq, hash and place of the last record it holds) with the
@@ -28,7 +29,7 @@ from lenslane.audit.reader import audit_files, iter_lines, file_of, read_at, ROT
 from lenslane.audit.records import DEFINE_EVENT, OUTCOMES, REF_LENGTH, define_key
 
 INDEX_NAME = "audit.sqlite"
-#: 2: records' time, status and action, defines by key with their numbers, the keys searched by trigram.
+#: 2: records' time, status and action, defines by key with their numbers, order ids and names by trigram.
 SCHEMA = 2
 #: The events a record of which tells what became of an input (the first format's ``received`` too).
 PASS_EVENTS = (*OUTCOMES, "received")
@@ -48,16 +49,16 @@ CREATE INDEX IF NOT EXISTS defines_seq ON defines (seq);
 CREATE TABLE IF NOT EXISTS published (order_id TEXT PRIMARY KEY, content TEXT, seq INTEGER) WITHOUT ROWID;
 CREATE TABLE IF NOT EXISTS files (first_seq INTEGER PRIMARY KEY, last_seq INTEGER, last_hash TEXT, size INTEGER);
 CREATE TABLE IF NOT EXISTS counts (event TEXT PRIMARY KEY, n INTEGER NOT NULL) WITHOUT ROWID;
-CREATE TABLE IF NOT EXISTS keys (id INTEGER PRIMARY KEY, key TEXT NOT NULL UNIQUE);
-CREATE VIRTUAL TABLE IF NOT EXISTS keys_text USING fts5(key, content='keys', content_rowid='id', tokenize='trigram');
-CREATE TRIGGER IF NOT EXISTS keys_added AFTER INSERT ON keys BEGIN
-    INSERT INTO keys_text (rowid, key) VALUES (new.id, new.key);
+CREATE VIRTUAL TABLE IF NOT EXISTS records_text USING fts5(
+    order_id, name, content='records', content_rowid='seq', tokenize='trigram', columnsize=0);
+CREATE TRIGGER IF NOT EXISTS records_added AFTER INSERT ON records BEGIN
+    INSERT INTO records_text (rowid, order_id, name) VALUES (new.seq, new.order_id, new.name);
 END;
 """
 #: The shortest part of an order id or file name the trigram index can find; a shorter search text must be whole.
 SEARCH_MIN = 3
-#: How many of the order ids and file names a search text is part of are looked at (the ones seen last).
-SEARCH_KEYS = 1000
+#: How many records whose order id or file name a search text is part of are looked at (the newest).
+SEARCH_RECORDS = 1000
 
 
 @dataclass(frozen=True)
@@ -252,7 +253,7 @@ class Index:
             raise
 
     def _add(self, placed: Iterable[tuple[dict[str, Any], int, int, int]], after: int) -> None:
-        rows, defines, published, counts, keys = [], [], [], {}, set()
+        rows, defines, published, counts = [], [], [], {}
         heads: dict[int, tuple[int, str, int]] = {}
         last = None
         for record, first, offset, length in placed:
@@ -266,8 +267,6 @@ class Index:
                 defines.append((key, str(record.get("kind")), seq, numbers))
             elif about.event == "published" and about.order_id is not None:
                 published.append((about.order_id, record.get("content_sha256"), seq))
-            if about.event in PASS_EVENTS:
-                keys.update(key for key in (about.order_id, about.name) if key)
             counts[about.event] = counts.get(about.event, 0) + 1
             heads[first] = (seq, record["hash"], offset + length)
             last = (seq, record["hash"], first, offset, length)
@@ -277,7 +276,6 @@ class Index:
         db.executemany("INSERT OR REPLACE INTO records VALUES (?,?,?,?,?,?,?,?,?,?)", rows)
         db.executemany("INSERT OR IGNORE INTO defines VALUES (?,?,?,?)", defines)
         db.executemany("INSERT OR REPLACE INTO published VALUES (?,?,?)", published)
-        db.executemany("INSERT OR IGNORE INTO keys (key) VALUES (?)", [(key,) for key in sorted(keys)])
         db.executemany("INSERT INTO counts VALUES (?, ?) ON CONFLICT(event) DO UPDATE SET n = n + excluded.n",
                        [(event or "", n) for event, n in counts.items()])
         db.executemany("INSERT OR REPLACE INTO files VALUES (?,?,?,?)",
@@ -371,21 +369,20 @@ class Index:
         id, file name), its last record's (order id, file name, event, status, time).
 
         A text shorter than :data:`SEARCH_MIN` must be a whole order id or file name (with or without
-        ``.json``). Of the ids and names that contain it, the :data:`SEARCH_KEYS` seen last are looked at.
+        ``.json``). Of the records it is found in, the newest :data:`SEARCH_RECORDS` are looked at.
         """
         if len(text) >= SEARCH_MIN:
-            found = ("SELECT key FROM keys WHERE id IN (SELECT rowid FROM keys_text WHERE keys_text MATCH ? "
-                     "ORDER BY rowid DESC LIMIT ?)")
-            arguments: tuple[Any, ...] = ('"' + text.replace('"', '""') + '"', SEARCH_KEYS)
+            found = "SELECT rowid FROM records_text WHERE records_text MATCH ? ORDER BY rowid DESC LIMIT ?"
+            arguments: tuple[Any, ...] = ('"' + text.replace('"', '""') + '"', SEARCH_RECORDS)
         else:
-            found, arguments = "SELECT key FROM keys WHERE key IN (?, ?)", (text, f"{text}.json")
+            found = "SELECT seq FROM records WHERE order_id IN (?, ?) UNION SELECT seq FROM records WHERE name IN (?, ?)"
+            arguments = (text, f"{text}.json") * 2
         return self.db.execute(
-            f"WITH found(key) AS ({found}),"
-            " passes AS (SELECT seq, order_id, name, event, status, ts FROM records WHERE order_id IN found"
-            "  UNION SELECT seq, order_id, name, event, status, ts FROM records WHERE name IN found),"
-            " last AS (SELECT max(seq) AS seq FROM passes WHERE event IN (?, ?, ?, ?, ?) GROUP BY order_id, name)"
-            " SELECT p.order_id, p.name, p.event, p.status, p.ts FROM passes p JOIN last USING (seq)"
-            " ORDER BY p.seq DESC LIMIT ?", (*arguments, *PASS_EVENTS, limit)).fetchall()
+            f"WITH found(seq) AS ({found}),"
+            " last AS (SELECT max(seq) AS seq FROM records WHERE seq IN found AND event IN (?, ?, ?, ?, ?)"
+            "  GROUP BY order_id, name)"
+            " SELECT order_id, name, event, status, ts FROM records WHERE seq IN last ORDER BY seq DESC LIMIT ?",
+            (*arguments, *PASS_EVENTS, limit)).fetchall()
 
     def counts(self) -> dict[str, int]:
         return {event: n for event, n in self.db.execute("SELECT event, n FROM counts ORDER BY event")}
@@ -407,7 +404,7 @@ class Index:
     def snapshot(self) -> dict[str, list[tuple]]:
         """Every row of every table but the verified point (for comparing a rebuilt index with a live one)."""
         tables = {}
-        for table in ("records", "defines", "published", "files", "counts", "keys"):
+        for table in ("records", "defines", "published", "files", "counts"):
             tables[table] = sorted(self.db.execute(f"SELECT * FROM {table}").fetchall(), key=repr)
         tables["meta"] = sorted(row for row in self.db.execute("SELECT * FROM meta") if not str(row[0]).startswith("verified"))
         return tables
