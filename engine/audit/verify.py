@@ -172,6 +172,8 @@ class _ChainWalker:
             found = self.defined.get(ref) if ref is not None else None
             if found is None and ref is not None and self.index is not None:
                 found = self._defined_before(ref)
+                if found is not None:  # a define from before the walk's start, known from now on
+                    self.defined[ref] = found
             if found != kind:
                 what = f"refers to {ref!r}, which no define record before it holds" if found is None else (
                     f"refers to {ref!r} as a {kind}, but that define record holds a {found}")
