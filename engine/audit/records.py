@@ -178,17 +178,17 @@ def _item_texts(defines: list[tuple[int, bytes | None]], numbers: list[list[byte
     places = list(compress(count(), differs))
     written = [number if first[number] == place else _shorter(number, first[number])
                for number, place in zip(compress(told, differs), places)]
+    masks = _mask(differs)  # bit i: the story's i-th number differs from its define's
     texts, start, done = [], 0, 0
     for (seq, _), own in zip(defines, numbers):
-        end = start + len(own)
-        mask = _mask(differs[start:end])
+        mask = masks >> start & ((1 << len(own)) - 1)
         if mask:
-            count_written = mask.bit_count()
-            texts.append("%d %x %s" % (seq, mask, b",".join(written[done:done + count_written]).decode()))
-            done += count_written
+            end = done + mask.bit_count()
+            texts.append("%d %x %s" % (seq, mask, b",".join(written[done:end]).decode()))
+            done = end
         else:
             texts.append(f"{seq} 0")
-        start = end
+        start += len(own)
     return texts
 
 
