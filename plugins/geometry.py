@@ -11,7 +11,6 @@ Every value is proposed as its own change, with the method that made it.
 from __future__ import annotations
 
 import math
-from functools import lru_cache
 from typing import Annotated, NamedTuple
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
@@ -302,14 +301,9 @@ def _outline(view, params):
     frame = view.order.frame
     if frame.outline_mm is not None:
         return outline_grid(frame.outline_mm), f"outline from the order ({len(frame.outline_mm)} radii about the box centre)"
-    return _modelled(frame.box_width_mm, frame.box_height_mm, frame.effective_diameter_mm,
-                     params.outline_exponent_without_ed)
-
-
-@lru_cache(maxsize=256)
-def _modelled(box_width_mm, box_height_mm, effective_diameter_mm, exponent_without_ed):
-    # Frames repeat from order to order: the modelled outline's grid and its sentence are kept.
-    shape = modelled_outline(box_width_mm, box_height_mm, effective_diameter_mm, exponent_without_ed)
+    box_width_mm, box_height_mm = frame.box_width_mm, frame.box_height_mm
+    effective_diameter_mm = frame.effective_diameter_mm
+    shape = modelled_outline(box_width_mm, box_height_mm, effective_diameter_mm, params.outline_exponent_without_ed)
     if effective_diameter_mm is None:
         basis = f"the lab's exponent m = {shape.exponent:g}, as the order gives no effective diameter"
     else:
@@ -541,10 +535,10 @@ def _exact_best_form(view, shared: _Shared, lens: _Eye, params: GeometryParams, 
     chosen = best.bases_d.index(best.base_d)
     inputs = {**inputs, "index": shared.material.index, "rotation_distance_mm": params.rotation_distance_mm,
               "obliquity_deg": math.degrees(theta),
-              "candidates": [{"base_d": base, "score_d": float(score) if math.isfinite(score) else None,
-                              "center_thickness_mm": float(centre_mm)}
+              "candidates": [{"base_d": base, "score_d": score if math.isfinite(score) else None,
+                              "center_thickness_mm": centre_mm}
                              for base, score, centre_mm in zip(best.bases_d, best.score_d, best.center_mm)],
-              "off_axis": off_axis_record(best.errors, chosen)}
+              "off_axis": off_axis_record(best.errors[chosen])}
     return _Choice(trials[best.base_d], EXACT_BEST_FORM_TITLE, EXACT_BEST_FORM_SOURCE, inputs, [], "")
 
 
@@ -560,7 +554,9 @@ def _matched(shared: _Shared, lenses: list[_Eye], choices: list[_Choice], params
     common = [b for b in set(lenses[0].stock) & set(lenses[1].stock) if max(abs(b - f) for f in fronts) <= limit]
     low, high = min(fronts), max(fronts)
     for base in sorted(common, key=lambda b: (max(abs(b - f) for f in fronts), b)):
-        trials = [_try(shared, lens, base, params) for lens in lenses]
+        # An eye whose own choice is this base has its lens solved on it already.
+        trials = [choice.trial if choice.trial.front_d == base else _try(shared, lens, base, params)
+                  for lens, choice in zip(lenses, choices)]
         if not any(trial.problems for trial in trials):
             own_text = ", ".join(f"{eye} {front:.2f} D" for eye, front in own.items())
             return [choice._replace(

@@ -204,10 +204,10 @@ def _impact_checks(view, params: SafetyParams):
 
 
 def _geometry_checks(view, params: SafetyParams, eye: str):
-    geometry = view.get(f"lenses.{eye}.geometry")
-    if not geometry:
+    # The two numbers it judges, not a copy of the whole geometry.
+    edge, blank = view.get(f"lenses.{eye}.geometry.edge_max_mm"), view.get(f"lenses.{eye}.geometry.blank_min_diameter_mm")
+    if edge is None or blank is None:
         return
-    edge, blank = geometry["edge_max_mm"], geometry["blank_min_diameter_mm"]
     mount = view.order.frame.mount
     mount_limit = params.max_edge_mm.get(mount)
     if mount_limit is not None and edge > mount_limit:

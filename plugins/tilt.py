@@ -15,7 +15,6 @@ from __future__ import annotations
 import math
 from typing import Literal, NamedTuple
 
-import numpy as np
 from pydantic import Field, model_serializer
 
 from lenslane import Flag, Stage, hookimpl
@@ -25,8 +24,7 @@ from lenslane.plugins.compensation import (
 from lenslane.contract.precision import present
 from lenslane.plugins.geometry import GeometryParams, planned_centre_mm, planned_fronts
 from lenslane.plugins.optics.asworn import (
-    coddington_vergence, exact_compensation, gaze_errors, largest_meridional_error, off_axis_record, power_elements,
-    worn_lenses,
+    asworn_power, exact_compensation, gaze_errors, largest_meridional_error, off_axis_record, worn_lens,
 )
 from lenslane.plugins.optics.power import PowerMatrix
 from lenslane.plugins.optics.raytrace import RayMissedSurface
@@ -43,8 +41,9 @@ SOURCE = ("Martin's formula, as given in Jalie, The Principles of Ophthalmic Len
 EXACT_METHOD = ("the surfacing power whose lens, traced with real rays (vector Snell's law through the spherical "
                 "front and toric back at the centre thickness the lens geometry gives it), tilted by θ about the "
                 "axis perpendicular to t with cos θ = cos p · cos w, has an as-worn vergence at the back-vertex "
-                "plane equal to the wanted power; Newton's method on the surfacing power matrix, the thickness "
-                "re-derived at each step")
+                "plane equal to the wanted power; the pencil carried along the traced chief ray by the generalised "
+                "Coddington equations, the surfacing power in closed form for each centre thickness tried and the "
+                "thickness re-derived for it until the two agree")
 EXACT_SOURCE = ("Spencer & Murty, \"General ray-tracing procedure\", JOSA 52:672, 1962; Kneisly, JOSA 54:229, "
                 "1964 (wavefront curvature about the chief ray); Jalie, The Principles of Ophthalmic Lenses "
                 "(thickness); Thibos, Wheeler & Horner, Optom Vis Sci 74:367, 1997 (off-axis errors)")
@@ -87,12 +86,14 @@ def _exact_pair(view, befores: dict, martins: dict, tilts: dict, index: float, f
 
     The front curves are the geometry stage's choice for the pair's surfacing
     powers (matched fronts included); each power is solved for its eye's front
-    (the thickness re-derived at every step), and again if the solved powers
+    (the thickness re-derived at every round), and again if the solved powers
     make the geometry stage choose other fronts, until the fronts it chooses
     are the ones solved for. Raises :class:`LensNotMakeable` (no lens can be
     made) or :class:`RayMissedSurface` (a chief ray cannot get through).
     """
     geometry = view.settings.stage_params.get("geometry") or GeometryParams()
+    # The rounds of the solution start at the lab's minimum centre thickness: every minus lens's.
+    minimums = geometry.minimum_thickness.get(view.order.lens.material, geometry.other_minimum_thickness)
     surfacings = dict(martins)
     fronts, solved = None, {}
 
@@ -107,30 +108,30 @@ def _exact_pair(view, befores: dict, martins: dict, tilts: dict, index: float, f
         for eye, before in befores.items():
             theta, tangential = tilts[eye]
 
-            def thickness_of(candidates, eye=eye):
-                return [planned_centre_mm(view, eye, powers({**surfacings, eye: PowerMatrix(*c)}), fronts[eye],
-                                          geometry) for c in candidates]
+            def thickness_of(candidate, eye=eye):
+                return planned_centre_mm(view, eye, powers({**surfacings, eye: candidate}), fronts[eye], geometry)
 
-            solved[eye] = exact_compensation([matrix_of(before)], fronts[eye], index, theta, tangential, thickness_of)
-            surfacings[eye] = PowerMatrix(*(float(v) for v in solved[eye].surfacing[0]))
+            solved[eye] = exact_compensation(matrix_of(before), fronts[eye], index, theta, tangential, thickness_of,
+                                             start_mm=minimums.center_mm)
+            surfacings[eye] = solved[eye].surfacing
     else:
         raise LensNotMakeable(f"the solved powers keep changing the front curves the lab would choose "
                               f"({_FRONT_ROUNDS} rounds)")
     exact = {}
     for eye, before in befores.items():
         theta, tangential = tilts[eye]
-        wanted, front, centre = matrix_of(before), fronts[eye], float(solved[eye].center_mm[0])
+        wanted, front, centre = matrix_of(before), fronts[eye], solved[eye].center_mm
         published = matrix_of(present(power_dict(surfacings[eye], before, form), "surfacing"))
-        lenses = worn_lenses([front, front], [surfacings[eye], published], centre, index, theta, tangential)
-        published_residual = float(largest_meridional_error(
-            np.array(wanted) - power_elements(coddington_vergence(lenses.take([1])))[0]))
-        errors = gaze_errors(lenses.take([0]), [wanted], [eye], geometry.rotation_distance_mm)
+        published_worn = asworn_power(worn_lens(front, published, centre, index, theta, tangential))
+        errors = gaze_errors(worn_lens(front, surfacings[eye], centre, index, theta, tangential), wanted, eye,
+                             geometry.rotation_distance_mm)
         exact[eye] = _Exact(surfacings[eye], {
             "method": "exact",
             "martin_surfacing": power_dict(martins[eye], before, form),
-            "asworn_residual_d": float(solved[eye].residual_d[0]),
-            "published_asworn_residual_d": published_residual,
-            "newton_steps": solved[eye].steps,
+            "asworn_residual_d": solved[eye].residual_d,
+            "published_asworn_residual_d": largest_meridional_error(
+                [w - p for w, p in zip(wanted, published_worn)]),
+            "solution_rounds": solved[eye].rounds,
             "front_curve_d": front,
             "center_thickness_mm": centre,
             "rotation_distance_mm": geometry.rotation_distance_mm,

@@ -70,7 +70,8 @@ def _fit_checks(view, params: ValidateParams):
             )
         heights = [(name, value) for name, value in (("fitting height", fit.height_mm),
                                                      ("segment height", fit.segment_height_mm)) if value is not None]
-        outside = [flag for name, value in heights if (flag := _outside_lens(view, eye, name, value)) is not None]
+        span = _lens_span(view, eye) if heights else None
+        outside = [flag for name, value in heights if (flag := _outside_lens(view, eye, name, value, span)) is not None]
         yield from outside
         if outside:
             continue
@@ -96,18 +97,23 @@ def _fit_checks(view, params: ValidateParams):
         )
 
 
-def _outside_lens(view, eye: str, name: str, height: float) -> Flag | None:
-    """A review flag when a height above the box bottom falls outside the lens at the pupil's position."""
+def _lens_span(view, eye: str) -> tuple[float, float, str]:
+    """How far the lens reaches up and down at the pupil's position (mm above the box bottom), and in what words."""
     frame, fit = view.order.frame, getattr(view.order.fit, eye)
-    low, high = 0.0, frame.box_height_mm
-    where = f"the box height of {frame.box_height_mm:.1f} mm"
-    if frame.outline_mm is not None:
-        # On the outline, along the vertical through the pupil (the right lens's view; the left is its mirror).
-        offset = inward_decentration(frame.box_width_mm, frame.bridge_mm, frame.box_height_mm, fit.pd_mm)
-        extent = vertical_extent_at(frame.outline_mm, optical_centre("right", offset)[0])
-        low, high = (0.0, 0.0) if extent is None else (extent[0] + frame.box_height_mm / 2.0,
-                                                         extent[1] + frame.box_height_mm / 2.0)
-        where = f"the lens outline, {low:.1f}–{high:.1f} mm above the box bottom below the pupil"
+    if frame.outline_mm is None:
+        return 0.0, frame.box_height_mm, f"the box height of {frame.box_height_mm:.1f} mm"
+    # On the outline, along the vertical through the pupil (the right lens's view; the left is its mirror).
+    offset = inward_decentration(frame.box_width_mm, frame.bridge_mm, frame.box_height_mm, fit.pd_mm)
+    extent = vertical_extent_at(frame.outline_mm, optical_centre("right", offset)[0])
+    low, high = (0.0, 0.0) if extent is None else (extent[0] + frame.box_height_mm / 2.0,
+                                                     extent[1] + frame.box_height_mm / 2.0)
+    return low, high, f"the lens outline, {low:.1f}–{high:.1f} mm above the box bottom below the pupil"
+
+
+def _outside_lens(view, eye: str, name: str, height: float, span: tuple[float, float, str]) -> Flag | None:
+    """A review flag when a height above the box bottom falls outside the lens at the pupil's position."""
+    frame = view.order.frame
+    low, high, where = span
     if low < height < high:
         return None
     code = "segment-height-outside-lens" if name == "segment height" else "fitting-height-outside-lens"

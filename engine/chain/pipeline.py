@@ -20,9 +20,9 @@ from pydantic import ValidationError
 
 from lenslane.chain import core
 from lenslane.chain.host import Host, PluginInfo
-from lenslane.chain.stage import Change, Flag, OrderView, Stage, copy_value
+from lenslane.chain.stage import Change, Flag, OrderView, Stage
 from lenslane.contract.models import RESULT_FORMAT, LensOrder, LensOrderResult
-from lenslane.contract.precision import present
+from lenslane.contract.precision import NotPlain, plain_copy, present
 from lenslane.vocabulary import CAUTION, EYES, LEVELS
 
 
@@ -172,8 +172,16 @@ def _apply(stage: Stage, change: Change, state: dict[str, Any], shown: dict[str,
     parts = path.split(".")
     if parts[0] != "lenses" or len(parts) < 3 or parts[1] not in eyes:
         raise StageFailure(stage.name, f"{path!r} is not a field of an eye being made ({', '.join(eyes)})")
-    _check_json(stage.name, path, change.value)
-    _check_json(stage.name, f"{path} (inputs)", change.inputs)
+    key = parts[-1]
+    try:  # each walk copies and checks at once: what is not plain JSON never reaches the result
+        after = present(change.value, key)
+        value = plain_copy(change.value)
+        # Inputs are kept at full precision: they are what the method computed with.
+        inputs = plain_copy(change.inputs)
+    except NotPlain:
+        _check_json(stage.name, path, change.value)  # the slow walk, only now: it says where and what
+        _check_json(stage.name, f"{path} (inputs)", change.inputs)
+        raise StageFailure(stage.name, f"wrote a value to {path} that is not plain JSON") from None
     node = state["lenses"][parts[1]]  # made for every eye at the start; no change can replace it
     shown = shown[parts[1]]
     for part in parts[2:-1]:
@@ -182,11 +190,9 @@ def _apply(stage: Stage, change: Change, state: dict[str, Any], shown: dict[str,
             raise StageFailure(stage.name, f"{path!r} goes through a value that is not an object")
         # A rounded object may be an earlier record's "after": replaced by a copy, never changed.
         shown[part] = shown = dict(shown.get(part, {}))
-    key = parts[-1]
-    value = copy_value(change.value)
     node[key] = value
     before = shown.get(key)
-    shown[key] = after = present(value, key)
+    shown[key] = after
     return {
         "stage": stage.name,
         "field": path,
@@ -195,8 +201,7 @@ def _apply(stage: Stage, change: Change, state: dict[str, Any], shown: dict[str,
         "reason": change.reason,
         "method": change.method,
         "source": change.source,
-        # Inputs are kept at full precision: they are what the method computed with.
-        "inputs": copy_value(dict(change.inputs)),
+        "inputs": inputs,
     }
 
 
@@ -208,13 +213,20 @@ def _flag_record(stage: str, flag: Flag, eyes: list[str]) -> dict[str, Any]:
     record: dict[str, Any] = {"code": flag.code, "level": flag.level, "eye": flag.eye, "message": flag.message,
                               "stage": stage}
     if flag.values:
-        _check_json(stage, f"flag {flag.code!r} values", flag.values)
-        record["values"] = present(dict(flag.values))
+        where = f"flag {flag.code!r} values"
+        try:
+            record["values"] = present(flag.values)
+        except NotPlain:
+            _check_json(stage, where, flag.values)
+            raise StageFailure(stage, f"wrote a value to {where} that is not plain JSON") from None
     return record
 
 
 def _check_json(stage: str, where: str, value: Any) -> None:
-    """Refuse what JSON cannot carry faithfully: NaN, infinities, non-string keys, objects of other kinds."""
+    """Refuse what JSON cannot carry faithfully: NaN, infinities, non-string keys, objects of other kinds.
+
+    Run only once :func:`present` or :func:`plain_copy` found a value that is not plain JSON: it names where.
+    """
     if value is None or isinstance(value, (str, bool, int)):
         return
     if isinstance(value, float):

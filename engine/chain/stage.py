@@ -6,11 +6,11 @@ proposals; the pipeline applies the changes in order and records each one.
 """
 from __future__ import annotations
 
-import copy
 import dataclasses
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Callable, Iterable, Mapping
 
+from lenslane.contract.precision import plain_copy
 from lenslane.vocabulary import EYES, Eye, Level
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -95,35 +95,21 @@ class Stage:
     writes: tuple[str, ...] = ()
     params: type["BaseModel"] | None = None
     description: str = ""
+    #: ``writes``, each pattern split at its dots once, when the stage is made.
+    _patterns: tuple[tuple[str, ...], ...] = dataclasses.field(init=False, repr=False, compare=False, default=())
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "_patterns", tuple(tuple(pattern.split(".")) for pattern in self.writes))
 
     def may_write(self, field_path: str) -> bool:
         parts = field_path.split(".")
-        for pattern in self.writes:
-            want = pattern.split(".")
-            if len(parts) >= len(want) and all(w in ("*", p) for w, p in zip(want, parts)):
+        for want in self._patterns:
+            if len(parts) >= len(want) and all(w == "*" or w == p for w, p in zip(want, parts)):
                 return True
         return False
 
 
 _MISSING = object()
-_ATOMS = frozenset((str, int, float, bool, type(None)))
-
-
-def copy_value(value: Any) -> Any:
-    """A deep copy of a result value, cheap for the plain JSON it normally is.
-
-    Dicts and lists are rebuilt, str / int / float / bool / None (immutable) are
-    shared, and anything else goes through :func:`copy.deepcopy`, so no part of
-    the copy can change the original.
-    """
-    kind = type(value)
-    if kind in _ATOMS:
-        return value
-    if kind is dict:
-        return {k: v if type(v) in _ATOMS else copy_value(v) for k, v in value.items()}
-    if kind is list:
-        return [v if type(v) in _ATOMS else copy_value(v) for v in value]
-    return copy.deepcopy(value)
 
 
 class OrderView:
@@ -150,7 +136,7 @@ class OrderView:
             node = node.get(part, _MISSING)
             if node is _MISSING:
                 return default
-        return copy_value(node)
+        return plain_copy(node)
 
     def material(self) -> "Material":
         """The order's material from the lab's table, with the order's index override applied."""

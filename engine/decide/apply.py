@@ -37,21 +37,10 @@ from lenslane.decide.history import OrderLog, order_log
 from lenslane.decide.model import (
     ACTIONS, EXIT_MISMATCH, EXIT_NOT_AWAITING, EXIT_UNKNOWN, EXIT_USAGE, DecisionError, DecisionResult,
 )
-from lenslane.lab.files import claim_tag, free_name, fsync_dir, printable, write_durably
+from lenslane.lab.files import claim_tag, create_durably, free_name, fsync_dir, printable, rename_noreplace, write_durably
 from lenslane.lab.folder import (
     ERRORS_SUFFIX, HELD_SUFFIX, Lab, StageWontStop, note_published, result_bytes, story_fields,
 )
-
-#: Tests only: ``LENSLANE_DECISION_FAULT=<step>`` ends the process abruptly right after a step, as a crash would.
-FAULT_VARIABLE = "LENSLANE_DECISION_FAULT"
-FAULT_STEPS = ("written", "recorded", "moved", "answered")
-FAULT_EXIT_CODE = 87
-
-
-def _reached(step: str) -> None:
-    if os.environ.get(FAULT_VARIABLE) == step:
-        os._exit(FAULT_EXIT_CODE)  # no clean-up, no flushing: a crash
-
 
 def _report(data: dict[str, Any]) -> bytes:
     return json.dumps(data, ensure_ascii=False, indent=1).encode("utf-8", "backslashreplace") + b"\n"
@@ -84,7 +73,7 @@ class Applier:
             except DecisionError as exc:
                 outcome = exc
             requests.write_answer(path, outcome)
-            _reached("answered")
+            self.lab.on_step("decision-answered")
             path.unlink(missing_ok=True)
             done.append((request, outcome))
         return done
@@ -118,14 +107,14 @@ class Applier:
                                   "flags_acknowledged": acknowledged}
             approved = result_bytes(result)
             target = f"outbox/{order_id}.json"
-            write_durably(self.root / target, approved)
+            create_durably(self.root / target, approved)
             decided.update(result=target, result_sha256=hashlib.sha256(approved).hexdigest(), status="ready",
                            flags_acknowledged=acknowledged, moves=[{"from": path, "to": None, "sha256": placed.sha256}])
             message = f"approved: {target} published with status ready"
         else:
             name = free_name(self.root / "rejected", f"{order_id}.json", claim_tag(request["request"]), ERRORS_SUFFIX)
             reasons = [{"field": "(decision)", "message": f"refused by {request['by']}: {request['note']}"}]
-            write_durably(self.root / "rejected" / f"{name}{ERRORS_SUFFIX}", _report(
+            create_durably(self.root / "rejected" / f"{name}{ERRORS_SUFFIX}", _report(
                 {"file": f"{order_id}.json", "rejected": True, "order_id": order_id, "problems": reasons,
                  "input": f"rejected/{name}"}))
             decided.update(reasons=reasons, moves=[{"from": path, "to": f"rejected/{name}", "sha256": placed.sha256}])
@@ -183,7 +172,7 @@ class Applier:
                                     request["requested_at"], None, examined.parsed), "from": held}
         if result is None:
             target = free_name(self.root / "rejected", name, claim_tag(request["request"]), ERRORS_SUFFIX)
-            write_durably(self.root / "rejected" / f"{target}{ERRORS_SUFFIX}", _report(
+            create_durably(self.root / "rejected" / f"{target}{ERRORS_SUFFIX}", _report(
                 {"file": printable(name), "rejected": True, "problems": reasons, "input": f"rejected/{target}"}))
             moves.append({"from": held, "to": f"rejected/{target}", "sha256": log.held[held]})
             events.append({"event": "rejected", "order_id": order_id, "received": received, "reasons": reasons,
@@ -192,7 +181,7 @@ class Applier:
             return f"the new version was refused by the chain ({reasons[0]['field']}: {reasons[0]['message']}); " \
                    "the published result stays"
         current = log.current()
-        superseded = None
+        superseded = archived = None
         if current is not None:
             path, placed = current
             superseded = placed.sha256
@@ -205,7 +194,9 @@ class Applier:
         folder = "review" if result["status"] == "review" else "outbox"
         target = f"{folder}/{order_id}.json"
         published = result_bytes(result)
-        write_durably(self.root / target, published)
+        # Only the result this revision supersedes, kept in archive/ by now, may be written over.
+        replaces = current is not None and archived is not None and current[0] == target
+        (write_durably if replaces else create_durably)(self.root / target, published)
         destination = free_name(self.root / "archive", name, claim_tag(request["request"]))
         moves.append({"from": held, "to": f"archive/{destination}", "sha256": log.held[held]})
         decided.update(revision=revision, outcome=folder)
@@ -252,11 +243,11 @@ class Applier:
         return data
 
     def _commit(self, events: list[dict[str, Any]], message: str) -> DecisionResult:
-        _reached("written")
+        self.lab.on_step("decision-written")
         records = self.lab.audit.append(events)  # step 3: the decision is made
-        _reached("recorded")
+        self.lab.on_step("decision-recorded")
         self._move(events[0].get("moves") or ())
-        _reached("moved")
+        self.lab.on_step("decision-moved")
         decided = dict(records[0])
         for record in records[1:]:
             if record.get("event") == "published":
@@ -273,10 +264,15 @@ class Applier:
             if not source.exists() or (move.get("sha256") and file_sha256(source) != move["sha256"]):
                 continue  # moved already, or replaced in place by the new revision
             target = move.get("to")
-            if target is None or (self.root / target).exists():
+            if target is None:
                 source.unlink()
             else:
-                os.rename(source, self.root / target)
+                try:
+                    rename_noreplace(source, self.root / target)
+                except FileExistsError:  # moved before a crash, its old name left: drop that name only
+                    if file_sha256(self.root / target) != (move.get("sha256") or file_sha256(source)):
+                        continue  # something else sits there: both stay, and audit verify tells of it
+                    source.unlink()
                 touched.add((self.root / target).parent)
             touched.add(source.parent)
         for folder in touched:

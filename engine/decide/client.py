@@ -110,16 +110,12 @@ def _time_limit(lab):
     if threading.current_thread() is not threading.main_thread():
         yield
         return
-    from lenslane.watch.daemon import StageClock
+    from lenslane.watch.clock import StageClock, signals_handled
 
     clock = StageClock(lab.config.watch.order_time_limit_seconds)
-    previous = signal.signal(signal.SIGALRM, clock.on_alarm)
     lab.time_limit = clock
-    try:
+    with signals_handled({signal.SIGALRM: clock.on_alarm}):
         yield
-    finally:
-        signal.setitimer(signal.ITIMER_REAL, 0)
-        signal.signal(signal.SIGALRM, previous)
 
 
 def _wake(holder: str) -> None:

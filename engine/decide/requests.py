@@ -23,7 +23,7 @@ from typing import Any
 from lenslane.audit.results import REQUESTS
 from lenslane.contract.models import ORDER_ID_RE
 from lenslane.decide.model import ACTIONS, EXIT_USAGE, DecisionError, DecisionResult
-from lenslane.lab.files import write_durably
+from lenslane.lab.files import create_durably, fsync_dir, rename_noreplace, write_durably
 
 FORMAT = "lens-decision-request/1"
 ANSWER_SUFFIX = ".answer.json"
@@ -80,7 +80,7 @@ def write_request(lab_root: Path, request: dict[str, Any]) -> Path:
     """Drop a request into ``decisions/``: temp name, fsync, rename, fsync the folder."""
     target = folder(lab_root) / f"{request['request']}.json"
     target.parent.mkdir(exist_ok=True)
-    write_durably(target, json.dumps(request, ensure_ascii=False, indent=1).encode() + b"\n")
+    create_durably(target, json.dumps(request, ensure_ascii=False, indent=1).encode() + b"\n")
     return target
 
 
@@ -104,7 +104,8 @@ def take(path: Path) -> Path:
     if path.name.endswith(TAKEN_SUFFIX):
         return path
     taken = path.with_name(request_id(path) + TAKEN_SUFFIX)
-    os.rename(path, taken)
+    rename_noreplace(path, taken)
+    fsync_dir(path.parent)  # taken for good: after a power loss it is not withdrawn as if never taken
     return taken
 
 

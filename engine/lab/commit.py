@@ -63,6 +63,7 @@ class GroupCommit:
         self._next = _Batch()  # processed, waiting for commit()
         self._committing: _Batch | None = None  # the batch commit() began and has not finished
         self._final: list["Processed"] = []  # made final, not yet returned by commit()
+        self._destined: set[str] = set()  # where the inputs of the queued orders go (relative to the lab)
 
     def open_audit(self) -> None:
         """(Re)open the audit log, so its tail is the one on disk (opening may close a torn last line); the
@@ -84,22 +85,28 @@ class GroupCommit:
 
     def defer(self, pending: Pending) -> None:
         self._next.orders.append(pending)
+        self._destined.add(pending.final.input)
 
     def _batches(self) -> list[_Batch]:
         return [self._next] if self._committing is None else [self._next, self._committing]
 
-    def destinations(self) -> set[str]:
-        """Where the inputs waiting for a commit will go (relative to the lab): names no other input may take."""
-        return {pending.final.input for batch in self._batches() for pending in batch.orders}
+    def is_destination(self, path: str) -> bool:
+        """Whether an input waiting for a commit will go to ``path`` (relative to the lab): a name no other input
+        may take. Kept as the orders are queued and leave, not gathered from the batches at every question."""
+        return path in self._destined
 
     def set_aside(self, work_name: str) -> None:
         """Leave ``work/<work_name>`` where it is: its records are written, its move is given up until a restart."""
         for batch in self._batches():
-            batch.orders[:] = [pending for pending in batch.orders if pending.work_name != work_name]
+            kept = [pending for pending in batch.orders if pending.work_name != work_name]
+            for pending in batch.orders:
+                if pending.work_name == work_name:
+                    self._destined.discard(pending.final.input)
+            batch.orders[:] = kept
 
     def is_pending(self, processed: "Processed") -> bool:
-        """Whether ``processed`` still waits for :meth:`commit`."""
-        return any(pending.processed is processed for batch in self._batches() for pending in batch.orders)
+        """Whether ``processed`` still waits for :meth:`commit` (newest first: it is usually the one asked about)."""
+        return any(pending.processed is processed for batch in self._batches() for pending in reversed(batch.orders))
 
     @property
     def uncommitted(self) -> int:
@@ -160,6 +167,7 @@ class GroupCommit:
         while batch.orders:
             pending = batch.orders[0]
             self.move_input(pending.work_name, pending.final.input, pending.claim)
+            self._destined.discard(pending.final.input)  # the input is there now
             self._final.append(batch.orders.pop(0).processed)
 
     def _record(self, orders: list[Pending]) -> None:

@@ -42,8 +42,11 @@ from lenslane.lab.recovery import recover
 FOLDERS = ("inbox", "outbox", "review", "rejected", "archive", "work", "held", "decisions")
 #: The steps of an order's way that :class:`Lab` reports to its ``on_step`` callback, as each completes.
 STEPS = ("claimed", "published", "audited", "archived")
+#: The steps of a person's decision that the lab reports the same way (lenslane.decide.apply: its files
+#: written, its record appended, its files moved, its answer written).
+DECISION_STEPS = ("decision-written", "decision-recorded", "decision-moved", "decision-answered")
 
-__all__ = ["ERRORS_SUFFIX", "FOLDERS", "HELD_SUFFIX", "STEPS", "Interrupted", "Lab", "OrderTimeLimit",
+__all__ = ["DECISION_STEPS", "ERRORS_SUFFIX", "FOLDERS", "HELD_SUFFIX", "STEPS", "Interrupted", "Lab", "OrderTimeLimit",
            "OutputBlocked", "Processed", "StageWontStop", "Wait", "init_lab", "is_order_name", "note_published",
            "result_bytes", "story_fields"]
 
@@ -82,7 +85,7 @@ class Lab:
         A factory of the context manager that bounds one run of the chain; the
         daemon gives its clock (the default sets no limit).
     on_step : callable, optional
-        Called with each step's name (:data:`STEPS`) as it completes; for
+        Called with each step's name (:data:`STEPS`, :data:`DECISION_STEPS`) as it completes; for
         observers of the engine's progress, tests among them.
     """
 
@@ -95,14 +98,14 @@ class Lab:
         root_text = os.fspath(self.root)
         self._work = os.path.join(root_text, "work")
         self.time_limit = time_limit
-        self._on_step = on_step or (lambda step: None)
+        self.on_step = on_step or (lambda step: None)
         self.stage_seconds: dict[str, float] = {}  # time spent in each stage, summed over the run
         self.history = History(self.root)
         self.aside = Aside()  # entries that could not be taken, left where they are
         self.arrivals = Arrivals(os.path.join(root_text, "inbox"), host.config.watch, self.examine)
         self.claims = Claims(os.path.join(root_text, "inbox"), self._work)
-        self.commits = GroupCommit(root_text, self.history, self._open_audit, self._on_step)
-        self.outcomes = Outcomes(root_text, self.history, self.commits, {}, self._on_step)
+        self.commits = GroupCommit(root_text, self.history, self._open_audit, self.on_step)
+        self.outcomes = Outcomes(root_text, self.history, self.commits, {}, self.on_step)
         self.use_host(host)
 
     def use_host(self, host: Host) -> None:
@@ -183,7 +186,7 @@ class Lab:
         if claimed is None:
             return None
         work_name, info = claimed
-        self._on_step("claimed")
+        self.on_step("claimed")
         examined, opened = seen.examined, seen.opened
         if opened is not None and (info.st_ino, info.st_size, info.st_mtime_ns) != (
                 opened.st_ino, opened.st_size, opened.st_mtime_ns):

@@ -147,7 +147,6 @@ class Outcomes:
         kind = KINDS[outcome]
         folder = os.path.join(self.root, kind.folder)
         name = printable(claimed.name)
-        waiting = self.commit.destinations()
 
         def report_bytes(target: str) -> bytes:
             return _report_bytes({"file": name, **(report or {}), "input": printable(f"{kind.folder}/{target}")})
@@ -155,7 +154,8 @@ class Outcomes:
         def taken(target: str) -> bool:
             """An input is there or on its way there, or a report of other bytes (a redo's own is the same)."""
             report_path = os.path.join(folder, f"{target}{kind.report_suffix}")
-            return (f"{kind.folder}/{target}" in waiting or os.path.lexists(os.path.join(folder, target))
+            return (self.commit.is_destination(f"{kind.folder}/{target}")
+                    or os.path.lexists(os.path.join(folder, target))
                     or (report is not None and os.path.lexists(report_path)
                         and not holds(report_path, report_bytes(target))))
 

@@ -560,7 +560,9 @@ def off_axis_picture(off_axis: dict[str, Any], eye: str) -> Picture:
     ``off_axis`` is what the exact tilt method records: ``gaze_angles_deg`` and,
     per direction (``up``, ``down``, ``nasal``, ``temporal``), ``mean_d`` and
     ``cylinder_d`` per angle (errors as power vectors, Thibos, Wheeler & Horner,
-    Optom Vis Sci 74:367, 1997). One millimetre of the drawing is one degree of gaze.
+    Optom Vis Sci 74:367, 1997); null where the gaze's pencil does not get
+    through the lens, drawn as "beyond the lens". One millimetre of the drawing
+    is one degree of gaze.
     """
     angles = [float(a) for a in off_axis.get("gaze_angles_deg") or ()]
     reach = max(angles, default=30.0)
@@ -588,6 +590,10 @@ def off_axis_picture(off_axis: dict[str, Any], eye: str) -> Picture:
                 anchor, tx, ty = "start", x + 1.6, y + 0.2
             else:  # the inner angle above the arm, the next below, and so on
                 anchor, tx, ty = "middle", x, (y - 3.6) if step % 2 == 0 else (y + 3.2)
+            if mean is None or cylinder is None:  # the record's null: the pencil does not get through the lens
+                body.append(_text(tx, ty, "beyond", anchor, 2.0, css="mean-error"))
+                body.append(_text(tx, ty + 2.3, "the lens", anchor, 2.0, css="cylinder-error"))
+                continue
             body.append(_text(tx, ty, f"M {number(mean, 2, sign=True)}", anchor, 2.0, css="mean-error"))
             body.append(_text(tx, ty + 2.3, f"cyl {number(cylinder, 2)}", anchor, 2.0, css="cylinder-error"))
     span = reach + 16

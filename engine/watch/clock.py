@@ -1,9 +1,10 @@
 """The per-order time limit: ``SIGALRM`` bounds one run of the chain, and a stop's grace time."""
 from __future__ import annotations
 
+import contextlib
 import signal
 import time
-from typing import Any
+from typing import Any, Callable, Iterator
 
 from lenslane.lab.errors import Interrupted, OrderTimeLimit, StageWontStop
 
@@ -75,3 +76,16 @@ class StageClock:
     @staticmethod
     def _arm(seconds: float) -> None:
         signal.setitimer(signal.ITIMER_REAL, max(seconds, 0.001))
+
+
+@contextlib.contextmanager
+def signals_handled(handlers: dict[int, Callable[[int, Any], Any]]) -> Iterator[None]:
+    """Install ``handlers`` (signal number → handler) for the block; after it, no alarm is left and each
+    signal's previous handler is back."""
+    previous = {number: signal.signal(number, handler) for number, handler in handlers.items()}
+    try:
+        yield
+    finally:
+        signal.setitimer(signal.ITIMER_REAL, 0)
+        for number, handler in previous.items():
+            signal.signal(number, handler)

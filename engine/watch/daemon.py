@@ -34,7 +34,7 @@ from lenslane.lab.errors import Interrupted, OutputBlocked
 from lenslane.lab.files import printable
 from lenslane.lab.folder import Lab, Processed, Wait
 from lenslane.watch.checkpoints import Checkpoints
-from lenslane.watch.clock import StageClock
+from lenslane.watch.clock import StageClock, signals_handled
 from lenslane.watch.log import configure_logging
 from lenslane.watch.observer import Supervisor
 from lenslane.watch.health import STOPPED, Health
@@ -84,19 +84,16 @@ class Daemon:
         lock = self.health.lock()
         if lock is None:
             return EXIT_LAB_LOCKED
-        previous = {number: signal.signal(number, self._on_stop) for number in (signal.SIGTERM, signal.SIGINT)}
-        previous[signal.SIGALRM] = signal.signal(signal.SIGALRM, self.clock.on_alarm)
-        previous[signal.SIGUSR1] = signal.signal(signal.SIGUSR1, lambda *_: self._wake(self.desk.wake))
+        handlers = {signal.SIGTERM: self._on_stop, signal.SIGINT: self._on_stop, signal.SIGALRM: self.clock.on_alarm,
+                    signal.SIGUSR1: lambda *_: self._wake(self.desk.wake)}
         if not self.once:
-            previous[signal.SIGHUP] = signal.signal(signal.SIGHUP, lambda *_: self._wake(self.desk.ask_reload))
+            handlers[signal.SIGHUP] = lambda *_: self._wake(self.desk.ask_reload)
         try:
-            return self._run_locked()
+            with signals_handled(handlers):
+                return self._run_locked()
         finally:
             if self.supervisor is not None:
                 self.supervisor.stop()
-            signal.setitimer(signal.ITIMER_REAL, 0)
-            for number, handler in previous.items():
-                signal.signal(number, handler)
             os.close(lock)  # the kernel would release it anyway
 
     def _run_locked(self) -> int:
@@ -183,7 +180,8 @@ class Daemon:
             if due is not None:
                 if self._look_at(*due) is STOPPED:
                     break
-                if (self.lab.batched >= BATCH_MAX or self._idle()) and self._commit() is STOPPED:
+                # Commit when the batch is full or nothing else is due now, so a lone order never waits.
+                if (self.lab.batched >= BATCH_MAX or schedule.idle(time.monotonic())) and self._commit() is STOPPED:
                     break
                 continue
             upcoming = schedule.next_due()
@@ -215,12 +213,6 @@ class Daemon:
             self.schedule.at(name, time.monotonic() + delay)
         return result
 
-    def _idle(self) -> bool:
-        """Nothing else is due now: commit at once, so a lone order is never kept waiting."""
-        now = time.monotonic()
-        self.schedule.take_hints(now)
-        return self.schedule.next_due() > now
-
     def _scan(self, now: float) -> None:
         self.next_scan = now + self.rescan_seconds
         names = scan(os.fspath(self.lab.inbox))
@@ -237,14 +229,7 @@ class Daemon:
             self.health.write_state()
 
     def _sleep(self, seconds: float) -> bool:
-        """Wait, still noting hints; True when a stop was asked."""
-        deadline = time.monotonic() + seconds
-        while not self.stopping:
-            left = deadline - time.monotonic()
-            if left <= 0:
-                return False
-            self.schedule.wait(left)
-        return True
+        return self.schedule.sleep(seconds, lambda: self.stopping)
 
     # -- one order, and the commit, with retries -----------------------------------------
 

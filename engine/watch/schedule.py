@@ -11,6 +11,7 @@ import math
 import os
 import queue
 import time
+from typing import Callable
 
 from lenslane.lab.arrival import is_order_name
 
@@ -68,6 +69,21 @@ class Schedule:
         except queue.Empty:
             return
         self._note(hint, name, time.monotonic())
+
+    def sleep(self, seconds: float, stopping: Callable[[], bool]) -> bool:
+        """Wait ``seconds``, still noting hints; True when ``stopping()`` became true meanwhile."""
+        deadline = time.monotonic() + seconds
+        while not stopping():
+            left = deadline - time.monotonic()
+            if left <= 0:
+                return False
+            self.wait(left)
+        return True
+
+    def idle(self, now: float) -> bool:
+        """Nothing else is due now (hints taken first)."""
+        self.take_hints(now)
+        return self.next_due() > now
 
     def _note(self, hint: int, name: str, now: float) -> None:
         if hint == WAKE:

@@ -9,23 +9,27 @@ Coordinates: x toward the observer's right, y up, z along the primary line of
 sight toward the eye, B at the origin. The eye's centre of rotation lies on
 the line of sight, :data:`ROTATION_DISTANCE_MM` behind B.
 
-A pencil from a distant object is measured about its chief ray: exactly
-traced neighbouring rays (vector Snell's law) give, by central differences,
-the vergence matrix ``V = −(∂u/∂q)(∂y/∂q)⁻¹`` of the emerging wavefront at a
-reference point on the chief ray (u the direction tangents and y the positions
-of the rays on the plane normal to the chief ray there, q their offsets before
-the lens). On the line of sight the reference point is B; for an eye turned
-about its centre of rotation, it is where the chief ray through the centre of
-rotation meets the vertex sphere (about the centre of rotation, through B).
+A pencil from a distant object is measured about its chief ray. The chief ray
+is traced exactly (vector Snell's law); the vergence of the infinitesimal
+pencil about it is carried along it by the generalised Coddington equations,
+with each surface's curvature matrix where the chief ray meets it. On the line
+of sight the reference point is B; for an eye turned about its centre of
+rotation, it is where the chief ray through the centre of rotation meets the
+vertex sphere (about the centre of rotation, through B).
 
-Everything is vectorised: arrays of lenses and pencils are traced in one call.
+One lens and one pencil per call, in plain floats (the engine's case: a few
+pencils per lens, one lens after another). Power matrices are
+:class:`~lenslane.plugins.optics.power.PowerMatrix` (xx, xy, yy) in dioptres;
+inside, 2×2 matrices are pairs of rows and vergences are in 1/mm.
 
 References
 ----------
 .. [1] Spencer, G. H. & Murty, M. V. R. K. (1962). "General ray-tracing
    procedure." JOSA 52:672 — the ray trace (:mod:`lenslane.plugins.optics.raytrace`).
 .. [2] Kneisly, J. A. (1964). "Local curvature of wavefronts in an optical
-   system." JOSA 54:229 — the vergence of a pencil about its chief ray.
+   system." JOSA 54:229 — the vergence of a pencil about its chief ray (the
+   generalised Coddington equations); Stavroudis, O. N. (1972). *The Optics of
+   Rays, Wavefronts, and Caustics*. Academic Press.
 .. [3] Thibos, L. N., Wheeler, W. & Horner, D. (1997). "Power vectors: an
    application of Fourier analysis to the description and statistical analysis
    of refractive error." Optom Vis Sci 74:367 — M, J₀, J₄₅.
@@ -37,14 +41,12 @@ from __future__ import annotations
 import math
 from typing import Callable, NamedTuple, Sequence
 
-import numpy as np
-
-from lenslane.plugins.optics.power import PowerMatrix
+from lenslane.plugins.optics.power import PowerMatrix, principal_powers
 from lenslane.plugins.optics.raytrace import (
-    RayMissedSurface, intersect_sphere, intersect_torus, refract, sphere_normal, torus_normal,
+    RayMissedSurface, Vector, dot, intersect_sphere, intersect_torus, point_at, refract, reverse, sphere_normal,
+    torus_curvature, torus_normal,
 )
-from lenslane.plugins.optics.surfaces import back_surface_power, surface_curvature_per_mm
-from lenslane.plugins.optics.tilt import compensate_tilt
+from lenslane.plugins.optics.surfaces import back_surface_power, back_vertex_power, surface_curvature_per_mm
 
 #: From the back vertex to the eye's centre of rotation, mm (about 27 mm; from memory).
 ROTATION_DISTANCE_MM = 27.0
@@ -52,56 +54,55 @@ ROTATION_DISTANCE_MM = 27.0
 GAZE_ANGLES_DEG = (20.0, 30.0)
 #: The four main gaze directions, as (x, y) for the right eye (x of "nasal" and "temporal" mirror for the left).
 GAZE_DIRECTIONS = {"up": (0.0, 1.0), "down": (0.0, -1.0), "nasal": (1.0, 0.0), "temporal": (-1.0, 0.0)}
-#: Offset between neighbouring rays, mm (the stencil reaches twice this).
-PENCIL_STEP_MM = 0.01
 #: The exact compensation stops when the as-worn power is this close to the wanted one (D, every element).
 RESIDUAL_TOLERANCE_D = 1e-9
-_MAX_NEWTON_STEPS = 12
-_JACOBIAN_STEP_D = 1e-3
-_THICKNESS_STEP_MM = 1e-3
-#: Five-point central difference: offsets (in steps) and weights (divided by 12 × step).
-_STENCIL = np.array([-2.0, -1.0, 1.0, 2.0])
-_WEIGHTS = np.array([1.0, -8.0, 8.0, -1.0]) / 12.0
-_BASIS = np.array([[1.0, 0.0, 0.0], [0.0, 1.0, 0.0]])
+_MAX_ROUNDS = 12
+
+Matrix = tuple[tuple[float, float], tuple[float, float]]
+Basis = tuple[Vector, Vector]
+
+_ORIGIN = (0.0, 0.0, 0.0)
+_SIGHT = (0.0, 0.0, 1.0)
+_EYE_BASIS = ((1.0, 0.0, 0.0), (0.0, 1.0, 0.0))
 
 
-class WornLenses(NamedTuple):
-    """Lenses as worn, as arrays of shape (L,) (``rotation`` (L, 3, 3): lens frame → eye frame).
+class WornLens(NamedTuple):
+    """A lens as worn. Curvatures in 1/mm, signed as in :mod:`lenslane.plugins.optics.surfaces`.
 
-    Curvatures in 1/mm, signed as in :mod:`lenslane.plugins.optics.surfaces`;
-    the back is a torus whose profile lies in the meridian ``along`` (unit
-    vectors (L, 2) in the lens's own frame) with curvature ``back_profile`` and
-    ``back_sweep`` across it.
+    The back is a torus whose profile lies in the meridian ``along`` (a unit
+    vector in the lens's own frame) with curvature ``back_profile``, and
+    ``back_sweep`` across it. ``axes`` are the lens's own x, y and z axes in
+    the eye's frame (z its axis, toward the eye).
     """
 
-    front: np.ndarray
-    back_profile: np.ndarray
-    back_sweep: np.ndarray
-    along: np.ndarray
-    thickness_mm: np.ndarray
-    index: np.ndarray
-    rotation: np.ndarray
+    front: float
+    back_profile: float
+    back_sweep: float
+    along: tuple[float, float]
+    thickness_mm: float
+    index: float
+    axes: tuple[Vector, Vector, Vector]
 
-    def take(self, which) -> "WornLenses":
-        """The lenses at the given positions (e.g. each repeated once per pencil)."""
-        return WornLenses(*(field[which] for field in self))
+    def to_lens(self, vector: Vector) -> Vector:
+        """A vector of the eye's frame in the lens's own frame."""
+        return dot(self.axes[0], vector), dot(self.axes[1], vector), dot(self.axes[2], vector)
 
 
-def no_roll_rotation(directions) -> np.ndarray:
-    """The rotations that turn +z onto each direction about an axis perpendicular to z.
+def no_roll_axes(direction: Vector) -> tuple[Vector, Vector, Vector]:
+    """The rotation that turns +z onto a direction about an axis perpendicular to z: the images of x, y and z.
 
     Parameters
     ----------
-    directions : array, shape (N, 3)
-        Unit vectors (with a positive z component).
+    direction : Vector
+        A unit vector with a positive z component.
 
     Returns
     -------
-    ndarray, shape (N, 3, 3)
-        ``R = I + K + K² / (1 + v_z)``, K the cross-product matrix of
-        ``e_z × v``; no roll about z. The lens's tilt (one rotation about an
-        axis in its frontal plane) and the eye's turn by Listing's law are
-        both of this kind.
+    (Vector, Vector, Vector)
+        The columns of ``R = I + K + K² / (1 + v_z)``, K the cross-product
+        matrix of ``e_z × v``; no roll about z. The lens's tilt (one rotation
+        about an axis in its frontal plane) and the eye's turn by Listing's law
+        are both of this kind.
 
     References
     ----------
@@ -110,236 +111,266 @@ def no_roll_rotation(directions) -> np.ndarray:
 
     Examples
     --------
-    >>> r = no_roll_rotation(np.array([[0.0, math.sin(0.1), math.cos(0.1)]]))
-    >>> [round(float(v), 12) for v in r[0] @ np.array([0.0, 0.0, 1.0])] == [0.0, round(math.sin(0.1), 12),
-    ...                                                                      round(math.cos(0.1), 12)]
-    True
+    >>> no_roll_axes((0.0, 0.6, 0.8))[2]
+    (0.0, 0.6, 0.8)
     """
-    v = np.asarray(directions, dtype=float).reshape(-1, 3)
-    k = np.zeros((v.shape[0], 3, 3))
-    # e_z × v = (−v_y, v_x, 0)
-    kx, ky = -v[:, 1], v[:, 0]
-    k[:, 0, 2], k[:, 2, 0] = ky, -ky
-    k[:, 1, 2], k[:, 2, 1] = -kx, kx
-    return np.eye(3) + k + (k @ k) / (1.0 + v[:, 2])[:, None, None]
+    vx, vy, vz = direction
+    k = 1.0 / (1.0 + vz)
+    return ((1.0 - vx * vx * k, -vx * vy * k, -vx),
+            (-vx * vy * k, 1.0 - vy * vy * k, -vy),
+            (vx, vy, vz))
 
 
-def lens_direction(theta, tangential) -> np.ndarray:
+def lens_direction(theta: float, tangential: tuple[float, float]) -> Vector:
     """The lens's axis (toward the eye) when it is worn with obliquity θ toward the tangential direction t.
 
-    Returns ``(sin θ · t, cos θ)``, shape (N, 3): the lens normal leans toward t
-    (up for pantoscopic tilt, nasally for face form), as in
+    Returns ``(sin θ · t, cos θ)``: the lens normal leans toward t (up for
+    pantoscopic tilt, nasally for face form), as in
     :func:`lenslane.plugins.optics.tilt.tilt_obliquity`.
     """
-    theta = np.atleast_1d(np.asarray(theta, dtype=float))
-    t = np.asarray(tangential, dtype=float).reshape(-1, 2)
-    t = t / np.linalg.norm(t, axis=1)[:, None]
-    return np.column_stack([np.sin(theta) * t[:, 0], np.sin(theta) * t[:, 1], np.cos(theta)])
+    tx, ty = tangential
+    length = math.hypot(tx, ty)
+    sine = math.sin(theta)
+    return sine * tx / length, sine * ty / length, math.cos(theta)
 
 
-def worn_lenses(front_d, surfacing, thickness_mm, index, theta, tangential) -> WornLenses:
-    """Lenses as worn, from what a lab publishes: front curve, surfacing power, centre thickness, index, tilt.
+def worn_lens(front_d: float, surfacing, thickness_mm: float, index: float, theta: float,
+              tangential: tuple[float, float]) -> WornLens:
+    """A lens as worn, from what a lab publishes: front curve, surfacing power, centre thickness, index, tilt.
 
     Parameters
     ----------
-    front_d : array, shape (L,)
+    front_d : float
         True front surface power, D.
-    surfacing : array, shape (L, 3)
-        The back vertex power to produce as power-matrix elements (xx, xy, yy), D.
-    thickness_mm, index, theta : array, shape (L,)
+    surfacing : PowerMatrix or (xx, xy, yy)
+        The back vertex power to produce, D.
+    thickness_mm, index, theta : float
         Centre thickness (mm), refractive index, obliquity (radians).
-    tangential : array, shape (L, 2)
+    tangential : (float, float)
         The tangential direction of the tilt.
 
     Returns
     -------
-    WornLenses
+    WornLens
 
     Notes
     -----
     The back surface is the one the lab makes for that surfacing power behind
     that front at that thickness, as
-    :func:`~lenslane.plugins.optics.surfaces.toric_back_surface` makes it, for
-    many lenses at once: per principal meridian of the surfacing power (its
-    eigenvectors) ``F₂ = Fv − F₁ / (1 − (t/n) F₁)``
-    (:func:`~lenslane.plugins.optics.surfaces.back_surface_power`), the profile
-    in the meridian of the larger power.
+    :func:`~lenslane.plugins.optics.surfaces.toric_back_surface` makes it: per
+    principal meridian ``F₂ = Fv − F₁ / (1 − (t/n) F₁)``, the profile in the
+    meridian of the larger power.
 
     References
     ----------
     Jalie, *The Principles of Ophthalmic Lenses* (back vertex power per
     principal meridian).
     """
-    surfacing = np.asarray(surfacing, dtype=float).reshape(-1, 3)
-    count = surfacing.shape[0]
-    thickness = np.broadcast_to(np.asarray(thickness_mm, dtype=float), (count,)).copy()
-    index = np.broadcast_to(np.asarray(index, dtype=float), (count,)).copy()
-    front_d = np.broadcast_to(np.asarray(front_d, dtype=float).reshape(-1), (count,))
-    # Principal meridians of the surfacing power (eigenvalues ascending), then the back per meridian.
-    powers, vectors = np.linalg.eigh(surfacing[:, [0, 1, 1, 2]].reshape(count, 2, 2))
-    profile = surface_curvature_per_mm(back_surface_power(front_d, powers[:, 1], thickness, index), index, "back")
-    sweep = surface_curvature_per_mm(back_surface_power(front_d, powers[:, 0], thickness, index), index, "back")
-    front = surface_curvature_per_mm(front_d, index, "front")
-    along = np.ascontiguousarray(vectors[:, :, 1])
-    tangential = np.broadcast_to(np.asarray(tangential, dtype=float).reshape(-1, 2), (count, 2))
-    rotation = no_roll_rotation(lens_direction(np.broadcast_to(theta, (count,)), tangential))
-    return WornLenses(front, profile, sweep, along, thickness, index, rotation)
+    front_d, thickness_mm, index = float(front_d), float(thickness_mm), float(index)
+    larger, smaller, direction = principal_powers(PowerMatrix(*(float(v) for v in surfacing)))
+    angle = math.radians(direction)
+    return WornLens(
+        surface_curvature_per_mm(front_d, index, "front"),
+        surface_curvature_per_mm(back_surface_power(front_d, larger, thickness_mm, index), index, "back"),
+        surface_curvature_per_mm(back_surface_power(front_d, smaller, thickness_mm, index), index, "back"),
+        (math.cos(angle), math.sin(angle)), thickness_mm, index,
+        no_roll_axes(lens_direction(float(theta), (float(tangential[0]), float(tangential[1])))),
+    )
 
 
-def _through_lens(lenses: WornLenses, points: np.ndarray, directions: np.ndarray, backward: bool):
-    """Rays through the lens in its own frame (back vertex at the origin); forward from the front, or back from the eye."""
-    shift = np.zeros_like(points)
-    shift[:, 2] = lenses.thickness_mm
-    if backward:
-        s = intersect_torus(points, directions, lenses.back_profile, lenses.back_sweep, lenses.along)
-        points = points + s[:, None] * directions
-        normal = torus_normal(points, lenses.back_profile, lenses.back_sweep, lenses.along)
-        directions = refract(directions, normal, 1.0, lenses.index)
-        points = points + shift                       # into the front surface's frame
-        s = intersect_sphere(points, directions, lenses.front)
-        points = points + s[:, None] * directions
-        directions = refract(directions, sphere_normal(points, lenses.front), lenses.index, 1.0)
-        return points - shift, directions
-    points = points + shift
-    s = intersect_sphere(points, directions, lenses.front)
-    points = points + s[:, None] * directions
-    directions = refract(directions, sphere_normal(points, lenses.front), 1.0, lenses.index)
-    points = points - shift                           # into the back surface's frame
-    s = intersect_torus(points, directions, lenses.back_profile, lenses.back_sweep, lenses.along)
-    points = points + s[:, None] * directions
-    normal = torus_normal(points, lenses.back_profile, lenses.back_sweep, lenses.along)
-    return points, refract(directions, normal, lenses.index, 1.0)
+class ChiefRay(NamedTuple):
+    """A ray traced back from the eye's side through a lens, in the lens's own frame (back vertex at the origin).
+
+    ``back`` where it meets the back surface, ``back_normal`` the surface's
+    normal there, and ``beyond`` how far the ray then runs to the point it was
+    traced from (mm); ``glass`` its direction inside the lens and ``path`` its
+    length there (mm); ``front`` where it meets the front surface and
+    ``front_normal`` that surface's normal; ``incoming`` its direction before
+    the lens and ``emerging`` after it. Directions and normals are unit
+    vectors toward the eye.
+    """
+
+    back: Vector
+    back_normal: Vector
+    beyond: float
+    glass: Vector
+    path: float
+    front: Vector
+    front_normal: Vector
+    incoming: Vector
+    emerging: Vector
 
 
-def pencil_vergence(lenses: WornLenses, reference, chief, frame, step_mm: float = PENCIL_STEP_MM) -> np.ndarray:
+def trace_chief_ray(lens: WornLens, point: Vector, direction: Vector) -> ChiefRay:
+    """The ray that leaves the lens through a given point along a given direction, traced back through it.
+
+    Parameters
+    ----------
+    lens : WornLens
+    point, direction : Vector
+        A point of the emerging ray and its unit direction toward the eye, in
+        the lens's own frame.
+
+    Returns
+    -------
+    ChiefRay
+
+    Raises
+    ------
+    RayMissedSurface
+        The ray misses a surface or is totally reflected.
+
+    References
+    ----------
+    Spencer & Murty (1962), JOSA 52:672: intersections and vector Snell's law,
+    here used backward (a ray's path is reversible).
+    """
+    beyond = intersect_torus(point, reverse(direction), lens.back_profile, lens.back_sweep, lens.along)
+    back = point_at(point, -beyond, direction)
+    back_normal = torus_normal(back, lens.back_profile, lens.back_sweep, lens.along)
+    glass = reverse(refract(reverse(direction), back_normal, 1.0, lens.index))
+    path = intersect_sphere(_in_front_frame(lens, back), reverse(glass), lens.front)
+    front = point_at(back, -path, glass)
+    front_normal = sphere_normal(_in_front_frame(lens, front), lens.front)
+    incoming = reverse(refract(reverse(glass), front_normal, lens.index, 1.0))
+    return ChiefRay(back, back_normal, beyond, glass, path, front, front_normal, incoming, direction)
+
+
+def _in_front_frame(lens: WornLens, point: Vector) -> Vector:
+    """A point of the lens's frame (back vertex at the origin) in the front surface's frame (front vertex there)."""
+    return point[0], point[1], point[2] + lens.thickness_mm
+
+
+# --------------------------------------------------------------------------
+# The generalised Coddington equations
+# --------------------------------------------------------------------------
+
+
+def _across(direction: Vector) -> Basis:
+    """Two orthonormal vectors across a unit vector, the first in the plane of x and it."""
+    nx, ny, nz = direction
+    # e_x less its part along the vector, normalised; the second is the vector × the first.
+    length = math.sqrt(1.0 - nx * nx)
+    return (length, -nx * ny / length, -nx * nz / length), (0.0, nz / length, -ny / length)
+
+
+def _seen(basis: Basis, tangent: Basis) -> Matrix:
+    """``M = Bᵀ T``: how a basis B across a ray sees a surface's tangent basis T."""
+    return ((dot(basis[0], tangent[0]), dot(basis[0], tangent[1])),
+            (dot(basis[1], tangent[0]), dot(basis[1], tangent[1])))
+
+
+def _product(a: Matrix, b: Matrix) -> Matrix:
+    return ((a[0][0] * b[0][0] + a[0][1] * b[1][0], a[0][0] * b[0][1] + a[0][1] * b[1][1]),
+            (a[1][0] * b[0][0] + a[1][1] * b[1][0], a[1][0] * b[0][1] + a[1][1] * b[1][1]))
+
+
+def _transposed(a: Matrix) -> Matrix:
+    return (a[0][0], a[1][0]), (a[0][1], a[1][1])
+
+
+def _inverse(a: Matrix) -> Matrix:
+    determinant = a[0][0] * a[1][1] - a[0][1] * a[1][0]
+    return ((a[1][1] / determinant, -a[0][1] / determinant), (-a[1][0] / determinant, a[0][0] / determinant))
+
+
+def _sum(a: Matrix, b: Matrix, scale: float = 1.0) -> Matrix:
+    """``a + scale · b``."""
+    return ((a[0][0] + scale * b[0][0], a[0][1] + scale * b[0][1]),
+            (a[1][0] + scale * b[1][0], a[1][1] + scale * b[1][1]))
+
+
+def _phase(vergence: Matrix, basis: Basis, tangent: Basis) -> Matrix:
+    """A pencil's vergence matrix in a basis across its ray, as its second-order phase on a surface's tangent
+    plane: ``Mᵀ V M`` with ``M = Bᵀ T``."""
+    m = _seen(basis, tangent)
+    return _product(_transposed(m), _product(vergence, m))
+
+
+def _vergence(phase: Matrix, basis: Basis, tangent: Basis) -> Matrix:
+    """The inverse of :func:`_phase`: the vergence matrix ``M⁻ᵀ Q M⁻¹`` across a ray of a phase on a surface."""
+    inverse = _inverse(_seen(basis, tangent))
+    return _product(_transposed(inverse), _product(phase, inverse))
+
+
+def _transfer(vergence: Matrix, reduced_mm: float) -> Matrix:
+    """A pencil carried along its ray by a reduced distance (mm divided by the index): ``V (I − d V)⁻¹``."""
+    (a, b), (c, d) = vergence
+    return _product(vergence, _inverse(((1.0 - reduced_mm * a, -reduced_mm * b),
+                                        (-reduced_mm * c, 1.0 - reduced_mm * d))))
+
+
+class _AtTheBack(NamedTuple):
+    """The pencil about a chief ray as it reaches the back surface: its phase on the tangent plane (1/mm), the
+    refraction's ``n′ cos I′ − n cos I``, and the tangent basis there."""
+
+    phase: Matrix
+    gamma: float
+    tangent: Basis
+
+
+def _to_the_back(lens: WornLens, ray: ChiefRay) -> _AtTheBack:
+    """The pencil from a distant object about a traced chief ray, refracted by the front and carried to the back.
+
+    The generalised Coddington equation refracts a pencil at a surface of
+    curvature matrix C: ``M′ᵀ V′ M′ = Mᵀ V M + (n′ cos I′ − n cos I) C``, V and
+    V′ the reduced vergence matrices (index × curvature) across the incident
+    and refracted rays, M and M′ those bases against the surface's tangent
+    basis (:func:`_phase`). At the front a plane wave (V = 0) meets a sphere
+    (C = c I in any tangent basis); through the glass the pencil is carried
+    along the chief ray by :func:`_transfer`. What the back surface adds (its
+    γ C) is left to the caller.
+    """
+    index, normal = lens.index, ray.front_normal
+    glass = _across(ray.glass)
+    power = (index * dot(ray.glass, normal) - dot(ray.incoming, normal)) * lens.front
+    vergence = _transfer(_vergence(((power, 0.0), (0.0, power)), glass, _across(normal)), ray.path / index)
+    normal = ray.back_normal
+    tangent = _across(normal)
+    gamma = dot(ray.emerging, normal) - index * dot(ray.glass, normal)
+    return _AtTheBack(_phase(vergence, glass, tangent), gamma, tangent)
+
+
+def _power_matrix(matrix: Matrix) -> PowerMatrix:
+    """A vergence matrix in 1/mm as a power matrix in D (its symmetric part: the rest is rounding)."""
+    return PowerMatrix(1000.0 * matrix[0][0], 500.0 * (matrix[0][1] + matrix[1][0]) + 0.0, 1000.0 * matrix[1][1])
+
+
+def pencil_vergence(lens: WornLens, reference: Vector, chief: Vector, frame: Basis) -> PowerMatrix:
     """The vergence matrix of the pencil from a distant object about a given emerging chief ray.
 
     Parameters
     ----------
-    lenses : WornLenses
-        One lens per pencil (shape (P,)).
-    reference : array, shape (P, 3)
-        A point of each emerging chief ray, in the eye's frame (mm): where the
+    lens : WornLens
+    reference : Vector
+        A point of the emerging chief ray, in the eye's frame (mm): where the
         vergence is measured.
-    chief : array, shape (P, 3)
-        Unit direction of each emerging chief ray (toward the eye).
-    frame : array, shape (P, 2, 3)
+    chief : Vector
+        Unit direction of the emerging chief ray (toward the eye).
+    frame : (Vector, Vector)
         Two orthonormal vectors across the chief ray: the matrix's x and y.
 
     Returns
     -------
-    ndarray, shape (P, 2, 2)
-        The symmetric vergence matrix, D, positive for a converging pencil.
+    PowerMatrix
+        The vergence matrix, D, positive for a converging pencil.
+
+    Raises
+    ------
+    RayMissedSurface
+        The chief ray cannot be traced through the lens.
 
     Notes
     -----
-    The chief ray is traced backward from the reference point through the
-    lens, which gives the direction of the incoming light; rays parallel to it
-    at offsets ``±step, ±2 step`` in two directions are traced forward and met
-    with the plane normal to the chief ray at the reference point, and the
-    derivatives of their direction tangents u and positions y by the offsets
-    come from the five-point central difference (error of order step⁴). The
-    matrix is ``V = −1000 (∂u/∂q)(∂y/∂q)⁻¹``, symmetrised (it is symmetric for
-    a pencil from a point; the antisymmetric part left by rounding is below
-    1e-10 D).
-
-    References
-    ----------
-    Spencer & Murty (1962), JOSA 52:672 (the trace); Kneisly (1964), JOSA
-    54:229 (wavefront curvature about a chief ray); the five-point stencil as
-    in any numerical-analysis text.
-    """
-    count = lenses.front.shape[0]
-    to_lens = np.transpose(lenses.rotation, (0, 2, 1))   # eye frame → lens frame
-    reference = np.einsum("pij,pj->pi", to_lens, np.asarray(reference, dtype=float).reshape(count, 3))
-    chief = np.einsum("pij,pj->pi", to_lens, np.asarray(chief, dtype=float).reshape(count, 3))
-    frame = np.einsum("pij,pkj->pki", to_lens, np.asarray(frame, dtype=float).reshape(count, 2, 3))
-    entry, incoming = _through_lens(lenses, reference, -chief, backward=True)
-    incoming = -incoming
-    # Two directions across the incoming light, for the offsets.
-    first = np.broadcast_to(_BASIS[0], (count, 3)) - incoming[:, :1] * incoming
-    first /= np.linalg.norm(first, axis=1)[:, None]
-    second = np.cross(incoming, first)
-    offsets = step_mm * _STENCIL                       # (4,)
-    across = np.stack([first, second], axis=1)         # (P, 2, 3)
-    start = entry - 5.0 * incoming                     # a point on the chief ray before the lens
-    # Rays: pencil p, direction j, offset k → start + offset · across_j.
-    points = start[:, None, None, :] + offsets[None, None, :, None] * across[:, :, None, :]
-    rays = points.reshape(-1, 3)
-    repeat = np.repeat(np.arange(count), 8)
-    out_points, out_directions = _through_lens(lenses.take(repeat), rays,
-                                               np.repeat(incoming, 8, axis=0), backward=False)
-    ref = np.repeat(reference, 8, axis=0)
-    axis = np.repeat(chief, 8, axis=0)
-    along = np.einsum("ri,ri->r", ref - out_points, axis) / np.einsum("ri,ri->r", out_directions, axis)
-    landed = out_points + along[:, None] * out_directions - ref
-    frames = np.repeat(frame, 8, axis=0)
-    position = np.einsum("rki,ri->rk", frames, landed).reshape(count, 2, 4, 2)
-    tangent = (np.einsum("rki,ri->rk", frames, out_directions)
-               / np.einsum("ri,ri->r", out_directions, axis)[:, None]).reshape(count, 2, 4, 2)
-    # d/dq_j: weights over the offsets; result [p, j, k] = ∂(component k)/∂q_j.
-    d_position = np.einsum("o,pjok->pkj", _WEIGHTS, position) / step_mm
-    d_tangent = np.einsum("o,pjok->pkj", _WEIGHTS, tangent) / step_mm
-    vergence = -1000.0 * d_tangent @ np.linalg.inv(d_position)
-    return 0.5 * (vergence + np.transpose(vergence, (0, 2, 1)))
-
-
-def asworn_vergence(lenses: WornLenses) -> np.ndarray:
-    """The as-worn vergence matrix on the line of sight, at the plane through the back vertex normal to it.
-
-    Parameters
-    ----------
-    lenses : WornLenses
-        Shape (L,).
-
-    Returns
-    -------
-    ndarray, shape (L, 2, 2)
-        D, in the x (right) / y (up) frame: what a lens "is" for the eye
-        looking straight ahead. Untilted, it is the lens's back vertex power.
-
-    Notes
-    -----
-    The chief ray leaves the lens at its back vertex along the line of sight
-    (the optical centre at the fitting point). Carry the result to another
-    plane with ``L′ = L (I − d L)⁻¹``
-    (:func:`lenslane.plugins.optics.vertex.vertex_move`).
-
-    References
-    ----------
-    Spencer & Murty (1962); Kneisly (1964) — see :func:`pencil_vergence`.
-    """
-    count = lenses.front.shape[0]
-    reference = np.zeros((count, 3))
-    chief = np.broadcast_to(np.array([0.0, 0.0, 1.0]), (count, 3))
-    frame = np.broadcast_to(_BASIS, (count, 2, 3))
-    return pencil_vergence(lenses, reference, chief, frame)
-
-
-def coddington_vergence(lenses: WornLenses) -> np.ndarray:
-    """The as-worn vergence matrix on the line of sight by the generalised Coddington equations (no neighbours).
-
-    Takes and returns what :func:`asworn_vergence` does: lenses (L,) → the
-    vergence matrices (L, 2, 2) in D at the back-vertex plane, x right, y up.
-
-    Notes
-    -----
-    The chief ray is traced exactly (backward from the back vertex along the
-    line of sight: refraction at the back vertex, intersection with the front
-    sphere, refraction). Along it the wavefront's vergence matrix is carried
-    analytically: the plane wave from a distant object is refracted at each
-    surface by matching the eikonal on the surface to second order,
-
-        M′ᵀ V′ M′ = Mᵀ V M + (n′ cos I′ − n cos I) C,
-
-    with V, V′ the reduced vergence matrices (index × curvature) in bases
-    across the incident and refracted rays, M, M′ the matrices of those bases
-    against the surface's tangent basis, and C the surface's curvature matrix
-    (c I for the front sphere; the toric back's principal curvatures at its
-    vertex), and transferred through the glass by ``V (I − (s/n) V)⁻¹`` over
-    the chief ray's path s. Exact for the pencil about the chief ray, like
-    the neighbouring rays of :func:`asworn_vergence` (they agree to 1e-9 D),
-    at a fraction of the cost: it is the one the Newton solve uses.
+    One exactly traced ray: the chief ray, traced back from the reference
+    point through the lens (:func:`trace_chief_ray`). Along it the vergence
+    of the infinitesimal pencil about it is carried by the generalised
+    Coddington equations (:func:`_to_the_back`), with the back surface's
+    curvature matrix where the chief ray meets it
+    (:func:`~lenslane.plugins.optics.raytrace.torus_curvature`), then on to
+    the reference point. It is what exactly traced neighbouring rays give in
+    the limit of a small pencil; the tests compare it with rayoptics' real
+    rays.
 
     References
     ----------
@@ -348,67 +379,95 @@ def coddington_vergence(lenses: WornLenses) -> np.ndarray:
     O. N. (1972), *The Optics of Rays, Wavefronts, and Caustics*, Academic
     Press; the chief ray after Spencer & Murty (1962), JOSA 52:672.
     """
-    count = lenses.front.shape[0]
-    index = lenses.index
-    to_lens = np.transpose(lenses.rotation, (0, 2, 1))
-    sight = to_lens[:, :, 2]                                  # the line of sight in the lens frame
-    eye_basis = to_lens[:, :, :2]                             # the eye's x and y in the lens frame (P, 3, 2)
-    axis = np.broadcast_to(np.array([0.0, 0.0, 1.0]), (count, 3))
-    # The chief ray, backward: it leaves the back vertex along the line of sight.
-    inside = -refract(-sight, axis, 1.0, index)               # its direction in the glass
-    shift = np.zeros((count, 3))
-    shift[:, 2] = lenses.thickness_mm
-    path = intersect_sphere(shift, -inside, lenses.front)     # front frame: back vertex at +t on the axis
-    entry = shift - path[:, None] * inside
-    normal = sphere_normal(entry, lenses.front)               # +z-ish, along the ray, so C = c I
-    incoming = -refract(-inside, normal, index, 1.0)
-    # Front surface: a plane wave (V = 0) refracted into the glass.
-    tangent = _tangent_basis(normal)
-    across = _tangent_basis(inside)
-    m_glass = np.einsum("pki,pkj->pij", across, tangent)
-    cos_in = np.einsum("pi,pi->p", incoming, normal)
-    cos_glass = np.einsum("pi,pi->p", inside, normal)
-    power = (index * cos_glass - cos_in) * lenses.front       # γ c, C = c I
-    inverse = np.linalg.inv(m_glass)
-    vergence = power[:, None, None] * np.transpose(inverse, (0, 2, 1)) @ inverse
-    # Through the glass along the chief ray.
-    vergence = vergence @ np.linalg.inv(np.eye(2) - (path / index)[:, None, None] * vergence)
-    # Back surface at its vertex: tangent basis the lens's own x and y, normal +z.
-    local = np.broadcast_to(np.eye(3)[:, :2], (count, 3, 2))
-    m_before = np.einsum("pki,pkj->pij", across, local)
-    m_after = np.einsum("pki,pkj->pij", eye_basis, local)
-    cos_back = inside[:, 2]
-    cos_out = sight[:, 2]
-    a = lenses.along
-    rotation = np.stack([np.stack([a[:, 0], -a[:, 1]], axis=1), np.stack([a[:, 1], a[:, 0]], axis=1)], axis=1)
-    principal = np.zeros((count, 2, 2))
-    principal[:, 0, 0], principal[:, 1, 1] = lenses.back_profile, lenses.back_sweep
-    curvature = rotation @ principal @ np.transpose(rotation, (0, 2, 1))
-    inner = (np.transpose(m_before, (0, 2, 1)) @ vergence @ m_before
-             + (cos_out - index * cos_back)[:, None, None] * curvature)
-    inverse = np.linalg.inv(m_after)
-    result = 1000.0 * np.transpose(inverse, (0, 2, 1)) @ inner @ inverse
-    return 0.5 * (result + np.transpose(result, (0, 2, 1)))
+    ray = trace_chief_ray(lens, lens.to_lens(reference), lens.to_lens(chief))
+    back = _to_the_back(lens, ray)
+    curvature = torus_curvature(ray.back, back.tangent, lens.back_profile, lens.back_sweep, lens.along)
+    emerging = _vergence(_sum(back.phase, curvature, back.gamma),
+                         (lens.to_lens(frame[0]), lens.to_lens(frame[1])), back.tangent)
+    return _power_matrix(_transfer(emerging, ray.beyond))
 
 
-def _tangent_basis(normals: np.ndarray) -> np.ndarray:
-    """Two orthonormal vectors across each unit vector (P, 3) → (P, 3, 2), the first in the plane of x and it."""
-    nx, ny, nz = normals[:, 0], normals[:, 1], normals[:, 2]
-    # e_x less its part along n, normalised; the second is n × first.
-    length = np.sqrt(1.0 - nx * nx)
-    basis = np.empty((normals.shape[0], 3, 2))
-    basis[:, 0, 0], basis[:, 1, 0], basis[:, 2, 0] = length, -nx * ny / length, -nx * nz / length
-    basis[:, 0, 1], basis[:, 1, 1], basis[:, 2, 1] = 0.0, nz / length, -ny / length
-    return basis
+def asworn_power(lens: WornLens) -> PowerMatrix:
+    """The as-worn vergence matrix on the line of sight, at the plane through the back vertex normal to it.
+
+    Returns
+    -------
+    PowerMatrix
+        D, in the x (right) / y (up) frame: what the lens "is" for the eye
+        looking straight ahead. Untilted, it is the lens's back vertex power.
+
+    Notes
+    -----
+    The chief ray leaves the lens at its back vertex along the line of sight
+    (the optical centre at the fitting point); :func:`pencil_vergence` about
+    it. Carry the result to another plane with ``L′ = L (I − d L)⁻¹``
+    (:func:`lenslane.plugins.optics.vertex.vertex_move`).
+    """
+    return pencil_vergence(lens, _ORIGIN, _SIGHT, _EYE_BASIS)
 
 
-def power_elements(matrices: np.ndarray) -> np.ndarray:
-    """Symmetric 2×2 matrices (…, 2, 2) as their elements (…, 3): xx, xy, yy."""
-    return np.stack([matrices[..., 0, 0], matrices[..., 0, 1], matrices[..., 1, 1]], axis=-1)
+def surfacing_for(wanted, front_d: float, thickness_mm: float, index: float, theta: float,
+                  tangential: tuple[float, float]) -> PowerMatrix:
+    """The surfacing power whose lens, behind this front at this centre thickness, is worn as the wanted power.
+
+    Parameters
+    ----------
+    wanted : PowerMatrix or (xx, xy, yy)
+        The as-worn power wanted at the back-vertex plane, D.
+    front_d, thickness_mm, index, theta : float
+        Front curve (D), centre thickness (mm), refractive index, obliquity
+        (radians).
+    tangential : (float, float)
+        Tangential direction of the tilt.
+
+    Returns
+    -------
+    PowerMatrix
+        The surfacing power (the back vertex power to produce), D: exact, in
+        closed form.
+
+    Notes
+    -----
+    The chief ray leaves the lens at its back vertex along the line of sight,
+    and the back surface's normal there is the lens's axis whatever its
+    curvatures: so the chief ray, and the pencil that reaches the back
+    (:func:`_to_the_back`), do not depend on the back surface. The
+    generalised Coddington equation at the back is then linear in the back's
+    curvature matrix C (in the lens's own x and y at its vertex) and is
+    solved for it: ``C = (M′ᵀ V′ M′ − Mᵀ V M) / (cos I′ − n cos I)``. The back's
+    power matrix is ``1000 (1 − n) C`` (surface power F = (1 − n)/r), and the
+    surfacing power adds the front's vergence at the back vertex,
+    ``F₁ / (1 − (t/n) F₁)``: the back vertex power formula per meridian, by
+    which :func:`worn_lens` makes the back again.
+
+    References
+    ----------
+    Kneisly (1964), JOSA 54:229 (the generalised Coddington equation);
+    Jalie, *The Principles of Ophthalmic Lenses* (surface and back vertex power).
+
+    Examples
+    --------
+    Untilted, the surfacing power is the wanted power itself:
+
+    >>> [round(v, 12) + 0.0 for v in surfacing_for((-4.0, 0.5, -5.0), 4.0, 2.0, 1.6, 0.0, (0.0, 1.0))]
+    [-4.0, 0.5, -5.0]
+    """
+    # Any back will do for the trace (here the one for a plano surfacing power): the chief ray leaves at its vertex.
+    lens = worn_lens(front_d, (0.0, 0.0, 0.0), thickness_mm, index, theta, tangential)
+    back = _to_the_back(lens, trace_chief_ray(lens, _ORIGIN, lens.to_lens(_SIGHT)))
+    xx, xy, yy = (float(v) / 1000.0 for v in wanted)
+    target = _phase(((xx, xy), (xy, yy)), (lens.to_lens(_EYE_BASIS[0]), lens.to_lens(_EYE_BASIS[1])), back.tangent)
+    curvature = _sum(target, back.phase, -1.0)
+    scale = (1.0 - lens.index) / back.gamma
+    front_vergence = back_vertex_power(float(front_d), 0.0, lens.thickness_mm, lens.index) / 1000.0
+    return _power_matrix(((scale * curvature[0][0] + front_vergence, scale * curvature[0][1]),
+                          (scale * curvature[1][0], scale * curvature[1][1] + front_vergence)))
 
 
-def largest_meridional_error(error) -> np.ndarray:
-    """The largest meridional error ``|M| + √(J₀² + J₄₅²)`` of error matrices given as elements (…, 3), D.
+def largest_meridional_error(error) -> float:
+    """The largest meridional error ``|M| + √(J₀² + J₄₅²)`` of an error matrix (xx, xy, yy), D.
+
+    It is the larger principal error's size, the largest absolute eigenvalue.
 
     References
     ----------
@@ -416,137 +475,126 @@ def largest_meridional_error(error) -> np.ndarray:
 
     Examples
     --------
-    >>> float(largest_meridional_error(np.array([0.25, 0.0, -0.25])))
+    >>> largest_meridional_error((0.25, 0.0, -0.25))
     0.25
     """
-    error = np.asarray(error, dtype=float)
-    mean = 0.5 * (error[..., 0] + error[..., 2])
-    return np.abs(mean) + np.hypot(0.5 * (error[..., 0] - error[..., 2]), error[..., 1])
+    xx, xy, yy = (float(v) for v in error)
+    return abs(0.5 * (xx + yy)) + math.hypot(0.5 * (xx - yy), xy)
+
+
+def _difference(a, b) -> PowerMatrix:
+    return PowerMatrix(float(a[0]) - float(b[0]), float(a[1]) - float(b[1]), float(a[2]) - float(b[2]))
 
 
 class ExactCompensation(NamedTuple):
-    """The solved lenses: surfacing power elements (L, 3), centre thickness (L,), residual (L,), Newton steps."""
+    """The solved lens: surfacing power, centre thickness (mm), residual (D), rounds of the solution."""
 
-    surfacing: np.ndarray
-    center_mm: np.ndarray
-    residual_d: np.ndarray
-    steps: int
+    surfacing: PowerMatrix
+    center_mm: float
+    residual_d: float
+    rounds: int
 
 
-def exact_compensation(wanted, front_d, index, theta, tangential,
-                       thickness_of: Callable[[np.ndarray], np.ndarray],
+def exact_compensation(wanted, front_d: float, index: float, theta: float, tangential: tuple[float, float],
+                       thickness_of: Callable[[PowerMatrix], float], *, start_mm: float,
                        tolerance_d: float = RESIDUAL_TOLERANCE_D) -> ExactCompensation:
     """The surfacing power whose real-ray as-worn power equals the wanted power, with the thickness it implies.
 
     Parameters
     ----------
-    wanted : array, shape (L, 3)
-        The wanted as-worn power at the back-vertex plane (power-matrix elements
-        xx, xy, yy), D: the prescription carried to the fitting vertex distance.
-    front_d, index, theta : array, shape (L,)
+    wanted : PowerMatrix or (xx, xy, yy)
+        The wanted as-worn power at the back-vertex plane, D: the prescription
+        carried to the fitting vertex distance.
+    front_d, index, theta : float
         Front curve (D), refractive index, obliquity (radians).
-    tangential : array, shape (L, 2)
+    tangential : (float, float)
         Tangential direction of the tilt.
     thickness_of : callable
-        ``thickness_of(surfacing (K, 3)) -> centre thickness (K,) mm``: how the
-        lab derives the thickness from the surfacing power (the lens geometry
+        ``thickness_of(surfacing) -> centre thickness (mm)``: how the lab
+        derives the thickness from the surfacing power (the lens geometry
         model); a constant for a lens of fixed thickness.
+    start_mm : float
+        The first thickness tried (the lab's minimum centre thickness is the
+        thickness of every minus lens).
     tolerance_d : float
-        Stop when every element of ``wanted − as-worn`` is below this.
+        Stop when the residual is below this.
 
     Returns
     -------
     ExactCompensation
         The surfacing power, the centre thickness of that surfacing power, the
-        residual (largest absolute eigenvalue of ``wanted − as-worn`` for that
-        lens, D) and the number of Newton steps taken.
+        residual (the largest meridional error of ``wanted − as-worn`` for that
+        lens, D) and the rounds taken.
 
     Notes
     -----
-    Newton's method on the three elements of the surfacing power matrix (the
-    back surface's power matrix less the front's vergence at the back vertex,
-    a shift that does not change the steps), from Martin's compensation
-    (:func:`~lenslane.plugins.optics.tilt.compensate_tilt`). Each step
-    evaluates the lens and its three neighbours ``+10⁻³ D`` in each element
-    (:func:`coddington_vergence`, one batched call) at the thickness the
-    lens's surfacing power gives, and once more 10⁻³ mm thicker; solves the
-    3×3 system for the next surfacing power and re-derives the thickness for
-    it. The thickness's own gradient by the surfacing power, which would cost
-    three more thickness solutions per step, is estimated by Broyden's
-    rank-one update from the steps taken (it starts at zero), so the Jacobian
-    carries the coupling along the direction the solution moves: two or three
-    steps reach 1e-9 D.
+    At a given thickness t the surfacing power S(t) is exact in closed form
+    (:func:`surfacing_for`), and the lab gives that power its own thickness
+    T(S(t)): the solution is the thickness with ``T(S(t)) = t``. Each round
+    tries a thickness, makes the lens of S(t) at its own thickness, and
+    traces it afresh with its toric back (:func:`asworn_power`); it stops
+    when that lens is worn as the wanted power. The next thickness is the one
+    just found, and from the third round the secant method's root of
+    ``T(S(t)) − t`` through the last two tries. The thickness moves the
+    as-worn power by thousandths of a dioptre per millimetre and S(t) moves
+    T by far less than t itself, so one round suffices when the start is the
+    lens's thickness (a minus lens at the lab's minimum centre), and three
+    for a plus lens.
 
     References
     ----------
-    Newton's method as in any numerical-analysis text; Broyden, C. G. (1965),
-    "A class of methods for solving nonlinear simultaneous equations", Math.
-    Comp. 19:577 (the secant update); the optics as in
-    :func:`coddington_vergence`.
+    The optics as in :func:`pencil_vergence` (Kneisly 1964; Spencer & Murty
+    1962); fixed-point iteration and the secant method as in any
+    numerical-analysis text.
     """
-    wanted = np.asarray(wanted, dtype=float).reshape(-1, 3)
-    count = wanted.shape[0]
-    front_d = np.broadcast_to(np.asarray(front_d, dtype=float), (count,))
-    index = np.broadcast_to(np.asarray(index, dtype=float), (count,))
-    theta = np.broadcast_to(np.asarray(theta, dtype=float), (count,))
-    tangential = np.broadcast_to(np.asarray(tangential, dtype=float).reshape(-1, 2), (count, 2))
-    surfacing = np.array([compensate_tilt(PowerMatrix(*w), float(th), tuple(t), float(n))
-                          for w, th, t, n in zip(wanted, theta, tangential, index)])
-    # The lens, its three neighbours +10⁻³ D in each element, and one 10⁻³ mm thicker.
-    variants = np.concatenate([np.zeros((1, 3)), _JACOBIAN_STEP_D * np.eye(3), np.zeros((1, 3))])
-    thicker = np.array([0.0, 0.0, 0.0, 0.0, _THICKNESS_STEP_MM])
-    repeat = np.repeat(np.arange(count), 5)
-    thickness = np.asarray(thickness_of(surfacing), dtype=float).reshape(count)
-    slope = np.zeros((count, 3))            # the thickness's gradient by the surfacing power, mm/D (secant)
-    for step in range(_MAX_NEWTON_STEPS + 1):
-        trial = (surfacing[:, None, :] + variants[None, :, :]).reshape(-1, 3)
-        lenses = worn_lenses(front_d[repeat], trial, (thickness[:, None] + thicker).reshape(-1), index[repeat],
-                             theta[repeat], tangential[repeat])
-        worn = power_elements(coddington_vergence(lenses)).reshape(count, 5, 3)
-        residual = wanted - worn[:, 0]
-        if step == _MAX_NEWTON_STEPS or np.max(np.abs(residual)) < tolerance_d:
+    wanted = PowerMatrix(*(float(v) for v in wanted))
+    thickness, tried = float(start_mm), []
+    for rounds in range(1, _MAX_ROUNDS + 1):
+        surfacing = surfacing_for(wanted, front_d, thickness, index, theta, tangential)
+        own = thickness_of(surfacing)
+        residual = _difference(wanted, asworn_power(worn_lens(front_d, surfacing, own, index, theta, tangential)))
+        if largest_meridional_error(residual) < tolerance_d:
             break
-        jacobian = np.transpose(worn[:, 1:4] - worn[:, :1], (0, 2, 1)) / _JACOBIAN_STEP_D   # [l, out, in]
-        by_thickness = (worn[:, 4] - worn[:, 0]) / _THICKNESS_STEP_MM
-        jacobian = jacobian + by_thickness[:, :, None] * slope[:, None, :]
-        change = np.linalg.solve(jacobian, residual[..., None])[..., 0]
-        surfacing = surfacing + change
-        previous, thickness = thickness, np.asarray(thickness_of(surfacing), dtype=float).reshape(count)
-        # Broyden's update of the thickness's gradient along the step just taken.
-        slope = slope + ((thickness - previous - np.sum(slope * change, axis=1))
-                         / np.maximum(np.sum(change * change, axis=1), 1e-300))[:, None] * change
-    largest = np.abs(np.linalg.eigvalsh(np.stack([residual[:, [0, 1]], residual[:, [1, 2]]], axis=1))).max(axis=1)
-    return ExactCompensation(surfacing, thickness, largest, step)
+        tried.append((thickness, own - thickness))
+        thickness = own
+        if len(tried) > 1 and tried[-1][1] != tried[-2][1]:
+            (t_a, g_a), (t_b, g_b) = tried[-2:]
+            thickness = t_b - g_b * (t_b - t_a) / (g_b - g_a)
+    return ExactCompensation(surfacing, own, largest_meridional_error(residual), rounds)
+
+
+# --------------------------------------------------------------------------
+# Off axis: the eye turning behind the lens
+# --------------------------------------------------------------------------
 
 
 class GazeErrors(NamedTuple):
-    """Off-axis errors of lenses (L,) at gaze angles (A,) in the directions (D,) of :data:`GAZE_DIRECTIONS`.
+    """A lens's off-axis errors at gaze angles (A) in the directions (D) of :data:`GAZE_DIRECTIONS`.
 
     ``mean_d`` the mean power error M, ``cylinder_d`` the astigmatic error
-    2√(J₀² + J₄₅²), both (L, A, D) in dioptres; NaN where the pencil does not
-    get through the lens (beyond its edge, or totally reflected).
+    2√(J₀² + J₄₅²), both as rows per angle of values per direction, in
+    dioptres; NaN where the pencil does not get through the lens (beyond its
+    edge, or totally reflected).
     """
 
     angles_deg: tuple[float, ...]
     directions: tuple[str, ...]
-    mean_d: np.ndarray
-    cylinder_d: np.ndarray
+    mean_d: tuple[tuple[float, ...], ...]
+    cylinder_d: tuple[tuple[float, ...], ...]
 
 
-def gaze_errors(lenses: WornLenses, wanted, eyes: Sequence[str],
-                rotation_distance_mm: float = ROTATION_DISTANCE_MM,
+def gaze_errors(lens: WornLens, wanted, eye: str, rotation_distance_mm: float = ROTATION_DISTANCE_MM,
                 angles_deg: Sequence[float] = GAZE_ANGLES_DEG) -> GazeErrors:
-    """The mean power error and astigmatic error of each lens as the eye turns behind it.
+    """The mean power error and astigmatic error of a lens as the eye turns behind it.
 
     Parameters
     ----------
-    lenses : WornLenses
-        Shape (L,).
-    wanted : array, shape (L, 3)
-        The wanted power on the vertex sphere (power-matrix elements), D — the
-        prescription carried to the back-vertex distance.
-    eyes : sequence of {"right", "left"}
-        Per lens: nasal is toward +x for the right eye, −x for the left.
+    lens : WornLens
+    wanted : PowerMatrix or (xx, xy, yy)
+        The wanted power on the vertex sphere, D — the prescription carried to
+        the back-vertex distance.
+    eye : {"right", "left"}
+        Nasal is toward +x for the right eye, −x for the left.
     rotation_distance_mm : float
         From the back vertex to the eye's centre of rotation, mm.
     angles_deg : sequence of float
@@ -561,7 +609,7 @@ def gaze_errors(lenses: WornLenses, wanted, eyes: Sequence[str],
     For each gaze the chief ray runs through the centre of rotation C; its
     vergence is measured where it meets the vertex sphere (about C, through
     the back vertex), in the frame the eye carries when it turns by Listing's
-    law (:func:`no_roll_rotation`), and compared with the wanted power in that
+    law (:func:`no_roll_axes`), and compared with the wanted power in that
     frame: ``E = V − F``, ``M = (E₁₁ + E₂₂)/2``, astigmatic error
     ``2√(J₀² + J₄₅²)`` with ``J₀ = (E₁₁ − E₂₂)/2``, ``J₄₅ = E₁₂``.
 
@@ -571,47 +619,35 @@ def gaze_errors(lenses: WornLenses, wanted, eyes: Sequence[str],
     Atchison (1992), Applied Optics 31:3579 (off-axis errors of spectacle
     lenses; the centre of rotation and Listing's law, from memory).
     """
-    wanted = np.asarray(wanted, dtype=float).reshape(-1, 3)
-    count = wanted.shape[0]
-    names = tuple(GAZE_DIRECTIONS)
-    angles = np.radians(np.asarray(angles_deg, dtype=float))
-    sides = np.array([1.0 if eye == "right" else -1.0 for eye in eyes])
-    plane = np.array([GAZE_DIRECTIONS[name] for name in names])             # (D, 2)
-    # Gaze g (the ray toward the eye) for lens l, angle a, direction d: (−sin β · dir, cos β).
-    dx = -np.sin(angles)[None, :, None] * plane[None, None, :, 0] * sides[:, None, None]
-    dy = -np.sin(angles)[None, :, None] * plane[None, None, :, 1] * np.ones((count, 1, 1))
-    dz = np.cos(angles)[None, :, None] * np.ones((count, 1, len(names)))
-    chief = np.stack(np.broadcast_arrays(dx, dy, dz), axis=-1).reshape(-1, 3)
-    centre = np.array([0.0, 0.0, rotation_distance_mm])
-    reference = centre - rotation_distance_mm * chief
-    turn = no_roll_rotation(chief)
-    frame = np.transpose(turn[:, :, :2], (0, 2, 1))                           # columns e_x, e_y turned
-    per_lens = angles.size * len(names)
-    repeat = np.repeat(np.arange(count), per_lens)
-    try:
-        vergence = power_elements(pencil_vergence(lenses.take(repeat), reference, chief, frame))
-    except RayMissedSurface:
-        # Some pencil misses (a ray beyond the edge of a steep lens, or totally reflected): each on its own,
-        # NaN for those that do not get through.
-        vergence = np.full((repeat.size, 3), np.nan)
-        for p in range(repeat.size):
+    side = 1.0 if eye == "right" else -1.0
+    means, cylinders = [], []
+    for angle in angles_deg:
+        sine, cosine = math.sin(math.radians(angle)), math.cos(math.radians(angle))
+        mean_row, cylinder_row = [], []
+        for x, y in GAZE_DIRECTIONS.values():
+            # The chief ray toward the eye for a gaze (x, y) off the line of sight: (−sin β · direction, cos β).
+            chief = (-sine * x * side, -sine * y, cosine)
+            reference = point_at((0.0, 0.0, rotation_distance_mm), -rotation_distance_mm, chief)
+            turned = no_roll_axes(chief)
             try:
-                vergence[p] = power_elements(pencil_vergence(lenses.take(repeat[p:p + 1]), reference[p:p + 1],
-                                                             chief[p:p + 1], frame[p:p + 1]))[0]
+                error = _difference(pencil_vergence(lens, reference, chief, (turned[0], turned[1])), wanted)
             except RayMissedSurface:
-                pass
-    error = (vergence - wanted[repeat]).reshape(count, angles.size, len(names), 3)
-    mean = 0.5 * (error[..., 0] + error[..., 2])
-    cylinder = 2.0 * np.hypot(0.5 * (error[..., 0] - error[..., 2]), error[..., 1])
-    return GazeErrors(tuple(float(a) for a in angles_deg), names, mean, cylinder)
+                mean_row.append(math.nan)
+                cylinder_row.append(math.nan)
+                continue
+            mean_row.append(0.5 * (error.xx + error.yy))
+            cylinder_row.append(2.0 * math.hypot(0.5 * (error.xx - error.yy), error.xy))
+        means.append(tuple(mean_row))
+        cylinders.append(tuple(cylinder_row))
+    return GazeErrors(tuple(float(a) for a in angles_deg), tuple(GAZE_DIRECTIONS), tuple(means), tuple(cylinders))
 
 
-def form_score(errors: GazeErrors) -> np.ndarray:
-    """How far each lens's form is from perfect: the RMS over all gaze points of the largest meridional error.
+def form_score(errors: GazeErrors) -> float:
+    """How far a lens's form is from perfect: the RMS over all gaze points of the largest meridional error.
 
     Returns
     -------
-    ndarray, shape (L,)
+    float
         ``√(mean (|M| + cyl/2)²)`` over the angles and directions, D;
         infinite for a lens that some pencil does not get through.
 
@@ -621,9 +657,10 @@ def form_score(errors: GazeErrors) -> np.ndarray:
     least-squares merit over the field as in Atchison (1992), Applied Optics
     31:3579.
     """
-    largest = np.abs(errors.mean_d) + 0.5 * errors.cylinder_d
-    score = np.sqrt(np.mean(largest.reshape(largest.shape[0], -1) ** 2, axis=1))
-    return np.where(np.isnan(score), np.inf, score)
+    largest = [abs(m) + 0.5 * c for means, cylinders in zip(errors.mean_d, errors.cylinder_d)
+               for m, c in zip(means, cylinders)]
+    score = math.sqrt(sum(v * v for v in largest) / len(largest))
+    return math.inf if math.isnan(score) else score
 
 
 class BestForm(NamedTuple):
@@ -631,42 +668,42 @@ class BestForm(NamedTuple):
 
     base_d: float
     bases_d: tuple[float, ...]
-    center_mm: np.ndarray
-    errors: GazeErrors
-    score_d: np.ndarray
+    center_mm: tuple[float, ...]
+    errors: tuple[GazeErrors, ...]
+    score_d: tuple[float, ...]
 
 
-def _number(value) -> float | None:
+def _number(value: float) -> float | None:
     """A float for a record, None for NaN (a pencil that did not get through)."""
-    return None if np.isnan(value) else float(value)
+    return None if math.isnan(value) else float(value)
 
 
-def off_axis_record(errors: GazeErrors, row: int = 0) -> dict:
-    """One lens's off-axis errors as plain numbers for a record: per direction, per angle, M and the cylinder error.
+def off_axis_record(errors: GazeErrors) -> dict:
+    """A lens's off-axis errors as plain numbers for a record: per direction, per angle, M and the cylinder error.
 
     Examples
     --------
-    >>> zero = np.zeros((1, 2, 4))
+    >>> zero = ((0.0,) * 4,) * 2
     >>> off_axis_record(GazeErrors((20.0, 30.0), tuple(GAZE_DIRECTIONS), zero, zero))["up"]
     {'mean_d': [0.0, 0.0], 'cylinder_d': [0.0, 0.0]}
     """
     record: dict = {"gaze_angles_deg": list(errors.angles_deg)}
     for column, name in enumerate(errors.directions):
-        record[name] = {"mean_d": [_number(v) for v in errors.mean_d[row, :, column]],
-                        "cylinder_d": [_number(v) for v in errors.cylinder_d[row, :, column]]}
+        record[name] = {"mean_d": [_number(row[column]) for row in errors.mean_d],
+                        "cylinder_d": [_number(row[column]) for row in errors.cylinder_d]}
     return record
 
 
-def best_form(surfacing, index: float, theta: float, tangential, eye: str, bases_d: Sequence[float],
-              thickness_of: Callable[[float], float],
+def best_form(surfacing, index: float, theta: float, tangential: tuple[float, float], eye: str,
+              bases_d: Sequence[float], thickness_of: Callable[[float], float],
               rotation_distance_mm: float = ROTATION_DISTANCE_MM,
               angles_deg: Sequence[float] = GAZE_ANGLES_DEG) -> BestForm:
     """Among stocked bases, the front curve whose lens has the least off-axis error.
 
     Parameters
     ----------
-    surfacing : array, shape (3,)
-        The surfacing power (power-matrix elements), D.
+    surfacing : PowerMatrix or (xx, xy, yy)
+        The surfacing power, D.
     index, theta : float
         Refractive index; obliquity (radians).
     tangential : (float, float)
@@ -695,30 +732,23 @@ def best_form(surfacing, index: float, theta: float, tangential, eye: str, bases
     ValueError
         No candidate base gives a makeable lens.
 
-    Notes
-    -----
-    All candidates are traced together: one batched trace of
-    ``bases × angles × 4`` pencils.
-
     References
     ----------
     Atchison (1992), Applied Optics 31:3579 (best form by exact ray trace).
     """
     from lenslane.plugins.optics.thickness import LensNotMakeable
 
-    kept, centres = [], []
+    kept, centres, errors = [], [], []
     for base in sorted(bases_d):
         try:
-            centres.append(float(thickness_of(base)))
+            centre = float(thickness_of(base))
         except LensNotMakeable:
             continue
+        lens = worn_lens(base, surfacing, centre, index, theta, tangential)
         kept.append(float(base))
+        centres.append(centre)
+        errors.append(gaze_errors(lens, asworn_power(lens), eye, rotation_distance_mm, angles_deg))
     if not kept:
         raise ValueError("no stocked base gives a lens that can be made")
-    count = len(kept)
-    lenses = worn_lenses(np.array(kept), np.broadcast_to(np.asarray(surfacing, dtype=float), (count, 3)),
-                         np.array(centres), index, theta, np.asarray(tangential, dtype=float))
-    errors = gaze_errors(lenses, power_elements(asworn_vergence(lenses)), [eye] * count, rotation_distance_mm,
-                         angles_deg)
-    score = form_score(errors)
-    return BestForm(kept[int(np.argmin(score))], tuple(kept), np.array(centres), errors, score)
+    scores = tuple(form_score(e) for e in errors)
+    return BestForm(kept[scores.index(min(scores))], tuple(kept), tuple(centres), tuple(errors), scores)

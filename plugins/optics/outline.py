@@ -7,7 +7,6 @@ mirror image. Boxing terms (A, B, DBL, ED) as in ISO 8624.
 from __future__ import annotations
 
 import math
-from functools import lru_cache
 from typing import NamedTuple, Sequence
 
 import numpy as np
@@ -21,12 +20,9 @@ class Extent(NamedTuple):
     effective_diameter_mm: float
 
 
-@lru_cache(maxsize=64)
 def unit_circle(count: int) -> tuple[np.ndarray, np.ndarray]:
-    """cos θ and sin θ of ``count`` equal angle steps from 0°, counter-clockwise (read-only arrays).
-
-    The directions of an outline of ``count`` radii; kept, since outlines come
-    with few distinct counts (36, 72, 100, 360...).
+    """cos θ and sin θ of ``count`` equal angle steps from 0°, counter-clockwise: the directions of an outline of
+    ``count`` radii.
 
     Examples
     --------
@@ -34,9 +30,7 @@ def unit_circle(count: int) -> tuple[np.ndarray, np.ndarray]:
     [[1.0, 0.0, -1.0, -0.0], [0.0, 1.0, 0.0, -1.0]]
     """
     angles = np.arange(count) * (2.0 * math.pi / count)
-    cosines, sines = np.cos(angles), np.sin(angles)
-    cosines.flags.writeable = sines.flags.writeable = False
-    return cosines, sines
+    return np.cos(angles), np.sin(angles)
 
 
 def outline_points(radii_mm: Sequence[float], eye: str = "right") -> np.ndarray:
@@ -93,9 +87,9 @@ _EXPONENT_RANGE = (2.0, 60.0)
 
 
 class ModelledOutline(NamedTuple):
-    """A modelled outline: the radii (mm) at equal steps from 0°, and the superellipse exponent used."""
+    """A modelled outline: the radii (mm, a read-only array) at equal steps from 0°, and the superellipse exponent used."""
 
-    radii_mm: tuple[float, ...]
+    radii_mm: np.ndarray
     exponent: float
 
 
@@ -188,7 +182,6 @@ def fitted_exponent(box_width_mm: float, box_height_mm: float, effective_diamete
     return 0.5 * (low + high)
 
 
-@lru_cache(maxsize=256)
 def modelled_outline(box_width_mm: float, box_height_mm: float,
                      effective_diameter_mm: float | None = None,
                      exponent_without_ed: float = DEFAULT_EXPONENT) -> ModelledOutline:
@@ -226,7 +219,7 @@ def modelled_outline(box_width_mm: float, box_height_mm: float,
     Examples
     --------
     >>> shape = modelled_outline(52.0, 38.0, 56.0)
-    >>> round(2 * max(shape.radii_mm), 2), round(outline_extent(shape.radii_mm).height_mm, 2)
+    >>> round(2 * float(shape.radii_mm.max()), 2), round(outline_extent(shape.radii_mm).height_mm, 2)
     (56.0, 38.0)
     """
     if effective_diameter_mm is None:
@@ -234,7 +227,8 @@ def modelled_outline(box_width_mm: float, box_height_mm: float,
     else:
         exponent = fitted_exponent(box_width_mm, box_height_mm, effective_diameter_mm)
     radii = superellipse_radii(box_width_mm / 2.0, box_height_mm / 2.0, exponent)
-    return ModelledOutline(tuple(float(r) for r in radii), exponent)
+    radii.flags.writeable = False
+    return ModelledOutline(radii, exponent)
 
 
 # --------------------------------------------------------------------------
@@ -394,13 +388,21 @@ def vertical_extent_at(radii_mm: Sequence[float], x_mm: float) -> tuple[float, f
     >>> [round(v, 6) for v in vertical_extent_at([20.0] * 360, 0.0)]
     [-20.0, 20.0]
     """
-    points = outline_points(radii_mm)
-    x, y = points[:, 0], points[:, 1]
-    x_next, y_next = np.roll(x, -1), np.roll(y, -1)
-    crosses = (x - x_mm) * (x_next - x_mm) <= 0.0
-    crosses &= x != x_next
-    if not crosses.any():
+    radii = np.asarray(radii_mm, dtype=float)
+    cosines, sines = unit_circle(radii.size)
+    x, y = radii * cosines, radii * sines  # the points of outline_points, by coordinate
+    # Each side of the polygon runs from a point to the next; the last closes it, back to the first.
+    offset = x - x_mm
+    crosses = offset[:-1] * offset[1:] <= 0.0
+    crosses &= x[:-1] != x[1:]
+    closing = offset[-1] * offset[0] <= 0.0 and x[-1] != x[0]
+    if not (closing or crosses.any()):
         return None
-    fraction = (x_mm - x[crosses]) / (x_next[crosses] - x[crosses])
-    heights = y[crosses] + fraction * (y_next[crosses] - y[crosses])
+    start = np.flatnonzero(crosses)
+    end = start + 1
+    if closing:
+        start, end = np.append(start, radii.size - 1), np.append(end, 0)
+    x_start, y_start = x[start], y[start]
+    fraction = (x_mm - x_start) / (x[end] - x_start)
+    heights = y_start + fraction * (y[end] - y_start)
     return float(heights.min()), float(heights.max())

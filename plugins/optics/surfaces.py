@@ -163,6 +163,9 @@ def sag_from_squared_mm(curvature_per_mm, semi_chord_squared_mm2):
     3.838
     """
     curvature_rho2 = curvature_per_mm * semi_chord_squared_mm2
+    if type(curvature_rho2) is float:  # plain numbers skip numpy's call overhead (the same IEEE square root)
+        under_root = 1.0 - curvature_per_mm * curvature_rho2
+        return curvature_rho2 / (1.0 + math.sqrt(under_root)) if under_root >= 0.0 else math.nan
     with np.errstate(invalid="ignore"):
         return curvature_rho2 / (1.0 + np.sqrt(1.0 - curvature_per_mm * curvature_rho2))
 

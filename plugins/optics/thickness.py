@@ -23,7 +23,6 @@ References
 from __future__ import annotations
 
 import math
-from functools import lru_cache
 from typing import NamedTuple, Sequence
 
 import numpy as np
@@ -287,7 +286,16 @@ def centre_minimum_applies(surfacing: PowerMatrix) -> bool:
     >>> centre_minimum_applies(power_matrix(2.0, -1.0, 90)), centre_minimum_applies(power_matrix(2.0, -3.0, 90))
     (False, True)
     """
-    return principal_powers(surfacing)[1] <= 0.0
+    return _minus_or_plano(principal_powers(surfacing)[1])
+
+
+#: A principal power this close to zero is plano (D): a meridian written 0.00 D, rebuilt from its sphere,
+#: cylinder and an axis in floating point, comes out within about 1e-15 D of zero on either side.
+PLANO_TOLERANCE_D = 1e-9
+
+
+def _minus_or_plano(smaller_principal_d: float) -> bool:
+    return smaller_principal_d <= PLANO_TOLERANCE_D
 
 
 class CentreThickness(NamedTuple):
@@ -341,7 +349,7 @@ class _Solved(NamedTuple):
 def _solve(profile: _Profile, edge_count: int, min_center_mm: float, min_edge_mm: float) -> _Solved:
     """The least centre thickness meeting the minimums; the profile's first ``edge_count`` points are the edge."""
     # The minimum centre applies to a lens with a minus or plano meridian (centre_minimum_applies).
-    centre_minimum = profile.back_vertex_b_d <= 0.0
+    centre_minimum = _minus_or_plano(profile.back_vertex_b_d)
     center = min_center_mm if centre_minimum else min_edge_mm
     relief = _relief_of(profile, center, strict=True)
     edge = relief[:edge_count]
@@ -444,7 +452,7 @@ def _volume_stride(count: int) -> int:
 
 
 class _Layout(NamedTuple):
-    """Where the points of an outline of ``count`` radii sit (read-only arrays, the right lens's view).
+    """Where the points of an outline of ``count`` radii sit (the right lens's view).
 
     ``cosines`` / ``sines``: cos θ and sin θ of the ``count`` outline points
     first, then of the quadrature nodes, ``RADIAL_NODES`` on every ``stride``-th
@@ -458,17 +466,13 @@ class _Layout(NamedTuple):
     row: np.ndarray
 
 
-@lru_cache(maxsize=64)
 def _layout(count: int) -> _Layout:
     cosines, sines = unit_circle(count)
     stride = _volume_stride(count)
     row = (stride * 2.0 * math.pi / count) * _AREA_NODE_WEIGHTS
-    layout = _Layout(np.concatenate((cosines, np.repeat(cosines[::stride], RADIAL_NODES))),
-                     np.concatenate((sines, np.repeat(sines[::stride], RADIAL_NODES))),
-                     stride, row)
-    for array in (layout.cosines, layout.sines, layout.row):
-        array.flags.writeable = False
-    return layout
+    return _Layout(np.concatenate((cosines, np.repeat(cosines[::stride], RADIAL_NODES))),
+                   np.concatenate((sines, np.repeat(sines[::stride], RADIAL_NODES))),
+                   stride, row)
 
 
 class OutlineGrid(NamedTuple):

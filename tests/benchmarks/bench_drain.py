@@ -68,9 +68,11 @@ def bench(count: int, workdir: Path, settings: dict[str, str] | None = None) -> 
             shutil.copy(source / name, lab / "inbox" / name)
 
     floor = lambda lab: timed([sys.executable, str(HERE / "floor.py"), str(lab)])  # noqa: E731
+    load_before = os.getloadavg()[0]
     before_s, _, _ = floor(floor_labs[0])
     engine_s, engine_rss, out = timed([*lenslane, "watch", str(engine_lab), "--once", "--stats"])
     after_s, floor_rss, _ = floor(floor_labs[1])
+    load_after = os.getloadavg()[0]
     floor_s = (before_s + after_s) / 2
     published = len(os.listdir(engine_lab / "outbox"))
     stats = {}
@@ -80,7 +82,8 @@ def bench(count: int, workdir: Path, settings: dict[str, str] | None = None) -> 
     return {"orders": count, "published": published, "engine_s": engine_s, "floor_s": floor_s,
             "floor_before_s": before_s, "floor_after_s": after_s,
             "engine_rate": count / engine_s, "floor_rate": count / floor_s, "ratio": engine_s / floor_s,
-            "engine_peak_rss_mb": engine_rss, "floor_peak_rss_mb": floor_rss, "stats": stats}
+            "engine_peak_rss_mb": engine_rss, "floor_peak_rss_mb": floor_rss, "stats": stats,
+            "load": (load_before, load_after)}
 
 
 def main() -> int:
@@ -97,7 +100,9 @@ def main() -> int:
                   f"floor {row['floor_rate']:.0f} orders/s ({row['floor_before_s']:.1f} s before, "
                   f"{row['floor_after_s']:.1f} s after), "
                   f"ratio {row['ratio']:.2f}, engine peak RSS {row['engine_peak_rss_mb']:.0f} MB "
-                  f"(floor {row['floor_peak_rss_mb']:.0f} MB), published {row['published']}")
+                  f"(floor {row['floor_peak_rss_mb']:.0f} MB), published {row['published']}; "
+                  f"load average {row['load'][0]:.2f} before, {row['load'][1]:.2f} after (other work on the machine "
+                  "moves every figure)")
             stage_seconds = row["stats"].get("stage_seconds", {})
             chain = sum(stage_seconds.values())
             if chain:

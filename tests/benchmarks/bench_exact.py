@@ -6,13 +6,15 @@
 0. Accuracy, the measurement behind the default method: single-vision orders over the whole range the tilt
    matters for, made with "martin" and with "exact"; each published lens (its rounded surfacing power, front
    curve and centre thickness) traced as worn, against the prescription carried to the fitting distance.
-1. The real-ray trace alone: the as-worn vergence of many lenses in one vectorised call, and of one lens
-   per call (the engine's case), per lens.
+1. The optics alone, one lens per call (the engine's case): the as-worn power on the line of sight, one
+   off-axis pencil, the closed-form surfacing power, and the eight gazes of the off-axis errors.
 2. The exact compensation with its geometry coupling, per lens: the tilt stage's own time (from the
    pipeline's timing) over the benchmark mix with ``[stages.tilt] method = "exact"``, divided by the lenses
-   it compensated — and the same stage with "martin" for comparison. Aim: 10 ms or less per lens.
-3. The engine draining the benchmark mix with "exact" on, against the file-system floor
-   (tests/benchmarks/bench_drain.py's method). Aim: within 2× of the floor.
+   it compensated, and how much of it is the geometry stage's own front choice and thickness solves that the
+   coupling calls; the same stage with "martin" for comparison. Aim: 10 ms or less per lens.
+3. The engine draining the benchmark mix with "exact" on and with "martin", each against the file-system
+   floor (tests/benchmarks/bench_drain.py's method), and what "exact" adds per order. Aim: within 2× of the
+   floor.
 
 Never part of the test suite's pass/fail.
 """
@@ -39,8 +41,9 @@ from lenslane.chain.host import start_host  # noqa: E402
 from lenslane.chain.pipeline import Pipeline  # noqa: E402
 from lenslane.config import LabConfig  # noqa: E402
 from lenslane.contract.intake import read_order  # noqa: E402
+import lenslane.plugins.tilt as tilt_stage  # noqa: E402
 from lenslane.plugins.optics.asworn import (  # noqa: E402
-    asworn_vergence, coddington_vergence, largest_meridional_error, power_elements, worn_lenses,
+    asworn_power, gaze_errors, largest_meridional_error, no_roll_axes, pencil_vergence, surfacing_for, worn_lens,
 )
 from lenslane.plugins.optics.power import power_matrix  # noqa: E402
 from lenslane.plugins.optics.tilt import tilt_obliquity  # noqa: E402
@@ -91,10 +94,10 @@ def published_errors(orders: list[dict], method: str) -> np.ndarray:
             rx, made = lens["rx"], lens["surfacing"]
             wanted = vertex_move(power_matrix(rx["sphere"], rx.get("cylinder", 0.0), rx.get("axis", 180)),
                                  12.0, fit["vertex_mm"])
-            worn = worn_lenses([lens["geometry"]["front_curve_d"]],
-                               [power_matrix(made["sphere"], made.get("cylinder", 0.0), made.get("axis", 180))],
-                               lens["geometry"]["center_thickness_mm"], index, theta, t)
-            rows.append((largest_meridional_error(np.array(wanted) - power_elements(coddington_vergence(worn))[0]),
+            worn = worn_lens(lens["geometry"]["front_curve_d"],
+                             power_matrix(made["sphere"], made.get("cylinder", 0.0), made.get("axis", 180)),
+                             lens["geometry"]["center_thickness_mm"], index, theta, t)
+            rows.append((largest_meridional_error(np.array(wanted) - np.array(asworn_power(worn))),
                          lens["geometry"]["center_thickness_mm"], math.degrees(theta)))
     return np.array(rows, dtype=float)
 
@@ -107,38 +110,70 @@ def report_errors(method: str, rows: np.ndarray) -> None:
           f"obliquity: {100 * np.mean(error[both] > 0.12):.1f} % over 0.12 D ({int(both.sum())} lenses)")
 
 
-def trace_cost(count: int) -> tuple[float, float]:
-    """Seconds per lens for the as-worn vergence: all ``count`` lenses in one call, and one lens per call."""
+def optics_cost(count: int) -> dict[str, float]:
+    """Seconds per call, one lens per call, over ``count`` random lenses: each optics step of the exact method."""
     rng = np.random.default_rng(16)
-    front = rng.uniform(1.0, 10.0, count)
-    surfacing = np.column_stack([rng.uniform(-8, 8, count), rng.uniform(-1, 1, count), rng.uniform(-8, 8, count)])
-    surfacing[:, 2] = surfacing[:, 0] + rng.uniform(-3, 0, count)
-    theta = np.radians(rng.uniform(0, 25, count))
-    tangential = np.column_stack([np.cos(rng.uniform(0, np.pi, count)), np.ones(count)])
-    lenses = worn_lenses(front, surfacing, rng.uniform(1.0, 8.0, count), 1.6, theta, tangential)
-    started = time.perf_counter()
-    asworn_vergence(lenses)
-    batched = (time.perf_counter() - started) / count
-    single = min(count, 500)
-    started = time.perf_counter()
-    for i in range(single):
-        asworn_vergence(lenses.take([i]))
-    return batched, (time.perf_counter() - started) / single
+    cases = []
+    for _ in range(count):
+        sphere = rng.uniform(-8, 8)
+        surfacing = power_matrix(sphere, -rng.uniform(0, 3), rng.uniform(0, 180))
+        theta, t = math.radians(rng.uniform(0, 25)), (math.cos(rng.uniform(0, math.pi)), 1.0)
+        front, thickness = rng.uniform(1.0, 10.0), rng.uniform(1.0, 8.0)
+        cases.append((front, surfacing, thickness, 1.6, theta, t, worn_lens(front, surfacing, thickness, 1.6, theta, t)))
+    gaze = (0.0, -math.sin(math.radians(30.0)), math.cos(math.radians(30.0)))
+    on_sphere = (0.0, 27.0 * math.sin(math.radians(30.0)), 27.0 - 27.0 * math.cos(math.radians(30.0)))
+    turned = no_roll_axes(gaze)[:2]
+    steps = {
+        "as-worn power on the line of sight": lambda c: asworn_power(c[6]),
+        "one pencil at 30° of gaze": lambda c: pencil_vergence(c[6], on_sphere, gaze, turned),
+        "closed-form surfacing power": lambda c: surfacing_for(c[1], c[0], c[2], c[3], c[4], c[5]),
+        "off-axis errors (8 gazes)": lambda c: gaze_errors(c[6], c[1], "right"),
+    }
+    costs = {}
+    for name, step in steps.items():
+        started = time.perf_counter()
+        for case in cases:
+            step(case)
+        costs[name] = (time.perf_counter() - started) / count
+    return costs
 
 
-def stage_cost(orders: list[dict], method: str) -> tuple[float, int, float]:
-    """The tilt stage's seconds per compensated lens, the lenses compensated, and the whole chain's seconds."""
+def stage_cost(orders: list[dict], method: str) -> dict[str, float]:
+    """The tilt stage's seconds per compensated lens and its part in the geometry stage's calls, the lenses
+    compensated, and the whole chain's seconds per order."""
     host = start_host(LabConfig(stages={"tilt": {"method": method}}))
     pipeline = Pipeline(host)
     parsed = [read_order(json.dumps(data).encode(), host.settings.materials) for data in orders]
     pipeline.run(*parsed[0])  # warm up
+    geometry = {"seconds": 0.0, "calls": 0}
+    originals = {name: getattr(tilt_stage, name) for name in ("planned_fronts", "planned_centre_mm")}
+
+    def timed_call(function):
+        def call(*args, **kwargs):
+            started = time.perf_counter()
+            try:
+                return function(*args, **kwargs)
+            finally:
+                geometry["seconds"] += time.perf_counter() - started
+                geometry["calls"] += 1
+        return call
+
     tilt_seconds, lenses, chain = 0.0, 0, 0.0
-    for order, received in parsed:
-        outcome = pipeline.run(order, received)
-        tilt_seconds += outcome.timings["tilt"]
-        chain += sum(outcome.timings.values())
-        lenses += sum(1 for c in outcome.result["changes"] if c["stage"] == "tilt")
-    return tilt_seconds / max(lenses, 1), lenses, chain
+    try:  # the coupling's calls into the geometry stage, timed where the tilt stage makes them
+        for name, function in originals.items():
+            setattr(tilt_stage, name, timed_call(function))
+        for order, received in parsed:
+            outcome = pipeline.run(order, received)
+            tilt_seconds += outcome.timings["tilt"]
+            chain += sum(outcome.timings.values())
+            lenses += sum(1 for c in outcome.result["changes"] if c["stage"] == "tilt")
+    finally:
+        for name, function in originals.items():
+            setattr(tilt_stage, name, function)
+    lenses = max(lenses, 1)
+    return {"per_lens": tilt_seconds / lenses, "geometry_per_lens": geometry["seconds"] / lenses,
+            "geometry_calls_per_lens": geometry["calls"] / lenses, "lenses": lenses, "chain_per_order": chain / len(orders),
+            "tilt_per_order": tilt_seconds / len(orders)}
 
 
 def main() -> int:
@@ -150,9 +185,9 @@ def main() -> int:
     args = parser.parse_args()
     print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}")
 
-    batched, single = trace_cost(10000)
-    print(f"as-worn trace: {1e6 * batched:.1f} µs per lens with 10 000 lenses in one call, "
-          f"{1e3 * single:.2f} ms per lens one at a time")
+    print(f"load: {os.getloadavg()[0]:.2f} {os.getloadavg()[1]:.2f} {os.getloadavg()[2]:.2f} (1, 5, 15 min)")
+    for name, seconds in optics_cost(2000).items():
+        print(f"optics, one lens per call: {name} {1e6 * seconds:.0f} µs")
 
     rng = random.Random(16)
     study = [study_order(i, rng) for i in range(args.study)]
@@ -163,17 +198,28 @@ def main() -> int:
 
     rng = random.Random(20261201)
     orders = [make_order(i, rng) for i in range(args.lenses)]
-    for method in ("martin", "exact"):
-        per_lens, lenses, chain = stage_cost(orders, method)
-        print(f"tilt stage, method {method}: {1e3 * per_lens:.2f} ms per compensated lens ({lenses} lenses), "
-              f"the whole chain {1e3 * chain / len(orders):.2f} ms per order")
+    costs = {method: stage_cost(orders, method) for method in ("martin", "exact")}
+    for method, cost in costs.items():
+        print(f"tilt stage, method {method}: {1e3 * cost['per_lens']:.2f} ms per compensated lens "
+              f"({cost['lenses']} lenses), {1e3 * cost['tilt_per_order']:.2f} ms per order; the whole chain "
+              f"{1e3 * cost['chain_per_order']:.2f} ms per order")
+    exact = costs["exact"]
+    print(f"  of the exact method's {1e3 * exact['per_lens']:.2f} ms per lens, {1e3 * exact['geometry_per_lens']:.2f} ms "
+          f"are {exact['geometry_calls_per_lens']:.2f} calls into the geometry stage's front choice and thickness "
+          f"solve, {1e3 * (exact['per_lens'] - exact['geometry_per_lens']):.2f} ms the optics and the record")
 
     workdir = Path(tempfile.mkdtemp(prefix="lenslane-bench-exact-", dir=os.environ.get("BENCH_DIR")))
-    row = bench(args.orders, workdir, EXACT)
-    if not args.keep:
-        shutil.rmtree(workdir, ignore_errors=True)
-    print(f"N={row['orders']} with exact on: engine {row['engine_rate']:.0f} orders/s ({row['engine_s']:.1f} s), "
-          f"floor {row['floor_rate']:.0f} orders/s, ratio {row['ratio']:.2f} (aim ≤ 2), published {row['published']}")
+    try:
+        rows = {"exact": bench(args.orders, workdir / "exact", EXACT), "martin": bench(args.orders, workdir / "martin")}
+    finally:
+        if not args.keep:
+            shutil.rmtree(workdir, ignore_errors=True)
+    for method, row in rows.items():
+        print(f"N={row['orders']} with {method}: engine {row['engine_rate']:.0f} orders/s ({row['engine_s']:.1f} s), "
+              f"floor {row['floor_rate']:.0f} orders/s, ratio {row['ratio']:.2f} (aim ≤ 2), published {row['published']}")
+    added = (rows["exact"]["engine_s"] - rows["martin"]["engine_s"]) / args.orders
+    print(f"exact adds {1e3 * added:.2f} ms per order to the drain, {added / (rows['exact']['floor_s'] / args.orders):.2f}× "
+          f"the floor's time per order; load {os.getloadavg()[0]:.2f}")
     return 0
 
 

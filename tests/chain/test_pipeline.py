@@ -81,6 +81,16 @@ def test_a_change_records_the_value_before_and_after(order_dict):
     (-80.0, "sphere", r"lenses\.right\.surfacing\.sphere: Input should be greater than or equal to -50"),
     (0, "axis", r"lenses\.right\.surfacing\.axis: Input should be greater than or equal to 1"),
     ({1, 2}, "sphere", r"wrote a set to lenses\.right\.surfacing\.sphere: not a JSON value"),
+    (float("nan"), "axis", r"wrote nan to lenses\.right\.surfacing\.axis: not a finite number"),
+    (float("-inf"), "axis", r"wrote -inf to lenses\.right\.surfacing\.axis: not a finite number"),
+    ({"sphere": -1.0, "cylinder": float("nan"), "axis": 90}, None,
+     r"wrote nan to lenses\.right\.surfacing\.cylinder: not a finite number"),
+    ({"sphere": -1.0, "cylinder": 0.0, "axis": 90, 7: 1}, None,
+     r"wrote a key 7 to lenses\.right\.surfacing: keys must be strings"),
+    ({"sphere": [object()], "cylinder": 0.0, "axis": 90}, None,
+     r"wrote a object to lenses\.right\.surfacing\.sphere\[0\]: not a JSON value"),
+    ({"sphere": "-1.00", "cylinder": 0.0, "axis": 90}, None,
+     r"lenses\.right\.surfacing\.sphere: Input should be a valid number"),
     ({"sphere": -1.0}, None, r"lenses\.right\.surfacing\.cylinder: Field required"),
 ])
 def test_a_value_the_result_contract_refuses_fails_the_order_naming_the_stage(order_dict, value, key, problem):
@@ -108,6 +118,74 @@ def test_a_nan_in_a_lab_field_or_in_flag_values_is_refused(order_dict):
     flagging.run = lambda view, params: [Flag("odd", "info", "m", values={"gap_mm": float("-inf")})]
     with pytest.raises(StageFailure, match="flag 'odd' values.gap_mm: not a finite number"):
         run_order(host_with(chain_with("flagging"), flagging=flagging), order_dict)
+
+
+class WithInputs(NoteStage):
+    """Writes a plain lab note with the given ``inputs``."""
+
+    def __init__(self, inputs):
+        super().__init__(name="inputs")
+        self.inputs = inputs
+
+    def run(self, view, params):
+        yield Change("lenses.right.lab.note", "checked", "r", "m", "s", self.inputs)
+
+
+@pytest.mark.parametrize("inputs, problem", [
+    ({"gap_mm": float("nan")}, r"wrote nan to lenses\.right\.lab\.note \(inputs\)\.gap_mm: not a finite number"),
+    ({"gaps": [1.0, float("inf")]}, r"wrote inf to lenses\.right\.lab\.note \(inputs\)\.gaps\[1\]: not a finite number"),
+    ({"by": {("a", 1): 2.0}}, r"wrote a key \('a', 1\) to lenses\.right\.lab\.note \(inputs\)\.by: keys must be strings"),
+    ({"when": b"2026"}, r"wrote a bytes to lenses\.right\.lab\.note \(inputs\)\.when: not a JSON value"),
+])
+def test_inputs_that_are_not_plain_json_fail_the_order_naming_the_stage(order_dict, inputs, problem):
+    with pytest.raises(StageFailure, match=problem) as caught:
+        run_order(host_with(chain_with("inputs"), inputs=WithInputs(inputs)), order_dict)
+    assert caught.value.stage == "inputs"
+
+
+def test_subclasses_of_the_json_types_are_json_and_a_tuple_is_an_array(order_dict):
+    # An IntEnum is an int and numpy's float64 a float (plugins compute with numpy); a tuple is written as a
+    # JSON array, its numbers rounded like a list's (lengths to 0.1 mm).
+    import enum
+
+    import numpy as np
+
+    class Grade(enum.IntEnum):
+        FINE = 2
+
+    class Values(NoteStage):
+        def run(self, view, params):
+            yield Change("lenses.right.lab", {"grade": Grade.FINE, "seal_mm": np.float64(1.04), "pads_mm": (1.26, 2.0)},
+                         "r", "m", "s", {"spread_mm": (0.5, np.float64(0.25))})
+            yield Flag("noted", "info", "m", values={"seal_mm": np.float64(1.04)})
+
+    result = run_order(host_with(chain_with("values"), values=Values(name="values")), order_dict)
+    [change] = [c for c in result["changes"] if c["stage"] == "values"]
+    assert change["after"] == {"grade": 2, "seal_mm": 1.0, "pads_mm": [1.3, 2.0]}
+    assert change["inputs"] == {"spread_mm": [0.5, 0.25]}
+    assert result["lenses"]["right"]["lab"] == change["after"]
+    assert [f["values"] for f in result["flags"] if f["code"] == "noted"] == [{"seal_mm": 1.0}]
+
+
+def test_the_result_keeps_a_copy_of_what_a_stage_proposed(order_dict):
+    # A later write inside an object the stage proposed changes the result's copy, never the stage's own object.
+    mine = {"seal_mm": 1.0, "tag": "a"}
+    inputs = {"sizes_mm": [1.0]}
+
+    class Whole(NoteStage):
+        def run(self, view, params):
+            yield Change("lenses.right.lab", mine, "Sets the lab object.", "test", "Common practice", inputs)
+
+    class Inner(NoteStage):
+        def run(self, view, params):
+            yield Change("lenses.right.lab.seal_mm", 2.0, "Sets one key in it.", "test", "Common practice")
+
+    host = host_with(chain_with("whole", "inner"), whole=Whole(name="whole"), inner=Inner(name="inner"))
+    result = run_order(host, order_dict)
+    assert result["lenses"]["right"]["lab"]["seal_mm"] == 2.0
+    assert mine == {"seal_mm": 1.0, "tag": "a"}
+    inputs["sizes_mm"].append(2.0)
+    assert [c["inputs"] for c in result["changes"] if c["stage"] == "whole"] == [{"sizes_mm": [1.0]}]
 
 
 def test_a_later_write_inside_an_object_leaves_the_earlier_record_as_it_was(order_dict):

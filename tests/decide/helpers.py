@@ -1,13 +1,13 @@
 """Orders and labs for the decision tests: a lab that has a result in review/ and a held version."""
 from __future__ import annotations
 
-import contextlib
 import copy
 import json
 from pathlib import Path
 from typing import Any
 
-from lenslane.audit.log import Index, iter_records, unpack
+from lenslane.audit.log import DEFINE_EVENT, iter_records, unpack
+from lenslane.audit.records import ref_of
 from tests.conftest import BASE_ORDER
 
 
@@ -30,10 +30,15 @@ def ready_order(order_id: str, sphere: float = -1.00) -> dict[str, Any]:
 
 
 def records(lab: Path, event: str, order_id: str | None = None) -> list[dict[str, Any]]:
-    """The log's records of an event, each with its story and run filled in (the run's fields also on top)."""
-    found = [r for r in iter_records(lab) if r.get("event") == event and (order_id is None or r.get("order_id") == order_id)]
-    with contextlib.closing(Index(lab)) as index:
-        whole = [unpack(r, index.body) for r in found]
+    """The log's records of an event, each with its story and run filled in (the run's fields also on top).
+
+    Read from the log alone: a running engine writes its index just after the log, so a record read here
+    may not be in the index yet.
+    """
+    log = list(iter_records(lab))
+    bodies = {ref_of(r["sha256"]): r["body"] for r in log if r.get("event") == DEFINE_EVENT}
+    found = [r for r in log if r.get("event") == event and (order_id is None or r.get("order_id") == order_id)]
+    whole = [unpack(r, bodies.__getitem__) for r in found]
     return [{**r["run"], **r} if isinstance(r.get("run"), dict) else r for r in whole]
 
 

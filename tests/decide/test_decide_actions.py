@@ -170,3 +170,36 @@ def test_verify_accounts_for_review_and_superseded_results(lab):
     (lab.root / "review" / "STRAY-1.json").write_bytes(json.dumps({"order_id": "STRAY-1"}).encode())
     report = verify(lab.root)
     assert not report.ok and "review/STRAY-1.json: no published record" in str(report.result_problems[0])
+
+
+def test_an_approval_never_writes_over_a_file_it_does_not_account_for(lab):
+    """A stranger's file where the approved result would go: nothing is decided, nothing is lost."""
+    root = lab.root
+    stranger = root / "outbox" / "RV-0001.json"
+    stranger.write_bytes(b'{"not": "ours"}\n')
+    with pytest.raises(DecisionError) as raised:
+        decide(root, "RV-0001", "approve", "tech-07", "checked")
+    assert "cannot write" in raised.value.message
+    assert stranger.read_bytes() == b'{"not": "ours"}\n' and (root / "review" / "RV-0001.json").exists()
+    assert records(root, "decided") == []
+
+
+def test_a_move_left_half_done_by_a_crash_finishes_and_a_stranger_at_the_target_is_kept(lab):
+    """The moves of a recorded decision: a file under both names (a link made, the old name left) loses its
+    old name; a different file already at the target keeps both, for audit verify to report."""
+    from lenslane.decide.apply import Applier
+
+    root = lab.root
+    source = root / "review" / "RV-0001.json"
+    digest = sha256(source)
+    os.link(source, root / "rejected" / "RV-0001.json")  # as the link-and-unlink rename leaves a crash
+    Applier(lab)._move([{"from": "review/RV-0001.json", "to": "rejected/RV-0001.json", "sha256": digest}])
+    assert not source.exists() and sha256(root / "rejected" / "RV-0001.json") == digest
+
+    held = root / "held" / "OK-0001-corrected.json"
+    held_digest = sha256(held)
+    (root / "archive" / "OK-0001-corrected.json").write_bytes(b"someone else's\n")
+    Applier(lab)._move([{"from": "held/OK-0001-corrected.json", "to": "archive/OK-0001-corrected.json",
+                         "sha256": held_digest}])
+    assert sha256(held) == held_digest
+    assert (root / "archive" / "OK-0001-corrected.json").read_bytes() == b"someone else's\n"

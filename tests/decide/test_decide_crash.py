@@ -13,14 +13,18 @@ from pathlib import Path
 import pytest
 
 from lenslane.audit.log import verify
-from lenslane.decide.apply import FAULT_EXIT_CODE, FAULT_STEPS, FAULT_VARIABLE
+from lenslane.lab.folder import DECISION_STEPS
 from tests.conftest import REPO
+from tests.system.crashing import CRASH_EXIT_CODE
 from tests.decide.helpers import load, ready_order, records, review_order
 from tests.system.driver import WAIT_SECONDS, Watch, environment, make_lab as make_lab_folder, drop
 
 
-def lenslane(*args: str, env: dict[str, str] | None = None) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "lenslane.cli", *args], capture_output=True, text=True, cwd=REPO,
+def lenslane(*args: str, env: dict[str, str] | None = None, crash_after: str | None = None
+             ) -> subprocess.CompletedProcess:
+    """A lenslane command; with ``crash_after`` it ends abruptly right after that step (tests/system/crashing.py)."""
+    command = ["-m", "tests.system.crashing", "--command", crash_after] if crash_after else ["-m", "lenslane.cli"]
+    return subprocess.run([sys.executable, *command, *args], capture_output=True, text=True, cwd=REPO,
                           env=environment(env), timeout=WAIT_SECONDS)
 
 
@@ -80,15 +84,15 @@ def assert_applied_once(lab: Path, action: str, before: dict[str, str]) -> None:
     assert report.ok, report.summary()
 
 
-@pytest.mark.parametrize("step", FAULT_STEPS)
+@pytest.mark.parametrize("step", DECISION_STEPS)
 @pytest.mark.parametrize("action", list(DECISIONS))
 def test_a_decision_cut_short_at_any_step_is_finished_once_by_the_next_engine(tmp_path, action, step):
     lab = prepared_lab(tmp_path)
     before = snapshot(lab)
     crashed = lenslane("decide", str(lab), DECISIONS[action], action, "--by", "tech-07", "--note", "checked",
-                       env={FAULT_VARIABLE: step})
-    assert crashed.returncode == FAULT_EXIT_CODE, crashed.stderr
-    assert len(records(lab, "decided")) == (0 if step == "written" else 1)
+                       crash_after=step)
+    assert crashed.returncode == CRASH_EXIT_CODE, crashed.stderr
+    assert len(records(lab, "decided")) == (0 if step == "decision-written" else 1)
     assert lenslane("watch", str(lab), "--once").returncode == 0  # the next holder of the lock finishes it
     assert_applied_once(lab, action, before)
     again = lenslane("decide", str(lab), DECISIONS[action], action, "--by", "tech-09", "--note", "again")
@@ -142,9 +146,9 @@ def test_a_decision_goes_through_the_running_engine(tmp_path):
 def test_an_engine_killed_while_applying_a_decision_leaves_it_to_the_waiting_command(tmp_path):
     lab = prepared_lab(tmp_path)
     before = snapshot(lab)
-    watch = Watch(lab, env={FAULT_VARIABLE: "recorded"})  # the engine dies right after the record is on disk
+    watch = Watch(lab, crash_after="decision-recorded")  # the engine dies right after the record is on disk
     done = lenslane("decide", str(lab), "OK-0001", "replace", "--by", "tech-07", "--note", "corrected")
-    assert watch.wait() == FAULT_EXIT_CODE
+    assert watch.wait() == CRASH_EXIT_CODE
     assert done.returncode == 0, done.stderr
     assert "already recorded" in done.stdout  # finished by the command itself once the lock was free
     assert_applied_once(lab, "replace", before)

@@ -45,6 +45,19 @@ def test_a_copy_resent_under_the_same_name_while_the_first_waits_for_the_commit_
             assert hashlib.sha256((lab.root / record["input"]).read_bytes()).hexdigest() == received["sha256"]
 
 
+def test_a_queued_input_holds_its_destination_until_it_is_moved_or_set_aside(lab):
+    for order_id in ("DEST-1", "DEST-2"):
+        _send(lab, f"{order_id}.json", order_id)
+        lab.consider(f"{order_id}.json", moved=True)
+    commits = lab.commits
+    assert commits.is_destination("archive/DEST-1.json") and commits.is_destination("archive/DEST-2.json")
+    [work_name] = [name for name in os.listdir(lab.work) if name.endswith("DEST-2.json")]
+    commits.set_aside(work_name)  # its move is given up: the name is free again
+    assert not commits.is_destination("archive/DEST-2.json")
+    assert [p.order_id for p in lab.commit()] == ["DEST-1"]
+    assert not commits.is_destination("archive/DEST-1.json") and (lab.archive / "DEST-1.json").exists()
+
+
 def test_work_keeps_the_order_of_the_claims_not_of_the_names(lab):
     claims = Claims(os.fspath(lab.inbox), os.fspath(lab.work))
     for name in ("z.json", "a.json", "m.json"):

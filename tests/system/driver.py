@@ -130,13 +130,15 @@ class Watch:
     """A real ``lenslane watch`` process on a lab; its JSON log lines are kept in a file."""
 
     def __init__(self, lab: Path, *args: str, env: dict[str, str] | None = None, ready: bool = True,
-                 new_session: bool = False):
+                 new_session: bool = False, crash_after: str | None = None):
         self.lab = lab
         number = len(list(lab.parent.glob(f"{lab.name}-watch-*.log")))
         self.log_path = lab.parent / f"{lab.name}-watch-{number}.log"
         self.err_path = lab.parent / f"{lab.name}-watch-{number}.err"
         with open(self.log_path, "wb") as out, open(self.err_path, "wb") as err:
-            self.process = subprocess.Popen([sys.executable, "-m", "lenslane.cli", "watch", str(lab), *args],
+            # crash_after: the engine ends abruptly right after that step (tests/system/crashing.py).
+            command = ["-m", "tests.system.crashing", "--command", crash_after] if crash_after else ["-m", "lenslane.cli"]
+            self.process = subprocess.Popen([sys.executable, *command, "watch", str(lab), *args],
                                             stdout=out, stderr=err, cwd=REPO, env=environment(env),
                                             start_new_session=new_session)
         if ready and "--once" not in args:

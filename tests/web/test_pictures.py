@@ -243,3 +243,19 @@ def test_the_off_axis_errors_of_the_exact_method_are_drawn_where_it_ran():
     left = ET.fromstring(eye_pictures(result, "left")[-1].svg)
     texts = {t.text: float(t.get("x")) for t in left.iter(f"{SVG}text")}
     assert texts["nasal"] < 0 and texts["M +0.09"] == pytest.approx(-30.0)
+
+
+def test_a_gaze_whose_pencil_misses_the_lens_is_drawn_as_beyond_it():
+    # The exact tilt method records null where a gaze's pencil does not get through the lens (beyond its edge or
+    # totally reflected): the picture says so at that gaze instead of a number.
+    off_axis = {"gaze_angles_deg": [20.0, 30.0],
+                "up": {"mean_d": [0.05, None], "cylinder_d": [0.10, None]},
+                "down": {"mean_d": [0.04, 0.10], "cylinder_d": [0.08, 0.20]},
+                "nasal": {"mean_d": [0.03, 0.09], "cylinder_d": [0.07, 0.18]},
+                "temporal": {"mean_d": [-0.02, -0.06], "cylinder_d": [0.06, 0.15]}}
+    result = spherical_result(-2.0, 4.0, 1.5, 2.0)
+    result["changes"] = [{"field": "lenses.right.surfacing", "inputs": {"method": "exact", "off_axis": off_axis}}]
+    root = ET.fromstring(eye_pictures(result, "right")[-1].svg)
+    texts = {t.text: (float(t.get("x")), float(t.get("y"))) for t in root.iter(f"{SVG}text")}
+    assert "beyond" in texts and "the lens" in texts and "M +0.05" in texts
+    assert texts["beyond"][1] == pytest.approx(-30.0 + 0.2)  # beside the 30° gaze up (y grows downward)

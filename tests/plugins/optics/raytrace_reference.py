@@ -76,11 +76,22 @@ def paraxial_back_vertex_power(opm: OpticalModel) -> float:
 
 def _exit_line(opm: OpticalModel, x: float, y: float,
                direction: tuple[float, float, float] = (0.0, 0.0, 1.0)) -> tuple[np.ndarray, np.ndarray]:
-    """Where a ray starting at (x, y) on the object plane with the given direction leaves the back surface."""
-    ray, _, _ = trace(opm["seq_model"], np.array([x, y, 0.0]), np.asarray(direction, dtype=float), WAVELENGTH_NM)
+    """Where a ray starting at (x, y) on the object plane with the given direction leaves the back surface.
+
+    In the lens's frame: the front surface's plane (before any decentration or tilt) at z = 0, x and y as on
+    the object plane.
+    """
+    sm = opm["seq_model"]
+    ray, _, _ = trace(sm, np.array([x, y, 0.0]), np.asarray(direction, dtype=float), WAVELENGTH_NM)
     image_point, direction = np.asarray(ray[-1][0]), np.asarray(ray[-1][1])
-    # The last segment runs straight from the back surface to the image plane,
-    # whose frame is the untilted one: step back along it to the exit point.
+    # rayoptics gives the last segment in the image surface's own coordinates: into the front surface's frame
+    # (its global transform), then back through the front's decentration.
+    turn, shift = sm.gbl_tfrms[-1]
+    image_point, direction = turn @ image_point + shift, turn @ direction
+    decenter = sm.ifcs[1].decenter
+    if decenter is not None:
+        image_point, direction = decenter.rot_mat @ image_point + decenter.dec, decenter.rot_mat @ direction
+    # The last segment runs straight from the back surface to the image plane: step back along it.
     return image_point - ray[-2][2] * direction, direction
 
 

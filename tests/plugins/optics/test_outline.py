@@ -10,7 +10,7 @@ from hypothesis import strategies as st
 
 from lenslane.plugins.optics.outline import (
     blank_diameter_from_ed_mm, blank_diameter_mm, decentration, fitted_exponent, modelled_outline, optical_centre,
-    outline_extent, outline_points, superellipse_radii,
+    outline_extent, outline_points, superellipse_radii, vertical_extent_at,
 )
 
 
@@ -87,3 +87,24 @@ def test_the_exponent_stays_within_ellipse_and_rectangle():
     assert fitted_exponent(52.0, 38.0, 50.0) == 2.0
     assert fitted_exponent(52.0, 38.0, 70.0) == 60.0
     assert modelled_outline(52.0, 38.0, None).exponent == 4.0
+
+
+@settings(max_examples=200, deadline=None)
+@given(radius=st.floats(15.0, 35.0), count=st.sampled_from([36, 72, 100, 360]), along=st.floats(-0.99, 0.99))
+def test_the_vertical_extent_of_a_round_outline_is_the_circle_s_chord(radius, count, along):
+    # Source: the circle x² + y² = R² meets the vertical x = a at y = ±√(R² − a²); the outline is the polygon
+    # through `count` points of it, whose every point lies at least R cos(π/count) from the centre, so the
+    # polygon meets the vertical no nearer the centre than ±√(R² cos²(π/count) − a²).
+    x_mm = along * radius
+    low, high = vertical_extent_at([radius] * count, x_mm)
+    chord = math.sqrt(radius * radius - x_mm * x_mm)
+    inner = math.sqrt(max(0.0, (radius * math.cos(math.pi / count)) ** 2 - x_mm * x_mm))
+    assert -chord - 1e-9 <= low <= -inner + 1e-9 and inner - 1e-9 <= high <= chord + 1e-9
+
+
+def test_the_vertical_extent_uses_the_side_that_closes_the_outline():
+    # Source: plane geometry. The outline of 4 equal radii is a diamond (corners at 0°, 90°, 180°, 270°): x = 5
+    # crosses the sides from 270° to 0° (the closing side, last point to first) and from 0° to 90°,
+    # at y = ∓(20 − 5) mm; beyond the outline, none.
+    assert vertical_extent_at([20.0] * 4, 5.0) == pytest.approx((-15.0, 15.0))
+    assert vertical_extent_at([20.0] * 4, 21.0) is None

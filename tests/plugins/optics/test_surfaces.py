@@ -113,6 +113,18 @@ def test_sag_from_the_squared_distance_is_the_sagitta_formula(power_d, y_mm):
     assert float(sag_from_squared_mm(curvature, y_mm * y_mm)) == pytest.approx(reference, abs=1e-9)
 
 
+@given(st.floats(-0.06, 0.06), st.floats(0.0, 1600.0))
+def test_the_sag_of_plain_numbers_is_the_sag_of_arrays_to_the_bit(curvature, rho2):
+    # Source: IEEE 754 square root and arithmetic are correctly rounded, so numbers and arrays give the same bits;
+    # a sphere does not reach beyond c²ρ² = 1 (NaN, as for arrays).
+    scalar = sag_from_squared_mm(curvature, rho2)
+    [array] = sag_from_squared_mm(curvature, np.array([rho2]))
+    assert (math.isnan(scalar) and math.isnan(array)) or scalar == array
+    reach = curvature * curvature * rho2
+    if abs(reach - 1.0) > 1e-9:  # away from the rim, where rounding decides
+        assert math.isnan(scalar) == (reach > 1.0)
+
+
 @pytest.mark.parametrize("curvature, rho2", [(0.012, 625.0), (-0.02, 400.0), (0.0, 900.0), (0.03, 1000.0)])
 def test_the_sag_slope_is_the_derivative_of_the_sag(curvature, rho2):
     # Source: a central difference of the sagitta formula (independent of the closed form), step 1e-7 /mm.

@@ -128,6 +128,14 @@ def test_centre_minimum_applies_to_minus_plano_and_mixed_lenses_only():
     assert not centre_minimum_applies(power_matrix(1.0, -0.5, 90))
 
 
+@pytest.mark.parametrize("axis", [0.0, 17.0, 33.000000000000004, 45.0, 90.0, 123.45, 179.99999999999997])
+def test_a_plano_meridian_counts_as_plano_whatever_the_axis(axis):
+    # Common practice: a plano meridian (+2.00 / -2.00 D, +0.50 / -0.50 D) is held at the minimum centre; the
+    # matrix rebuilt from an axis in floating point puts that meridian within ~1e-15 D of zero, either side.
+    assert centre_minimum_applies(power_matrix(2.0, -2.0, axis))
+    assert centre_minimum_applies(power_matrix(0.5, -0.5, axis))
+
+
 def test_a_minus_lens_is_held_at_its_minimum_centre():
     # Common practice (DOMAIN.md): minus lenses at the minimum centre thickness; their edges are thicker.
     shape = LensShape(4.0, power_matrix(-4.0, -1.0, 20), 1.498)
