@@ -1,11 +1,14 @@
 """The audit index: an SQLite file beside the log (``LAB/audit.sqlite``), derived from it, rebuildable at any time.
 
 It answers, without reading the log from its start: where each record is
-(``records``: seq → first seq of its file, offset, length; with the order id,
-the input file name and the claim it concerns), which content each published
-order id has (``published``: duplicate detection, never held in memory), where
-each define record is (``defines``), the chain's head in each file
-(``files``), counts per event and the last point ``audit verify`` checked.
+(``records``: seq → first seq of its file, offset, length; with its time, and
+the order id, input file name, claim, status or decided action it concerns),
+which content each published order id has (``published``: duplicate detection,
+never held in memory), each define record by what it is found by and the
+numbers it holds (``defines``), a trigram index of the records' order ids and
+input file names for finding them by a part (``records_text``), the chain's head
+in each file (``files``), counts per event and the last point ``audit verify``
+checked.
 
 The log stays the only source of truth. :meth:`Index.catch_up` compares the
 index's tail (the seq, hash and place of the last record it holds) with the
@@ -20,27 +23,42 @@ import os
 import sqlite3
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterable, Iterator
+from typing import Any, Iterable, Iterator, NamedTuple
 
 from lenslane.audit.reader import audit_files, iter_lines, file_of, read_at, ROTATED_RE
-from lenslane.audit.records import DEFINE_EVENT, OUTCOMES, ref_of
+from lenslane.audit.records import DEFINE_EVENT, OUTCOMES, REF_LENGTH, define_key
 
 INDEX_NAME = "audit.sqlite"
-SCHEMA = 1
+#: 2: records' time, status and action, defines by key with their numbers, order ids and names by trigram.
+SCHEMA = 2
+#: The events a record of which tells what became of an input (the first format's ``received`` too).
+PASS_EVENTS = (*OUTCOMES, "received")
 
 _TABLES = """
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value) WITHOUT ROWID;
 CREATE TABLE IF NOT EXISTS records (
     seq INTEGER PRIMARY KEY, file INTEGER NOT NULL, offset INTEGER NOT NULL, length INTEGER NOT NULL,
-    event TEXT, order_id TEXT, name TEXT, claim TEXT);
+    event TEXT, order_id TEXT, name TEXT, claim TEXT, ts TEXT, status TEXT);
 CREATE INDEX IF NOT EXISTS records_order ON records (order_id) WHERE order_id IS NOT NULL;
 CREATE INDEX IF NOT EXISTS records_name ON records (name) WHERE name IS NOT NULL;
 CREATE INDEX IF NOT EXISTS records_claim ON records (claim) WHERE claim IS NOT NULL;
-CREATE TABLE IF NOT EXISTS defines (ref TEXT PRIMARY KEY, seq INTEGER NOT NULL, kind TEXT) WITHOUT ROWID;
+CREATE INDEX IF NOT EXISTS records_ts ON records (ts);
+CREATE TABLE IF NOT EXISTS defines (
+    key TEXT NOT NULL, kind TEXT NOT NULL, seq INTEGER NOT NULL, numbers BLOB, PRIMARY KEY (key, kind)) WITHOUT ROWID;
+CREATE INDEX IF NOT EXISTS defines_seq ON defines (seq);
 CREATE TABLE IF NOT EXISTS published (order_id TEXT PRIMARY KEY, content TEXT, seq INTEGER) WITHOUT ROWID;
 CREATE TABLE IF NOT EXISTS files (first_seq INTEGER PRIMARY KEY, last_seq INTEGER, last_hash TEXT, size INTEGER);
 CREATE TABLE IF NOT EXISTS counts (event TEXT PRIMARY KEY, n INTEGER NOT NULL) WITHOUT ROWID;
+CREATE VIRTUAL TABLE IF NOT EXISTS records_text USING fts5(
+    order_id, name, content='records', content_rowid='seq', tokenize='trigram', columnsize=0);
+CREATE TRIGGER IF NOT EXISTS records_added AFTER INSERT ON records BEGIN
+    INSERT INTO records_text (rowid, order_id, name) VALUES (new.seq, new.order_id, new.name);
+END;
 """
+#: The shortest part of an order id or file name the trigram index can find; a shorter search text must be whole.
+SEARCH_MIN = 3
+#: How many records whose order id or file name a search text is part of are looked at (the newest).
+SEARCH_RECORDS = 1000
 
 
 @dataclass(frozen=True)
@@ -53,18 +71,34 @@ class Place:
     length: int
 
 
-def facts(record: dict[str, Any]) -> tuple[str | None, str | None, str | None, str | None]:
-    """What the index keeps of a record: its event, order id, input file name and (final records) claim."""
-    event = record.get("event")
-    event = event if isinstance(event, str) else None
-    order_id = record.get("order_id") if isinstance(record.get("order_id"), str) else None
+class Facts(NamedTuple):
+    """What the index keeps of a record besides its place."""
+
+    event: str | None
+    order_id: str | None
+    name: str | None  # the input file's name
+    claim: str | None  # final records only
+    ts: str | None
+    status: str | None  # a published record's status, a decided record's action
+
+
+def facts(record: dict[str, Any]) -> Facts:
+    """What the index keeps of a record: its event, order id, input file name, (final records) claim, time, and
+    the status it published with or the action a person decided."""
+    event = _text(record.get("event"))
     received = record.get("received")
     if isinstance(received, dict):  # one record per pass (this format)
         name, claim = received.get("file"), received.get("claim")
     else:  # the first format: received, change…, flag…, outcome as records of their own
         name = record.get("file")
         claim = record.get("claim") if event in OUTCOMES else None
-    return (event, order_id, name if isinstance(name, str) else None, claim if isinstance(claim, str) else None)
+    status = record.get("status") if event == "published" else record.get("action") if event == "decided" else None
+    return Facts(event, _text(record.get("order_id")), _text(name), _text(claim), _text(record.get("ts")),
+                 _text(status))
+
+
+def _text(value: Any) -> str | None:
+    return value if isinstance(value, str) else None
 
 
 class Index:
@@ -204,39 +238,50 @@ class Index:
         return added
 
     def add(self, placed: Iterable[tuple[dict[str, Any], int, int, int]]) -> None:
-        """Index records just written (or read): each with its file's first seq, its offset and length."""
+        """Index records just written (or read): each with its file's first seq, its offset and length.
+
+        Records the index already holds are left alone (a reader that caught up with the log while the
+        engine was writing it may have indexed them first).
+        """
+        db = self.db
+        db.execute("BEGIN IMMEDIATE")
+        try:
+            self._add(placed, self.meta("tail_seq") or 0)
+            db.execute("COMMIT")
+        except BaseException:
+            db.execute("ROLLBACK")
+            raise
+
+    def _add(self, placed: Iterable[tuple[dict[str, Any], int, int, int]], after: int) -> None:
         rows, defines, published, counts = [], [], [], {}
         heads: dict[int, tuple[int, str, int]] = {}
         last = None
         for record, first, offset, length in placed:
-            event, order_id, name, claim = facts(record)
             seq = record["seq"]
-            rows.append((seq, first, offset, length, event, order_id, name, claim))
-            if event == DEFINE_EVENT and isinstance(record.get("sha256"), str):
-                defines.append((ref_of(record["sha256"]), seq, record.get("kind")))
-            elif event == "published" and order_id is not None:
-                published.append((order_id, record.get("content_sha256"), seq))
-            counts[event] = counts.get(event, 0) + 1
+            if seq <= after:
+                continue
+            about = facts(record)
+            rows.append((seq, first, offset, length, *about))
+            if about.event == DEFINE_EVENT and isinstance(record.get("sha256"), str):
+                key, numbers = define_key(record)
+                defines.append((key, str(record.get("kind")), seq, numbers))
+            elif about.event == "published" and about.order_id is not None:
+                published.append((about.order_id, record.get("content_sha256"), seq))
+            counts[about.event] = counts.get(about.event, 0) + 1
             heads[first] = (seq, record["hash"], offset + length)
             last = (seq, record["hash"], first, offset, length)
         if last is None:
             return
         db = self.db
-        db.execute("BEGIN IMMEDIATE")
-        try:
-            db.executemany("INSERT OR REPLACE INTO records VALUES (?,?,?,?,?,?,?,?)", rows)
-            db.executemany("INSERT OR IGNORE INTO defines VALUES (?,?,?)", defines)
-            db.executemany("INSERT OR REPLACE INTO published VALUES (?,?,?)", published)
-            db.executemany("INSERT INTO counts VALUES (?, ?) ON CONFLICT(event) DO UPDATE SET n = n + excluded.n",
-                           [(event or "", n) for event, n in counts.items()])
-            db.executemany("INSERT OR REPLACE INTO files VALUES (?,?,?,?)",
-                           [(first, seq, digest, size) for first, (seq, digest, size) in heads.items()])
-            db.executemany("INSERT OR REPLACE INTO meta VALUES (?,?)", list(zip(
-                ("tail_seq", "tail_hash", "tail_file", "tail_offset", "tail_length"), last)))
-            db.execute("COMMIT")
-        except BaseException:
-            db.execute("ROLLBACK")
-            raise
+        db.executemany("INSERT OR REPLACE INTO records VALUES (?,?,?,?,?,?,?,?,?,?)", rows)
+        db.executemany("INSERT OR IGNORE INTO defines VALUES (?,?,?,?)", defines)
+        db.executemany("INSERT OR REPLACE INTO published VALUES (?,?,?)", published)
+        db.executemany("INSERT INTO counts VALUES (?, ?) ON CONFLICT(event) DO UPDATE SET n = n + excluded.n",
+                       [(event or "", n) for event, n in counts.items()])
+        db.executemany("INSERT OR REPLACE INTO files VALUES (?,?,?,?)",
+                       [(first, seq, digest, size) for first, (seq, digest, size) in heads.items()])
+        db.executemany("INSERT OR REPLACE INTO meta VALUES (?,?)", list(zip(
+            ("tail_seq", "tail_hash", "tail_file", "tail_offset", "tail_length"), last)))
 
     # -- questions -----------------------------------------------------------------
 
@@ -274,15 +319,32 @@ class Index:
     def is_published(self, order_id: str) -> bool:
         return self.db.execute("SELECT 1 FROM published WHERE order_id=?", (order_id,)).fetchone() is not None
 
-    def defined(self, ref: str) -> bool:
-        return self.db.execute("SELECT 1 FROM defines WHERE ref=?", (ref,)).fetchone() is not None
+    def define_of(self, kind: str, key: str) -> tuple[int, bytes | None] | None:
+        """The seq of the define record of ``kind`` found by ``key`` (:func:`lenslane.audit.records.define_key`),
+        and the numbers it holds."""
+        row = self.db.execute("SELECT seq, numbers FROM defines WHERE key=? AND kind=?", (key, kind)).fetchone()
+        return (row[0], row[1]) if row else None
 
-    def body(self, ref: str) -> Any:
-        """The body of a define record, read from the log (``KeyError`` when the log defines no such ref)."""
-        row = self.db.execute("SELECT r.seq, r.file, r.offset, r.length FROM defines d JOIN records r ON r.seq = d.seq "
-                              "WHERE d.ref=?", (ref,)).fetchone()
-        record = read_at(self.root, *row[1:]) if row else None
-        if record is None or ref_of(str(record.get("sha256"))) != ref:
+    def define_at(self, ref: int | str) -> tuple[int, str] | None:
+        """The seq and kind of the define a record refers to: by its seq, or (the second format) by the first
+        hex digits of its sha256."""
+        if isinstance(ref, str):
+            if len(ref) != REF_LENGTH:
+                return None
+            row = self.db.execute("SELECT seq, kind FROM defines WHERE key >= ? AND key < ? ORDER BY seq LIMIT 1",
+                                  (ref, ref + "g")).fetchone()
+        else:
+            row = self.db.execute("SELECT seq, kind FROM defines WHERE seq=?", (ref,)).fetchone()
+        return (row[0], row[1]) if row else None
+
+    def body(self, ref: int | str) -> Any:
+        """The body of the define record a record refers to, read from the log (``KeyError`` when the log
+        defines no such ref)."""
+        found = self.define_at(ref)
+        place = self.place(found[0]) if found else None
+        record = self.read(place) if place else None
+        if record is None or record.get("event") != DEFINE_EVENT or (
+                isinstance(ref, str) and not str(record.get("sha256")).startswith(ref)):
             raise KeyError(ref)
         return record["body"]
 
@@ -293,6 +355,34 @@ class Index:
             record = read_at(self.root, file, offset, length)
             if record is not None:
                 yield record
+
+    def outcomes_between(self, start: str, end: str) -> list[tuple[str, str | None, int]]:
+        """How many records of each event (and status or action) were written from ``start`` to before ``end``
+        (UTC times as the records write them), for outcomes and decisions."""
+        return self.db.execute(
+            "SELECT event, status, count(*) FROM records WHERE ts >= ? AND ts < ? "
+            "AND event IN ('published', 'rejected', 'held', 'skipped', 'decided') GROUP BY event, status",
+            (start, end)).fetchall()
+
+    def search(self, text: str, limit: int) -> list[tuple[str | None, str | None, str, str | None, str | None]]:
+        """The inputs whose order id or file name contains ``text`` (in any case), newest first: for each (order
+        id, file name), its last record's (order id, file name, event, status, time).
+
+        A text shorter than :data:`SEARCH_MIN` must be a whole order id or file name (with or without
+        ``.json``). Of the records it is found in, the newest :data:`SEARCH_RECORDS` are looked at.
+        """
+        if len(text) >= SEARCH_MIN:
+            found = "SELECT rowid FROM records_text WHERE records_text MATCH ? ORDER BY rowid DESC LIMIT ?"
+            arguments: tuple[Any, ...] = ('"' + text.replace('"', '""') + '"', SEARCH_RECORDS)
+        else:
+            found = "SELECT seq FROM records WHERE order_id IN (?, ?) UNION SELECT seq FROM records WHERE name IN (?, ?)"
+            arguments = (text, f"{text}.json") * 2
+        return self.db.execute(
+            f"WITH found(seq) AS ({found}),"
+            " last AS (SELECT max(seq) AS seq FROM records WHERE seq IN found AND event IN (?, ?, ?, ?, ?)"
+            "  GROUP BY order_id, name)"
+            " SELECT order_id, name, event, status, ts FROM records WHERE seq IN last ORDER BY seq DESC LIMIT ?",
+            (*arguments, *PASS_EVENTS, limit)).fetchall()
 
     def counts(self) -> dict[str, int]:
         return {event: n for event, n in self.db.execute("SELECT event, n FROM counts ORDER BY event")}

@@ -8,24 +8,38 @@ An order's pass through the engine is **one record** (``published``,
 ``rejected``, ``held`` or ``skipped``) holding what arrived (``received``: its
 own time, file, size, sha256, account, wearer ref, placed_at), the outcome, and
 the story: every change and flag. What repeats from order to order is written
-once into the chain as a ``define`` record and referred to by the first
-:data:`REF_LENGTH` hex digits of its sha256:
+once into the chain as a ``define`` record and referred to by its ``seq``:
 
-- a change's or flag's **shape**: its stage, field, method, source, the wording
-  of its texts and the keys of its values, with a hole where each number goes.
-  The record keeps ``[ref, [numbers…]]``; :func:`fill` puts the numbers back and
-  gives the change exactly as the stage made it;
+- a **change or flag**, whole, the first time one of its *form* occurs. Its form
+  is what stays when every number is cut out of its canonical JSON — the
+  numbers of its values and the numbers written in its texts alike — so stage,
+  field, method, source, the wording of its texts and the keys of its values.
+  An order's record writes each item as one text, ``"<seq> <mask> <numbers>"``:
+  the seq of the define of its form; ``mask``, hexadecimal, with bit *i* set
+  when the item's *i*-th number differs from the define's and is written here;
+  and those numbers, comma-separated, each exactly as the canonical JSON writes
+  it — or as ``@k`` when the same number came earlier in the story and that is
+  shorter, *k* being its place among all the numbers of the record's changes
+  and then its flags, from 0. So a number the define holds is not written, and
+  one the story already told is written as where it was. :func:`unpack` gives
+  the items back exactly as the stages made them;
 - the **run**: engine version, the chain of stages, the plugins' distributions
   and versions (the host's provenance), and the configuration in force (itself
   a ``define`` of kind ``config``).
 
 A define record holds ``sha256`` (of its body's canonical JSON) and the body, so
 a text cannot be swapped without breaking either that hash or the chain.
+
+The second format referred to a define by the first :data:`REF_LENGTH` hex
+digits of its sha256 and wrote a change or flag as ``[ref, [numbers…]]`` of a
+``shape`` define (the item with a hole where each number went); :func:`unpack`
+reads both.
 """
 from __future__ import annotations
 
 import hashlib
 import re
+from itertools import chain, compress, count
 from datetime import datetime, timezone
 from typing import Any, Callable
 
@@ -39,19 +53,22 @@ DEFINE_EVENT = "define"
 OUTCOMES = ("published", "rejected", "held", "skipped")
 #: The chain's own fields; an event may not carry them.
 CHAIN_FIELDS = frozenset({"seq", "ts", "prev", "hash"})
-#: How many hex digits of a define's sha256 name it in the records that refer to it.
+#: How many hex digits of a define's sha256 named it in the second format.
 REF_LENGTH = 16
-#: Fields of a change or flag whose text is the same for every order (kept whole in the shape).
-CONSTANT_TEXTS = frozenset({"method", "source"})
-#: Fields of an order record packed as shapes.
-STORY_FIELDS = ("changes", "flags")
+#: Fields of an order record packed as story items, and the kind of define each item refers to.
+STORY_FIELDS = {"changes": "change", "flags": "flag"}
 
 _CANONICAL = orjson.OPT_SORT_KEYS | orjson.OPT_SERIALIZE_NUMPY
-_NUMBER_IN_TEXT = re.compile(r"(-?\d+(?:\.\d+)?)")
-_DIGIT = re.compile(r"\d")
-_HOLE = "\x00"  # a number
-_TEXT = "\x01"  # a text with numbers: its pieces, joined by this character
-_ESCAPE = "\x02"  # a string of the order's own that starts with one of these three
+#: A number as canonical JSON writes it, in or out of a string: a minus (only before a digit) or a digit, more
+#: digits, a fraction, an exponent. (It starts with one character class, which the regex engine scans for quickly.)
+_NUMBER = rb"[-0-9](?<!-(?![0-9]))[0-9]*(?:\.[0-9]+)?(?:[eE][-+]?[0-9]+)?"
+_NUMBERS = re.compile(b"(" + _NUMBER + b")")  # captured: splitting keeps the numbers
+_WRITTEN = b"(?:" + _NUMBER + rb"|@[0-9]+)"
+_ITEM = re.compile(rb"([0-9]+) ([0-9a-f]+)(?: (" + _WRITTEN + b"(?:," + _WRITTEN + rb")*))?")
+_CUT = b"\x00"  # where a number was cut out of a form
+_APART = b"\x01"  # between the items of a story cut together
+# (Neither is ever in canonical JSON, which escapes control characters.)
+_BITS = bytes.maketrans(b"\x00\x01", b"01")
 
 
 def canonical(record: Any) -> bytes:
@@ -69,62 +86,193 @@ def utc_now() -> str:
 
 
 # --------------------------------------------------------------------------
-# Shapes: what is the same in every order, apart from what is not
+# Forms: a change or flag with its numbers cut out
 # --------------------------------------------------------------------------
 
 
-def shape_of(item: Any, key: str | None = None, values: list[Any] | None = None) -> tuple[Any, list[Any]]:
-    """Split a change or flag into its shape and its numbers (in canonical key order).
+def cut(items: list[Any]) -> list[tuple[str, list[bytes]]]:
+    """Cut the numbers out of story items: for each, its form's digest and its numbers (as the JSON writes them).
 
-    Examples
-    --------
-    >>> shape_of({"field": "sphere", "after": -4.2, "reason": "from -4.25 to -4.20"})
-    ({'after': '\\x00', 'field': 'sphere', 'reason': '\\x01from \\x01 to \\x01'}, [-4.2, -4.25, '-4.20'])
+    The items are serialised once each and cut together, in one pass of one regular expression.
+
+    >>> [numbers for _, numbers in cut([{"after": -4.2, "reason": "from -4.25 to -4.20"}, [7]])]
+    [[b'-4.2', b'-4.25', b'-4.20'], [b'7']]
     """
-    values = [] if values is None else values
-    return _shape(item, key, values), values
+    parts = _NUMBERS.split(_APART.join(canonical(item) for item in items))
+    numbers = parts[1::2]
+    out, start = [], 0
+    for form in _CUT.join(parts[0::2]).split(_APART)[:len(items)]:
+        end = start + form.count(_CUT)
+        out.append((hashlib.sha256(form).hexdigest(), numbers[start:end]))
+        start = end
+    return out
 
 
-def _shape(item: Any, key: str | None, values: list[Any]) -> Any:
-    kind = type(item)
-    if kind is float or kind is int:
-        values.append(item)
-        return _HOLE
-    if kind is str:
-        if key not in CONSTANT_TEXTS and _TEXT not in item and _DIGIT.search(item):
-            pieces = _NUMBER_IN_TEXT.split(item)
-            values.extend(_as_number(token) for token in pieces[1::2])
-            return _TEXT + _TEXT.join(pieces[0::2])
-        return _ESCAPE + item if item[:1] in (_HOLE, _TEXT, _ESCAPE) else item
-    if kind is dict:
-        return {k: _shape(item[k], k, values) for k in sorted(item)}
-    if kind is list or kind is tuple:
-        return [_shape(part, key, values) for part in item]
-    if item is None or kind is bool:
-        return item
-    if isinstance(item, (int, float)) and not isinstance(item, bool):  # a numpy scalar, say
-        values.append(item.item() if hasattr(item, "item") else item)
-        return _HOLE
-    if hasattr(item, "tolist"):  # a numpy array
-        return _shape(item.tolist(), key, values)
-    raise TypeError(f"cannot record a {type(item).__name__} in the audit log")
+def define_key(record: dict[str, Any]) -> tuple[str, bytes | None]:
+    """What a define record is found by when a record refers to it again, and the numbers it holds.
+
+    A change or flag is found by its form's digest and holds the numbers of the
+    order that first had it; a run or configuration by its sha256.
+    """
+    if record.get("kind") in STORY_FIELDS.values():
+        [(digest, numbers)] = cut([record.get("body")])
+        return digest, b",".join(numbers)
+    return str(record.get("sha256")), None
 
 
-def _as_number(token: str) -> int | float | str:
-    """A number as written in a text: as a JSON number when that writes it back the same, else as it is."""
-    if len(token) <= 15:
-        number = int(token) if "." not in token else float(token)
-        if str(number) == token:
-            return number
-    return token
+#: ``refer(kind, body, key, numbers)`` → the seq of the define of that kind and key (to be written before the
+#: batch's records when the chain does not hold one yet) and the numbers it holds, comma-separated.
+Refer = Callable[[str, Any, str, "list[bytes] | None"], "tuple[int, bytes | None]"]
+
+
+class Packer:
+    """Packs the events of one batch as they are written: each story as items referring to defines, each run
+    as the seq of its define.
+
+    ``refer`` finds (or writes) the define record of each change's and flag's
+    form, of the run and of the configuration; within the batch it is asked
+    once for each, and a run shared by the batch's events is serialised once.
+    """
+
+    def __init__(self, refer: Refer):
+        self.refer = refer
+        self.asked: dict[tuple[str, str], tuple[int, bytes | None]] = {}
+        self.runs: dict[int, int] = {}  # the seq of the run define, by the identity of the run dict
+
+    def find(self, kind: str, body: Any, key: str, numbers: list[bytes] | None) -> tuple[int, bytes | None]:
+        if (kind, key) not in self.asked:
+            self.asked[kind, key] = self.refer(kind, body, key, numbers)
+        return self.asked[kind, key]
+
+    def pack(self, event: dict[str, Any]) -> dict[str, Any]:
+        packed = dict(event)
+        story = [(name, kind) for name, kind in STORY_FIELDS.items() if isinstance(packed.get(name), list)]
+        items = [(kind, item) for name, kind in story for item in packed[name]]
+        forms = cut([item for _, item in items])
+        defines = [self.find(kind, item, digest, numbers) for (kind, item), (digest, numbers) in zip(items, forms)]
+        texts = iter(_item_texts(defines, [numbers for _, numbers in forms]))
+        for name, _ in story:
+            packed[name] = [next(texts) for _ in packed[name]]
+        run = packed.get("run")
+        if isinstance(run, dict):
+            if id(run) not in self.runs:
+                whole = dict(run)
+                if isinstance(whole.get("config"), dict):
+                    whole["config"] = self._refer_whole("config", whole["config"])
+                self.runs[id(run)] = self._refer_whole("run", whole)
+            packed["run"] = self.runs[id(run)]
+        return packed
+
+    def _refer_whole(self, kind: str, body: Any) -> int:
+        seq, _ = self.find(kind, body, hashlib.sha256(canonical(body)).hexdigest(), None)
+        return seq
+
+
+def _item_texts(defines: list[tuple[int, bytes | None]], numbers: list[list[bytes]]) -> list[str]:
+    """Each story item as ``"<seq> <mask> <numbers>"``, from its define (seq and numbers) and its own numbers:
+    which differ from the define's, and how each of those is written (itself, or ``@k`` where shorter)."""
+    told = list(chain.from_iterable(numbers))  # the story's numbers, in order
+    first = dict(zip(reversed(told), range(len(told) - 1, -1, -1)))  # each one's first place among them
+    defined = chain.from_iterable(found.split(b",") if found else () for _, found in defines)
+    differs = list(map(bytes.__ne__, told, defined))
+    places = list(compress(count(), differs))
+    written = [number if first[number] == place else _shorter(number, first[number])
+               for number, place in zip(compress(told, differs), places)]
+    masks = _mask(differs)  # bit i: the story's i-th number differs from its define's
+    texts, start, done = [], 0, 0
+    for (seq, _), own in zip(defines, numbers):
+        mask = masks >> start & ((1 << len(own)) - 1)
+        if mask:
+            end = done + mask.bit_count()
+            texts.append("%d %x %s" % (seq, mask, b",".join(written[done:end]).decode()))
+            done = end
+        else:
+            texts.append(f"{seq} 0")
+        start += len(own)
+    return texts
+
+
+def _shorter(number: bytes, earlier: int) -> bytes:
+    """A number told before, as written again: ``@k`` (its first place) when that is shorter."""
+    ref = b"@%d" % earlier
+    return ref if len(ref) < len(number) else number
+
+
+def _mask(bits: list[bool]) -> int:
+    """The number whose bit i is ``bits[i]``."""
+    return int(b"0" + bytes(reversed(bits)).translate(_BITS), 2)
+
+
+def define(kind: str, body: Any) -> dict[str, Any]:
+    """A record that writes a body into the chain once; records refer to it by its seq."""
+    body = orjson.loads(canonical(body))  # as the log holds it
+    return {"event": DEFINE_EVENT, "kind": kind, "sha256": hashlib.sha256(canonical(body)).hexdigest(), "body": body}
+
+
+def ref_of(sha256: str) -> str:
+    """How the second format named a define: the first :data:`REF_LENGTH` hex digits of its sha256."""
+    return sha256[:REF_LENGTH]
+
+
+def run_definition(provenance: dict[str, Any], config: dict[str, Any]) -> dict[str, Any]:
+    """What ran an order: the host's provenance (the engine's version, the config's digest, the chain and each
+    stage's distribution and version, the plugins taking part through hooks) and the configuration itself."""
+    return {**provenance, "config": config}
+
+
+# --------------------------------------------------------------------------
+# Reading a story back
+# --------------------------------------------------------------------------
+
+
+def _is_ref(value: Any) -> bool:
+    return type(value) is int or isinstance(value, str)
+
+
+def unpack(record: dict[str, Any], body_of: Callable[[int | str], Any]) -> dict[str, Any]:
+    """An order's record with its story and run filled in from the define records (``body_of(ref)``).
+
+    Raises ``ValueError`` for a story item that does not fit its define.
+    """
+    if not any(isinstance(record.get(name), list) for name in STORY_FIELDS) and not _is_ref(record.get("run")):
+        return record
+    whole = dict(record)
+    told: list[bytes] = []  # the story's numbers so far, for @k
+    for name in STORY_FIELDS:
+        items = whole.get(name)
+        if isinstance(items, list):
+            whole[name] = [_fill_item(item, body_of, told) if isinstance(item, str) else fill(body_of(item[0]), item[1])
+                           for item in items]
+    if _is_ref(whole.get("run")):
+        whole["run"] = dict(body_of(whole["run"]))
+    return whole
+
+
+def _fill_item(text: str, body_of: Callable[[int], Any], told: list[bytes]) -> Any:
+    match = _ITEM.fullmatch(text.encode("ascii", "replace"))
+    if match is None:
+        raise ValueError(f"not a story item: {text!r}")
+    mask = int(match.group(2), 16)
+    written = match.group(3).split(b",") if match.group(3) else []
+    parts = _NUMBERS.split(canonical(body_of(int(match.group(1)))))
+    holes = len(parts) // 2
+    if mask >> holes or mask.bit_count() != len(written):
+        raise ValueError(f"the story item {text!r} does not fit its define")
+    numbers = iter(written)
+    for place in range(holes):
+        if mask >> place & 1:
+            number = next(numbers)
+            if number[:1] == b"@":
+                if int(number[1:]) >= len(told):
+                    raise ValueError(f"the story item {text!r} refers to a number not told before it")
+                number = told[int(number[1:])]
+            parts[2 * place + 1] = number
+        told.append(parts[2 * place + 1])
+    return orjson.loads(b"".join(parts))
 
 
 def fill(shape: Any, values: list[Any]) -> Any:
-    """The item :func:`shape_of` split, whole again.
-
-    >>> fill(*shape_of({"a": [1, 2.5], "t": "edge 1.7–4.2 mm", "s": "\\x00x"}))
-    {'a': [1, 2.5], 's': '\\x00x', 't': 'edge 1.7–4.2 mm'}
-    """
+    """A second-format item whole again: its ``shape`` define with its numbers put back into the holes."""
     numbers = iter(values)
     item = _fill(shape, numbers)
     if next(numbers, _END) is not _END:
@@ -133,6 +281,9 @@ def fill(shape: Any, values: list[Any]) -> Any:
 
 
 _END = object()
+_HOLE = "\x00"  # second format: a number
+_TEXT = "\x01"  # second format: a text with numbers, its pieces joined by this character
+_ESCAPE = "\x02"  # second format: a string of the order's own that started with one of these three
 
 
 def _fill(shape: Any, numbers) -> Any:
@@ -154,89 +305,29 @@ def _fill(shape: Any, numbers) -> Any:
     return shape
 
 
-# --------------------------------------------------------------------------
-# Define records and packing an order's record
-# --------------------------------------------------------------------------
-
-
-def define(kind: str, body: Any) -> dict[str, Any]:
-    """A record that writes ``body`` into the chain once; others refer to it by :func:`ref_of` its sha256."""
-    return {"event": DEFINE_EVENT, "kind": kind, "sha256": hashlib.sha256(canonical(body)).hexdigest(), "body": body}
-
-
-def ref_of(sha256: str) -> str:
-    return sha256[:REF_LENGTH]
-
-
-def run_definition(provenance: dict[str, Any], config: dict[str, Any]) -> dict[str, Any]:
-    """What ran an order: the host's provenance (the engine's version, the config's digest, the chain and each
-    stage's distribution and version, the plugins taking part through hooks) and the configuration itself."""
-    return {**provenance, "config": config}
-
-
-def pack(event: dict[str, Any], known: Callable[[str], bool]) -> list[dict[str, Any]]:
-    """The records to append for one event: the define records it needs that ``known`` does not know, then it.
-
-    An order's ``changes`` and ``flags`` become ``[ref, numbers]`` pairs; a
-    ``run`` dict becomes the ref of its define record, and the run's
-    ``config`` the ref of its own. ``known(ref)`` says whether the chain (or
-    this batch) already holds that define; it is told of each new one.
-    """
-    out: list[dict[str, Any]] = []
-
-    def refer(kind: str, body: Any) -> str:
-        record = define(kind, body)
-        ref = ref_of(record["sha256"])
-        if not known(ref):
-            out.append(record)
-        return ref
-
-    packed = dict(event)
-    for name in STORY_FIELDS:
-        if isinstance(packed.get(name), list):
-            pairs = []
-            for item in packed[name]:
-                shape, values = shape_of(item)
-                pairs.append([refer("shape", shape), values])
-            packed[name] = pairs
-    run = packed.get("run")
-    if isinstance(run, dict):
-        run = dict(run)
-        if isinstance(run.get("config"), dict):
-            run["config"] = refer("config", run["config"])
-        packed["run"] = refer("run", run)
-    out.append(packed)
-    return out
-
-
-def unpack(record: dict[str, Any], body_of: Callable[[str], Any]) -> dict[str, Any]:
-    """An order's record with its story filled in from the define records (``body_of(ref)``)."""
-    if not any(isinstance(record.get(name), list) for name in STORY_FIELDS) and not isinstance(record.get("run"), str):
-        return record
-    whole = dict(record)
-    for name in STORY_FIELDS:
-        if isinstance(whole.get(name), list):
-            whole[name] = [fill(body_of(ref), values) for ref, values in whole[name]]
-    if isinstance(whole.get("run"), str):
-        run = dict(body_of(whole["run"]))
-        whole["run"] = run
-    return whole
-
-
-def refs_in(record: dict[str, Any]) -> list[str | None]:
-    """The define refs a record refers to (``None`` for a story item that is not a ``[ref, numbers]`` pair)."""
-    refs: list[str | None] = []
-    for name in STORY_FIELDS:
+def refs_in(record: dict[str, Any]) -> list[tuple[int | str | None, str]]:
+    """The defines a record refers to, each with the kind it must be (``None`` for a story item that names none)."""
+    refs: list[tuple[int | str | None, str]] = []
+    for name, kind in STORY_FIELDS.items():
         items = record.get(name)
         if type(items) is list:
-            refs += [pair[0] if type(pair) is list and pair and type(pair[0]) is str else None for pair in items]
-    if isinstance(record.get("run"), str):
-        refs.append(record["run"])
+            refs += [_item_ref(item, kind) for item in items]
+    if _is_ref(record.get("run")):
+        refs.append((record["run"], "run"))
     if record.get("event") == DEFINE_EVENT and record.get("kind") == "run":
         body = record.get("body")
-        if isinstance(body, dict) and isinstance(body.get("config"), str):
-            refs.append(body["config"])
+        if isinstance(body, dict) and _is_ref(body.get("config")):
+            refs.append((body["config"], "config"))
     return refs
+
+
+def _item_ref(item: Any, kind: str) -> tuple[int | str | None, str]:
+    if isinstance(item, str):
+        head = item.partition(" ")[0]
+        return (int(head) if head.isdigit() and head.isascii() else None), kind
+    if type(item) is list and item and isinstance(item[0], str):  # the second format: [ref, numbers]
+        return item[0], "shape"
+    return None, kind
 
 
 # --------------------------------------------------------------------------

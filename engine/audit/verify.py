@@ -20,7 +20,7 @@ from lenslane.audit.results import WATCHED, Placed, ResultFiles, check as check_
 from lenslane.audit.reader import (
     ROTATED_RE, Line, audit_files, file_of, iter_lines, parse_record, read_tail, rotated_name,
 )
-from lenslane.audit.records import DEFINE_EVENT, GENESIS, OUTCOMES, TORN_EVENT, canonical, record_hash, ref_of, refs_in
+from lenslane.audit.records import DEFINE_EVENT, GENESIS, TORN_EVENT, canonical, record_hash, ref_of, refs_in
 
 _HASH_SUFFIX = len(b',"hash":"') + 64 + len(b'"}\n')
 
@@ -111,7 +111,7 @@ class _ChainWalker:
         self.pending: list[Line] = []  # lines that are not records, waiting for their torn-line record
         self.seen: dict[int, str] = {}  # seq → where, for seqs found missing earlier: a reordering, not a removal
         self.gaps: list[tuple[Finding, range]] = []
-        self.defined: set[str] = set()
+        self.defined: dict[int | str, str] = {}  # each define walked, by seq and by its sha256's first digits → kind
 
     @property
     def last_seq(self) -> int:
@@ -167,18 +167,22 @@ class _ChainWalker:
             if not isinstance(digest, str) or hashlib.sha256(canonical(record.get("body"))).hexdigest() != digest:
                 self._break(line, record["seq"], "edited", "a define record whose body does not match its sha256")
                 return
-            self.defined.add(ref_of(digest))
-        refs = refs_in(record)
-        if refs and not self.defined.issuperset(refs):
-            for ref in refs:
-                if ref not in self.defined and not (ref and self.index is not None and self._defined_before(ref)):
-                    self._break(line, record["seq"], "undefined",
-                                f"refers to {ref}, which no define record before it holds")
-                    break
+            self.defined[record["seq"]] = self.defined[ref_of(digest)] = str(record.get("kind"))
+        for ref, kind in refs_in(record):
+            found = self.defined.get(ref) if ref is not None else None
+            if found is None and ref is not None and self.index is not None:
+                found = self._defined_before(ref)
+                if found is not None:  # a define from before the walk's start, known from now on
+                    self.defined[ref] = found
+            if found != kind:
+                what = f"refers to {ref!r}, which no define record before it holds" if found is None else (
+                    f"refers to {ref!r} as a {kind}, but that define record holds a {found}")
+                self._break(line, record["seq"], "undefined", what)
+                break
 
-    def _defined_before(self, ref: str) -> bool:
-        row = self.index.db.execute("SELECT seq FROM defines WHERE ref=?", (ref,)).fetchone()
-        return row is not None and row[0] <= self.report.first_seq - 1
+    def _defined_before(self, ref: int | str) -> str | None:
+        found = self.index.define_at(ref)
+        return found[1] if found is not None and found[0] < self.report.first_seq else None
 
     def _link(self, line: Line) -> None:
         record = line.record

@@ -21,7 +21,7 @@ from typing import Any, Iterable
 
 from lenslane.audit.index import Index
 from lenslane.audit.reader import AUDIT_NAME, audit_files, first_record, read_tail, rotated_name
-from lenslane.audit.records import CHAIN_FIELDS, GENESIS, TORN_EVENT, canonical, pack, utc_now
+from lenslane.audit.records import CHAIN_FIELDS, GENESIS, TORN_EVENT, Packer, canonical, define, utc_now
 from lenslane.lab.files import fsync_dir, write_all
 
 #: How much of the first record's timestamp names the rotation period.
@@ -103,8 +103,8 @@ class AuditLog:
     def append(self, events: Iterable[dict[str, Any]]) -> list[dict[str, Any]]:
         """Chain, write and fsync a batch of events; returns the records as written.
 
-        An order's event is packed first (:func:`lenslane.audit.records.pack`):
-        the define records its story needs and the chain does not hold yet are
+        Each event is packed first (:class:`lenslane.audit.records.Packer`): the
+        define records its story needs and the chain does not hold yet are
         written just before it, in the same write.
 
         Raises
@@ -114,15 +114,18 @@ class AuditLog:
         """
         if self._must_reload:  # a failed write may have left a torn line, or whole records not yet indexed
             self._load()
-        pending: set[str] = set()
+        records: list[dict[str, Any]] = []
 
-        def known(ref: str) -> bool:
-            if ref in pending or self.index.defined(ref):
-                return True
-            pending.add(ref)
-            return False
+        def refer(kind: str, body: Any, key: str, numbers: list[bytes] | None) -> tuple[int, bytes | None]:
+            found = self.index.define_of(kind, key)
+            if found is None:
+                records.append(define(kind, body))
+                found = (self.seq + len(records), None if numbers is None else b",".join(numbers))
+            return found
 
-        records = [packed for event in events for packed in pack(event, known)]
+        packer = Packer(refer)
+        for event in events:
+            records.append(packer.pack(event))
         return self._commit(records)
 
     def _commit(self, events: list[dict[str, Any]], prefix: bytes = b"") -> list[dict[str, Any]]:

@@ -53,7 +53,8 @@ def _one_record_pass(record: dict[str, Any]) -> _Processing:
                           + [{"event": "flag", "seq": seq, **flag} for flag in record.get("flags") or []])
     run = record.get("run") if isinstance(record.get("run"), dict) else {}
     # The outcome tells the run as a first-format outcome record did: its fields beside the outcome's.
-    processing.outcome = {**run, "config_ref": run.get("config") if isinstance(run.get("config"), str) else None,
+    config = run.get("config")  # the ref of its define: a seq, or (second format) the first digits of its sha256
+    processing.outcome = {**run, "config_ref": config if isinstance(config, (int, str)) else None,
                           **{k: v for k, v in record.items() if k != "run"}}
     return processing
 

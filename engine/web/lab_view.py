@@ -1,32 +1,32 @@
 """What the web page reads of a lab besides one order's story: today's counts and the search.
 
-Both read the audit log (:func:`lenslane.audit.log.iter_records`), the lab's one
-source of truth, and nothing else, walking it from the start (in either of its
-formats: one record per pass, or the first one's record per event).
+Both are answered by the lab's audit index (:class:`lenslane.audit.index.Index`),
+derived from the audit log — the lab's one source of truth — and first brought
+level with it, so neither reads the log from its start, however long it is.
+They read records in either of the log's formats (one record per pass, or the
+first one's record per event).
 """
 from __future__ import annotations
 
+import contextlib
 from collections import Counter
-from datetime import date, datetime
+from datetime import date, datetime, time, timedelta, timezone
 from pathlib import Path
-from typing import Any, NamedTuple
+from typing import NamedTuple
 
-from lenslane.audit.log import iter_records
-from lenslane.vocabulary import OUTCOMES
+from lenslane.audit.index import Index
 
 #: At most this many search hits are listed.
 SEARCH_LIMIT = 100
 
 
-def _local_day(timestamp: str | None) -> date | None:
-    try:
-        return datetime.fromisoformat(str(timestamp).replace("Z", "+00:00")).astimezone().date()
-    except ValueError:
-        return None
+def _utc_start(day: date) -> str:
+    """The lab's local midnight starting ``day``, as a record's UTC time is written."""
+    return datetime.combine(day, time.min).astimezone().astimezone(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
 
 def counts_today(lab_root: Path, today: date | None = None) -> dict[str, int]:
-    """What became of orders today (the lab's local day), from the audit log.
+    """What became of orders today (the lab's local day), from the audit index.
 
     ``published``: results made without a person plus results a person
     approved; ``review``: results that went to review; ``rejected``: orders
@@ -34,17 +34,17 @@ def counts_today(lab_root: Path, today: date | None = None) -> dict[str, int]:
     published orders held for a person.
     """
     today = today or date.today()
+    with contextlib.closing(Index(Path(lab_root))) as index:
+        index.catch_up()
+        tally = index.outcomes_between(_utc_start(today), _utc_start(today + timedelta(days=1)))
     counted: Counter[str] = Counter()
-    for record in iter_records(Path(lab_root)):
-        event = record.get("event")
-        if event not in OUTCOMES and event != "decided" or _local_day(record.get("ts")) != today:
-            continue
+    for event, status, n in tally:
         if event == "published":
-            counted["review" if record.get("status") == "review" else "published"] += 1
+            counted["review" if status == "review" else "published"] += n
         elif event == "decided":
-            counted[{"approve": "published", "refuse": "rejected"}.get(record.get("action"), "")] += 1
+            counted[{"approve": "published", "refuse": "rejected"}.get(status or "", "")] += n
         else:
-            counted[event] += 1
+            counted[event] += n
     return {outcome: counted[outcome] for outcome in ("published", "review", "rejected", "held")}
 
 
@@ -64,28 +64,13 @@ class Hit(NamedTuple):
 
 
 def search(lab_root: Path, text: str) -> list[Hit]:
-    """Inputs whose order id or input file name contains ``text`` (case-insensitive), newest first."""
-    wanted = text.strip().lower()
+    """Inputs whose order id or input file name contains ``text`` (in any case; a text of one or two characters
+    must be a whole id or name), newest first, from the audit index."""
+    wanted = text.strip()
     if not wanted:
         return []
-    found: dict[tuple[str | None, str], dict[str, Any]] = {}
-    files: dict[Any, tuple[str | None, str]] = {}
-    for record in iter_records(Path(lab_root)):
-        event = record.get("event")
-        arrived = record.get("received")
-        if isinstance(arrived, dict):  # one record per pass: what arrived is in its outcome's record
-            key = (record.get("order_id"), str(arrived.get("file") or ""))
-            if event in OUTCOMES and (wanted in str(key[0] or "").lower() or wanted in key[1].lower()):
-                found[key] = {"outcome": record.get("status") or event, "ts": record.get("ts") or ""}
-        elif event == "received":  # the first format: a record per event
-            key = (record.get("order_id"), str(record.get("file") or ""))
-            files[record.get("claim")] = key
-            if wanted in str(key[0] or "").lower() or wanted in key[1].lower():
-                found[key] = {"outcome": "unfinished", "ts": record.get("ts") or ""}
-        elif event in OUTCOMES:
-            key = files.get(record.get("claim"), (record.get("order_id"), str(record.get("file") or "")))
-            if key in found:
-                found[key] = {"outcome": record.get("status") or event, "ts": record.get("ts") or ""}
-    hits = [Hit(order_id, file, seen["outcome"], seen["ts"]) for (order_id, file), seen in found.items()]
-    hits.sort(key=lambda hit: hit.recorded_at, reverse=True)
-    return hits[:SEARCH_LIMIT]
+    with contextlib.closing(Index(Path(lab_root))) as index:
+        index.catch_up()
+        found = index.search(wanted, SEARCH_LIMIT)
+    return [Hit(order_id, name or "", "unfinished" if event == "received" else status or event, ts or "")
+            for order_id, name, event, status, ts in found]

@@ -56,7 +56,7 @@ def test_an_edit_with_a_recomputed_hash_breaks_the_link_to_the_next_record(busy_
     lines = log_lines(busy_lab)
     index = middle_change_line(lines)
     record = json.loads(lines[index])
-    record["changes"][0][1][-1] -= 0.25  # the first change's last number
+    record["changes"].reverse()  # the story told in another order
     record["hash"] = record_hash(record)
     lines[index] = canonical(record)
     rewrite(busy_lab, lines)
@@ -183,7 +183,7 @@ def test_a_result_no_record_accounts_for_is_a_failure(busy_lab, capsys):
 
 
 def test_a_rotated_log_verifies_across_files_and_a_removed_file_is_caught(make_lab, drop, order_dict, capsys):
-    lab = make_lab({"audit": {"rotate_bytes": 4000}})
+    lab = make_lab({"audit": {"rotate_bytes": 1500}})
     for number in range(1, 7):
         order = copy.deepcopy(order_dict)
         order["order_id"] = f"ROT-{number:04d}"
@@ -204,3 +204,19 @@ def test_a_rotated_log_verifies_across_files_and_a_removed_file_is_caught(make_l
     (lab.root / rotated[0]).unlink()
     code, out = verify_cli(lab, capsys, "--full")
     assert code == 1 and "the chain starts with seq" in out[0] and "oldest audit files" in out[0]
+
+
+def test_a_reference_must_name_a_define_of_its_kind_written_before_it(busy_lab, capsys):
+    lines = log_lines(busy_lab)
+    records = [json.loads(line) for line in lines]
+    published = [r for r in records if r["event"] == "published"][-1]
+    flag_define = next(r["seq"] for r in records if r["event"] == "define" and r["kind"] == "flag")
+    for item, problem in ((f"{flag_define} 0", f"refers to {flag_define} as a change, but that define record holds "
+                                               "a flag"),
+                          (f"{len(records) + 5} 0", f"refers to {len(records) + 5}, which no define record before it")):
+        forged = {k: v for k, v in published.items() if k != "hash"}
+        forged.update(seq=len(records) + 1, prev=records[-1]["hash"], changes=[item, *published["changes"][1:]])
+        forged["hash"] = record_hash(forged)
+        rewrite(busy_lab, [*lines, canonical(forged)])
+        code, out = verify_cli(busy_lab, capsys, "--full")
+        assert code == 1 and problem in out[0], out

@@ -14,6 +14,8 @@ Then it measures, against an empty lab where it says so:
   its peak RSS;
 - ``explain``: the work of telling one order's story after the process has
   started (index opened, records read, story built), over 50 random orders;
+- the web page's search (a part of an order id, a part of a file name) and
+  its counts of the day, answered by the index;
 - ``audit verify --full`` (MB/s), then a day's records (5 000 orders) appended
   and ``audit verify`` from the point verified before.
 
@@ -116,8 +118,22 @@ first = time.perf_counter()
 fresh = render(order_story(lab, f"order-{count - 1:07d}.json"))
 first = time.perf_counter() - first
 times.sort()
+from lenslane.web.lab_view import counts_today, search
+searches = []
+for _ in range(20):  # what the web page asks: part of an order id, part of a file name
+    number = rng.randrange(count)
+    for text in (f"hist-{number:07d}"[:9], f"der-{number:07d}"):
+        started = time.perf_counter()
+        hits = search(lab, text)
+        searches.append(time.perf_counter() - started)
+        assert hits, text
+searches.sort()
+started = time.perf_counter()
+counts_today(lab)
+counts = time.perf_counter() - started
 print(json.dumps({"median_ms": 1000 * times[25], "max_ms": 1000 * times[-1], "by_file_name_ms": 1000 * first,
-                  "rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+                  "search_median_ms": 1000 * searches[20], "search_max_ms": 1000 * searches[-1],
+                  "counts_ms": 1000 * counts, "rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
 """
 
 
@@ -135,10 +151,13 @@ def main() -> int:
             subprocess.run([*lenslane, "init", str(lab)], check=True, stdout=subprocess.DEVNULL)
         seconds = build(big, args.orders, note="built")
         size = sum(p.stat().st_size for p in big.glob("audit*.jsonl"))
+        defines = sum(len(line) for p in big.glob("audit*.jsonl") for line in open(p, "rb")
+                      if line.startswith(b'{"body":'))  # a define record: the only one with a body
         index_size = (big / "audit.sqlite").stat().st_size
         print(f"history: {args.orders} orders written in {seconds:.0f} s ({args.orders / seconds:.0f} orders/s); "
               f"log {size / 1e6:.0f} MB in {len(list(big.glob('audit*.jsonl')))} files = "
-              f"{size / args.orders:.0f} bytes per order; index {index_size / 1e6:.0f} MB")
+              f"{size / args.orders:.0f} bytes per order ({(size - defines) / args.orders:.0f} in the orders' own "
+              f"records, {defines / args.orders:.1f} in define records); index {index_size / 1e6:.0f} MB")
 
         starts = {}
         for name, lab in (("empty", empty), ("history", big)):
@@ -152,6 +171,9 @@ def main() -> int:
         probe = json.loads(out)
         print(f"explain after start: median {probe['median_ms']:.1f} ms, worst {probe['max_ms']:.1f} ms of 50 random "
               f"orders; by input file name {probe['by_file_name_ms']:.1f} ms; peak RSS {rss:.0f} MB")
+        print(f"web page: search by part of an order id or file name median {probe['search_median_ms']:.1f} ms, worst "
+              f"{probe['search_max_ms']:.1f} ms of 40; today's counts {probe['counts_ms']:.0f} ms (every order of "
+              "the history was written today)")
 
         full_s, full_rss, out = timed([*lenslane, "audit", "verify", str(big), "--full"])
         print(f"audit verify --full: {full_s:.1f} s, {size / 1e6 / full_s:.0f} MB/s, peak RSS {full_rss:.0f} MB "

@@ -36,7 +36,8 @@ def records(lab: Path, event: str, order_id: str | None = None) -> list[dict[str
     may not be in the index yet.
     """
     log = list(iter_records(lab))
-    bodies = {ref_of(r["sha256"]): r["body"] for r in log if r.get("event") == DEFINE_EVENT}
+    # A define is referred to by its seq (and, in the second format, by the first digits of its sha256).
+    bodies = {ref: r["body"] for r in log if r.get("event") == DEFINE_EVENT for ref in (r["seq"], ref_of(r["sha256"]))}
     found = [r for r in log if r.get("event") == event and (order_id is None or r.get("order_id") == order_id)]
     whole = [unpack(r, bodies.__getitem__) for r in found]
     return [{**r["run"], **r} if isinstance(r.get("run"), dict) else r for r in whole]
