@@ -7,6 +7,7 @@ proposals; the pipeline applies the changes in order and records each one.
 from __future__ import annotations
 
 import dataclasses
+import re
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Callable, Iterable, Mapping
 
@@ -95,18 +96,18 @@ class Stage:
     writes: tuple[str, ...] = ()
     params: type["BaseModel"] | None = None
     description: str = ""
-    #: ``writes``, each pattern split at its dots once, when the stage is made.
-    _patterns: tuple[tuple[str, ...], ...] = dataclasses.field(init=False, repr=False, compare=False, default=())
+    #: ``writes`` as one regular expression, compiled once when the stage is made (``None``: it writes nothing).
+    _writable: re.Pattern[str] | None = dataclasses.field(init=False, repr=False, compare=False, default=None)
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "_patterns", tuple(tuple(pattern.split(".")) for pattern in self.writes))
+        # A "*" is one segment (any text without a dot); a field inside a writable one is writable too.
+        patterns = [r"\.".join("[^.]*" if part == "*" else re.escape(part) for part in pattern.split("."))
+                    for pattern in self.writes]
+        if patterns:
+            object.__setattr__(self, "_writable", re.compile(rf"(?:{'|'.join(patterns)})(?:\.|\Z)"))
 
     def may_write(self, field_path: str) -> bool:
-        parts = field_path.split(".")
-        for want in self._patterns:
-            if len(parts) >= len(want) and all(w == "*" or w == p for w, p in zip(want, parts)):
-                return True
-        return False
+        return self._writable is not None and self._writable.match(field_path) is not None
 
 
 _MISSING = object()

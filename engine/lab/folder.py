@@ -191,7 +191,9 @@ class Lab:
         if opened is not None and (info.st_ino, info.st_size, info.st_mtime_ns) != (
                 opened.st_ino, opened.st_size, opened.st_mtime_ns):
             examined = None  # not the bytes that were read: read the claimed file itself
-        return self.process_claimed(work_name, info, examined)
+        # A claim made just now has no final record to look up: its key (the inode and the change time this
+        # rename gave it) is new. Only an input found in work/ (a redo, a retry) may have one.
+        return self._process(work_name, info, self._claimed(work_name, info), examined)
 
     def _still_aside(self, name: str) -> bool:
         try:
@@ -210,17 +212,24 @@ class Lab:
         Interrupted
             A stop was asked while a stage ran; the input is still in ``work/``.
         """
-        path = f"{self._work}/{work_name}"
         if info is None:
             try:
-                info = os.lstat(path)
+                info = os.lstat(f"{self._work}/{work_name}")
             except FileNotFoundError:
                 return None
-        claimed = Claimed(work_name, self.claims.original_name(work_name), claim_key(info), redo)
+        claimed = self._claimed(work_name, info, redo)
         done = self.history.final_record(claimed.claim)
         if done is not None:
             self.commits.move_input(work_name, done.input, claimed.claim)
             return Processed(printable(claimed.name), done.outcome, done.order_id, done.status, redo=True)
+        return self._process(work_name, info, claimed, examined)
+
+    def _claimed(self, work_name: str, info: os.stat_result, redo: bool = False) -> Claimed:
+        return Claimed(work_name, self.claims.original_name(work_name), claim_key(info), redo)
+
+    def _process(self, work_name: str, info: os.stat_result, claimed: Claimed, examined: Examined | None) -> Processed:
+        """Examine ``work/<work_name>`` (unless its bytes were examined on arrival) and decide its end."""
+        path = f"{self._work}/{work_name}"
         if examined is None:
             try:
                 examined = examine_claimed(path, info, self.config.watch.max_order_bytes, self.host.settings.materials)

@@ -454,9 +454,9 @@ def _volume_stride(count: int) -> int:
 class _Layout(NamedTuple):
     """Where the points of an outline of ``count`` radii sit (the right lens's view).
 
-    ``cosines`` / ``sines``: cos θ and sin θ of the ``count`` outline points
-    first, then of the quadrature nodes, ``RADIAL_NODES`` on every ``stride``-th
-    radius; ``row``: the node weights of one sampled radius, including its share
+    ``cosines`` / ``sines``: cos θ and sin θ of the ``count`` radii (the
+    quadrature's nodes lie ``RADIAL_NODES`` on every ``stride``-th of them);
+    ``row``: the node weights of one sampled radius, including its share
     ``stride × 2π / count`` of the angle.
     """
 
@@ -470,9 +470,7 @@ def _layout(count: int) -> _Layout:
     cosines, sines = unit_circle(count)
     stride = _volume_stride(count)
     row = (stride * 2.0 * math.pi / count) * _AREA_NODE_WEIGHTS
-    return _Layout(np.concatenate((cosines, np.repeat(cosines[::stride], RADIAL_NODES))),
-                   np.concatenate((sines, np.repeat(sines[::stride], RADIAL_NODES))),
-                   stride, row)
+    return _Layout(cosines, sines, stride, row)
 
 
 class OutlineGrid(NamedTuple):
@@ -521,11 +519,15 @@ def outline_grid(radii_mm: Sequence[float]) -> OutlineGrid:
     """
     radii = np.array(radii_mm, dtype=float)
     layout = _layout(radii.size)
-    sampled = radii[::layout.stride, None]
-    along = np.concatenate((radii, (sampled * _RADIAL_NODES).ravel()))
+    stride = layout.stride
+    sampled = radii[::stride, None]
+    nodes = sampled * _RADIAL_NODES  # each sampled radius's nodes, distances from the box centre
+    # Each point is its distance times its direction: the outline's points, then the nodes row by row.
+    x = np.concatenate((radii * layout.cosines, (nodes * layout.cosines[::stride, None]).ravel()))
+    y = np.concatenate((radii * layout.sines, (nodes * layout.sines[::stride, None]).ravel()))
     weights = (sampled * sampled * layout.row).ravel()
     area = math.pi / radii.size * float(np.dot(radii, radii))
-    grid = OutlineGrid(radii, layout, along * layout.cosines, along * layout.sines, weights, area)
+    grid = OutlineGrid(radii, layout, x, y, weights, area)
     for array in (grid.radii, grid.x, grid.y, grid.weights):
         array.flags.writeable = False
     return grid
@@ -554,9 +556,10 @@ def _volume_from(relief_nodes: np.ndarray, grid: OutlineGrid, eye: str, centre_m
     volume = float(np.dot(relief_nodes, grid.weights)) + center_thickness_mm * grid.area
     if shape.prism_delta and grid.layout.stride > 1:
         radii = grid.radii
-        cosines, sines = unit_circle(radii.size)
+        count = radii.size
+        cosines, sines = grid.layout.cosines, grid.layout.sines  # the outline's directions
         cubes = radii * radii * radii
-        third = 2.0 * math.pi / radii.size / 3.0
+        third = 2.0 * math.pi / count / 3.0
         mirror = -1.0 if eye == "left" else 1.0
         moment_x = mirror * third * float(np.dot(cosines, cubes)) - centre_mm[0] * grid.area
         moment_y = third * float(np.dot(sines, cubes)) - centre_mm[1] * grid.area
