@@ -213,14 +213,14 @@ def _geometry_checks(view, params: SafetyParams, eye: str):
     if mount_limit is not None and edge > mount_limit:
         yield Flag(
             "edge-too-thick-for-mount", "warning",
-            f"The thickest edge is {edge:.1f} mm, more than a {mount.replace('_', ' ')} mount holds well "
+            f"The thickest edge is {edge:.2f} mm, more than a {mount.replace('_', ' ')} mount holds well "
             f"({mount_limit:.1f} mm): consider a higher index, a smaller or rounder frame, or another mount.",
             eye, {"edge_max_mm": edge, "limit_mm": mount_limit, "mount": mount},
         )
     elif edge > params.cosmetic_edge_mm:
         yield Flag(
             "edge-thick-cosmetic", "info",
-            f"The thickest edge is {edge:.1f} mm, over the cosmetic limit of {params.cosmetic_edge_mm:.1f} mm: "
+            f"The thickest edge is {edge:.2f} mm, over the cosmetic limit of {params.cosmetic_edge_mm:.1f} mm: "
             "the practice may offer a higher index or edge polishing.",
             eye, {"edge_max_mm": edge, "limit_mm": params.cosmetic_edge_mm},
         )

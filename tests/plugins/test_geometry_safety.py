@@ -364,3 +364,14 @@ def test_the_default_config_template_parses_with_both_tables_uncommented():
     host = start_host(parse_config("\n".join(lines)))
     assert host.effective_config["stages"]["geometry"]["minimum_thickness"]["resin-1.50"]["center_mm"] == 2.0
     assert host.effective_config["stages"]["safety"]["max_edge_mm"]["drilled"] == 5.0
+
+
+def test_an_edge_flagged_over_its_limit_reads_over_it_in_the_message(default_host):
+    # Common practice: a message must not say "6.0 mm, over the limit of 6.0 mm" — the edge is written to
+    # 0.01 mm so that the number shown is the one compared (the high-plus sample's right edge is 6.0x mm).
+    import re
+
+    result = run_order(default_host, json.loads((SAMPLES / "sv-high-plus-beyond-stock.json").read_text()))
+    flag = safety_flag(result, "edge-thick-cosmetic")
+    edge, limit = (float(n) for n in re.findall(r"(\d+\.\d+) mm", flag["message"])[:2])
+    assert edge > limit and round(edge, 1) == flag["values"]["edge_max_mm"]  # the values keep the contract's 0.1 mm
