@@ -725,31 +725,24 @@ def _chosen(view, params: GeometryParams, surfacings: dict):
     return shared, thinning, lenses, choices
 
 
-def planned_fronts(view, surfacings: dict, params: GeometryParams | None = None) -> dict[str, float]:
-    """The front curve this stage gives each eye's lens for these surfacing powers (eye → power).
+class PlannedLens(NamedTuple):
+    """An eye's lens as this stage would make it: its front curve, and its solution on that front (the centre
+    thickness) or why no thickness makes it."""
+
+    front_d: float
+    solved: EdgedLens | LensNotMakeable
+
+
+def planned_lenses(view, surfacings: dict, params: GeometryParams | None = None) -> dict[str, PlannedLens]:
+    """The front curve this stage gives each eye's lens for these surfacing powers (eye → power), and its solution.
 
     For a stage before this one whose optics depend on the lens's shape (the
     exact tilt compensation): the same choice as :func:`run` — the rule, the
     stock, a concave back, matched fronts — with ``params`` the lab's
-    ``[stages.geometry]``.
+    ``[stages.geometry]``, and the centre thickness this stage solves on it.
     """
     _, _, lenses, choices = _chosen(view, params or GeometryParams(), surfacings)
-    return {lens.eye: choice.trial.front_d for lens, choice in zip(lenses, choices)}
-
-
-def planned_centre_mm(view, eye: str, surfacings: dict, front_d: float, params: GeometryParams | None = None) -> float:
-    """The centre thickness (mm) this stage solves for the eye's lens on a given front curve.
-
-    Raises :class:`~lenslane.plugins.optics.thickness.LensNotMakeable` when no
-    thickness makes the lens.
-    """
-    params = params or GeometryParams()
-    shared = _shared(view, params, _outline(view, params))
-    lens = _prepare(view, eye, surfacings[eye], params, thinning_prism(view, params, surfacings))
-    trial = _try(shared, lens, front_d, params)
-    if isinstance(trial.solved, LensNotMakeable):
-        raise trial.solved
-    return trial.solved.center_mm
+    return {lens.eye: PlannedLens(choice.trial.front_d, choice.trial.solved) for lens, choice in zip(lenses, choices)}
 
 
 def _not_makeable(lens: _Eye, shared: _Shared, trial: _Trial) -> Flag:

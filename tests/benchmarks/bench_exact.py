@@ -146,7 +146,7 @@ def stage_cost(orders: list[dict], method: str) -> dict[str, float]:
     parsed = [read_order(json.dumps(data).encode(), host.settings.materials) for data in orders]
     pipeline.run(*parsed[0])  # warm up
     geometry = {"seconds": 0.0, "calls": 0}
-    originals = {name: getattr(tilt_stage, name) for name in ("planned_fronts", "planned_centre_mm")}
+    originals = {name: getattr(tilt_stage, name) for name in ("planned_lenses",)}
 
     def timed_call(function):
         def call(*args, **kwargs):
