@@ -11,7 +11,7 @@ Every value is proposed as its own change, with the method that made it.
 from __future__ import annotations
 
 import math
-from typing import Annotated, NamedTuple
+from typing import Annotated, Callable, NamedTuple
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
@@ -713,9 +713,10 @@ def run(view, params: GeometryParams):
             yield from _eye_geometry(view, params, shared, lens, choice, thinning)
 
 
-def _chosen(view, params: GeometryParams, surfacings: dict):
+def _chosen(view, params: GeometryParams, surfacings: dict, shared: _Shared | None = None):
     """The pair's lenses and front curves for these surfacing powers (eye → power, or None for no lens)."""
-    shared = _shared(view, params, _outline(view, params))
+    if shared is None:
+        shared = _shared(view, params, _outline(view, params))
     thinning = thinning_prism(view, params, surfacings)
     lenses = [_prepare(view, eye, surfacing, params, thinning)
               for eye, surfacing in surfacings.items() if surfacing is not None]
@@ -733,16 +734,25 @@ class PlannedLens(NamedTuple):
     solved: EdgedLens | LensNotMakeable
 
 
-def planned_lenses(view, surfacings: dict, params: GeometryParams | None = None) -> dict[str, PlannedLens]:
-    """The front curve this stage gives each eye's lens for these surfacing powers (eye → power), and its solution.
+def lens_planner(view, params: GeometryParams | None = None) -> Callable[[dict], dict[str, PlannedLens]]:
+    """How this stage would make the order's lenses: surfacing powers (eye → power) → each eye's front curve and
+    its solution on it.
 
     For a stage before this one whose optics depend on the lens's shape (the
-    exact tilt compensation): the same choice as :func:`run` — the rule, the
-    stock, a concave back, matched fronts — with ``params`` the lab's
-    ``[stages.geometry]``, and the centre thickness this stage solves on it.
+    exact tilt compensation), which asks for several powers: the same choice
+    as :func:`run` — the rule, the stock, a concave back, matched fronts —
+    with ``params`` the lab's ``[stages.geometry]``, and the centre thickness
+    this stage solves on it. The outline and the material, which do not
+    depend on the powers, are worked out once.
     """
-    _, _, lenses, choices = _chosen(view, params or GeometryParams(), surfacings)
-    return {lens.eye: PlannedLens(choice.trial.front_d, choice.trial.solved) for lens, choice in zip(lenses, choices)}
+    params = params or GeometryParams()
+    shared = _shared(view, params, _outline(view, params))
+
+    def planned(surfacings: dict) -> dict[str, PlannedLens]:
+        _, _, lenses, choices = _chosen(view, params, surfacings, shared)
+        return {lens.eye: PlannedLens(choice.trial.front_d, choice.trial.solved)
+                for lens, choice in zip(lenses, choices)}
+    return planned
 
 
 def _not_makeable(lens: _Eye, shared: _Shared, trial: _Trial) -> Flag:

@@ -22,7 +22,7 @@ from lenslane.plugins.compensation import (
     CompensationParams, Design, matrix_of, no_surfacing, not_applied, power_dict, propose, trade_notation,
 )
 from lenslane.contract.precision import present
-from lenslane.plugins.geometry import GeometryParams, PlannedLens, planned_lenses
+from lenslane.plugins.geometry import GeometryParams, PlannedLens, lens_planner
 from lenslane.plugins.optics.asworn import (
     ExactLens, asworn_power, exact_compensation, gaze_errors, largest_meridional_error, off_axis_record, worn_lens,
 )
@@ -92,9 +92,10 @@ def _exact_pair(view, befores: dict, martins: dict, tilts: dict, index: float, f
     # A lens for Martin's power that no thickness makes starts at the lab's minimum centre thickness.
     minimums = geometry.minimum_thickness.get(view.order.lens.material, geometry.other_minimum_thickness)
 
+    planner = lens_planner(view, geometry)
+
     def planned(matrices) -> dict[str, PlannedLens]:
-        powers = {eye: power_dict(matrix, befores[eye], form) for eye, matrix in matrices.items()}
-        return planned_lenses(view, powers, geometry)
+        return planner({eye: power_dict(matrix, befores[eye], form) for eye, matrix in matrices.items()})
 
     def shape(surfacings):
         return {eye: (lens.front_d, _centre_mm(lens)) for eye, lens in planned(surfacings).items()}
