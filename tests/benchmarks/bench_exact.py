@@ -10,8 +10,9 @@
    off-axis pencil, the closed-form surfacing power, and the eight gazes of the off-axis errors.
 2. The exact compensation with its geometry coupling, per lens: the tilt stage's own time (from the
    pipeline's timing) over the benchmark mix with ``[stages.tilt] method = "exact"``, divided by the lenses
-   it compensated, and how much of it is the geometry stage's own front choice and thickness solves that the
-   coupling calls; the same stage with "martin" for comparison. Aim: 10 ms or less per lens.
+   it compensated, and how much of it is the geometry stage's own front choices with their centre thicknesses
+   that the coupling asks for (one per pair and round, and the order's outline once); the same stage with
+   "martin" for comparison. Aim: 10 ms or less per lens.
 3. The engine draining the benchmark mix with "exact" on and with "martin", each against the file-system
    floor (tests/benchmarks/bench_drain.py's method), and what "exact" adds per order. Aim: within 2× of the
    floor.
