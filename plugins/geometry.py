@@ -29,7 +29,8 @@ from lenslane.plugins.optics.prism import resultant_prism
 from lenslane.plugins.optics.surfaces import front_surface_power, toric_back_surface
 from lenslane.plugins.optics.tilt import tilt_obliquity
 from lenslane.plugins.optics.thickness import (
-    EdgedLens, LensNotMakeable, LensRequest, LensShape, OutlineGrid, edged_lenses, lens_weight_g, outline_grid,
+    EdgedLens, LensNotMakeable, LensPlacement, OutlineGrid, edged_lens, edged_volume_mm3, lens_weight_g, outline_grid,
+    place_lens,
 )
 
 SURFACES_SOURCE = ("Jalie, The Principles of Ophthalmic Lenses: surface power, exact sag, thick-lens back vertex "
@@ -375,7 +376,8 @@ def _matrix(surfacing: dict):
 
 
 class _Eye(NamedTuple):
-    """One eye's lens apart from its front curve: power, centre, prism, the stock and rule that apply."""
+    """One eye's lens apart from its front curve: power, centre, prism, the stock and rule that apply, and the
+    lens placed on the order's outline (None until :func:`_placed`)."""
 
     eye: str
     sphere: float
@@ -390,6 +392,7 @@ class _Eye(NamedTuple):
     stock: list[float]
     method: str
     band: int | None
+    placement: LensPlacement | None = None
 
 
 def _prepare(view, eye, surfacing: dict, params: GeometryParams, thinning: float) -> _Eye:
@@ -415,6 +418,14 @@ def _prepare(view, eye, surfacing: dict, params: GeometryParams, thinning: float
                 optical_centre(eye, offset), centre_inputs, prism.amount, prism.base_deg, list(stock), method, band)
 
 
+def _placed(shared: _Shared, lens: _Eye) -> LensPlacement:
+    """The eye's lens on the order's outline, for every front curve it is tried on."""
+    if lens.placement is not None:
+        return lens.placement
+    return place_lens(shared.grid, lens.eye, lens.centre, lens.matrix, shared.material.index, lens.prism_delta,
+                      lens.prism_base_deg)
+
+
 class _Trial(NamedTuple):
     """A front curve tried on one eye's lens: the solution, the back's flattest meridian, what is wrong."""
 
@@ -427,11 +438,10 @@ class _Trial(NamedTuple):
 
 def _try(shared: _Shared, lens: _Eye, front_d: float, params: GeometryParams) -> _Trial:
     """Solve the lens on a front curve and judge it: a concave back by the margin, within the hard limits."""
-    shape = LensShape(front_d, lens.matrix, shared.material.index, lens.prism_delta, lens.prism_base_deg)
-    [solved] = edged_lenses(shared.grid, [LensRequest(lens.eye, lens.centre, shape, shared.minimums.center_mm,
-                                                      shared.min_edge)])
-    if isinstance(solved, LensNotMakeable):
-        return _Trial(front_d, solved, None, (str(solved),), False)
+    try:
+        solved = edged_lens(_placed(shared, lens), front_d, shared.minimums.center_mm, shared.min_edge)
+    except LensNotMakeable as exc:
+        return _Trial(front_d, exc, None, (str(exc),), False)
     back = toric_back_surface(front_d, lens.matrix, solved.center_mm, shared.material.index)
     flattest = max(back.power_a_d, back.power_b_d)
     problems = []
@@ -643,8 +653,9 @@ def _eye_geometry(view, params, shared: _Shared, lens: _Eye, choice: _Choice, th
     solved, front = choice.trial.solved, choice.trial.front_d
     minimums, min_edge, index = shared.minimums, shared.min_edge, shared.material.index
     allowance = params.blank_allowance_mm
-    volume = solved.volume_mm3
-    blank = blank_diameter_from_farthest_mm(solved.farthest_mm, allowance)
+    placement = _placed(shared, lens)
+    volume = edged_volume_mm3(placement, front, solved.center_mm)
+    blank = blank_diameter_from_farthest_mm(placement.farthest_mm, allowance)
     weight = lens_weight_g(volume, shared.material.density)
     binding = solved.binding
     binding_text = (f"the minimum centre thickness {minimums.center_mm:.1f} mm" if binding == "centre"
@@ -665,7 +676,7 @@ def _eye_geometry(view, params, shared: _Shared, lens: _Eye, choice: _Choice, th
                                 "mount": frame.mount, "index": index},
         "edge_min_mm": edges_inputs,
         "edge_max_mm": edges_inputs,
-        "blank_min_diameter_mm": {"farthest_mm": solved.farthest_mm, "allowance_mm": allowance,
+        "blank_min_diameter_mm": {"farthest_mm": placement.farthest_mm, "allowance_mm": allowance,
                                   "decentration_in_mm": lens.offset.inward_mm,
                                   "decentration_up_mm": lens.offset.upward_mm},
         "weight_g": {"volume_cm3": volume / 1000.0, "density_g_cm3": shared.material.density},
@@ -719,6 +730,7 @@ def _chosen(view, params: GeometryParams, surfacings: dict):
     thinning = thinning_prism(view, params, surfacings)
     lenses = [_prepare(view, eye, surfacing, params, thinning)
               for eye, surfacing in surfacings.items() if surfacing is not None]
+    lenses = [lens._replace(placement=_placed(shared, lens)) for lens in lenses]
     choices = [_own_choice(view, shared, lens, params) for lens in lenses]
     if len(lenses) == 2 and view.order.lens.front_curve_d is None:
         choices = _matched(shared, lenses, choices, params)

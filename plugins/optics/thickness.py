@@ -119,8 +119,9 @@ def back_power_in_direction(back: ToricBack, direction_rad):
     return float(power) if power.ndim == 0 else power
 
 
+
 # --------------------------------------------------------------------------
-# Thickness at many points: what does not depend on the centre thickness is worked out once
+# Thickness at many points: what depends on neither the front curve nor the centre thickness is worked out once
 # --------------------------------------------------------------------------
 
 _NOT_REACHING = "a surface of this lens does not reach the outline: its curve is steeper than the lens is wide"
@@ -132,20 +133,79 @@ _TINY_MM2 = 1e-300
 _REACH_MARGIN = 0.999999
 
 
+class _Body(NamedTuple):
+    """What a lens's thickness owes to its power, index and prism, apart from the front curve.
+
+    The principal powers of the surfacing power (D) and the direction of the
+    larger (degrees); ``cylinder_span`` is ``k (F_a − F_b)`` (1/mm) with
+    ``k = −1 / (1000 (n − 1))``: the back's curvature from its cylinder at most.
+    """
+
+    index: float
+    larger_d: float
+    smaller_d: float
+    direction_deg: float
+    cylinder_span: float
+    prism_delta: float
+    prism_base_deg: float
+
+
+def _body(surfacing: PowerMatrix, index: float, prism_delta: float, prism_base_deg: float) -> _Body:
+    larger, smaller, direction = principal_powers(surfacing)
+    return _Body(index, larger, smaller, direction, surface_curvature_per_mm(larger - smaller, index, "back"),
+                 prism_delta, prism_base_deg)
+
+
+class _Points(NamedTuple):
+    """Points about a lens's optical centre, with what their thickness owes to the lens's power and prism alone.
+
+    ``rho2`` is the squared distance from the optical centre (mm²); ``wedge``
+    the prism's share of the thickness (mm; None without prism);
+    ``back_cylinder`` the back's curvature from its cylinder,
+    ``k (F_a − F_b) cos²(φ − α)`` (1/mm, 0.0 for a spherical back), so that the
+    back's curvature in each direction is ``back_cylinder + k F_b(t)``: the
+    front curve and the centre thickness move both principal back powers by
+    the same amount, since F₂ = Fv − F₁/(1 − (t/n)F₁) in each meridian.
+    """
+
+    rho2: np.ndarray
+    wedge: np.ndarray | None
+    back_cylinder: np.ndarray | float
+
+
+def _points(x_mm: np.ndarray, y_mm: np.ndarray, body: _Body) -> _Points:
+    """The :class:`_Points` of points x, y (mm about the optical centre, front view)."""
+    rho2 = x_mm * x_mm
+    rho2 += y_mm * y_mm
+    wedge = None
+    if body.prism_delta:
+        base = math.radians(body.prism_base_deg)
+        per_mm = wedge_mm(body.prism_delta, 1.0, body.index)  # the wedge's thickness change per mm along the base
+        wedge = x_mm * (per_mm * math.cos(base))
+        wedge += y_mm * (per_mm * math.sin(base))
+    back_cylinder: np.ndarray | float = 0.0
+    if body.larger_d != body.smaller_d:
+        # cos²(φ − α) = (p · a)² / |p|², a the unit vector of the larger power's meridian (Euler's theorem).
+        # span ≤ 0, so k (F_a − F_b) cos² = (√−span (p · a))² / (−|p|²).
+        alpha, scale = math.radians(body.direction_deg), math.sqrt(-body.cylinder_span)
+        along = x_mm * (scale * math.cos(alpha))
+        along += y_mm * (scale * math.sin(alpha))
+        along *= along
+        along /= -_TINY_MM2 - rho2
+        back_cylinder = along
+    return _Points(rho2, wedge, back_cylinder)
+
+
 class _Profile(NamedTuple):
     """What the thickness at a set of points owes to the lens apart from its centre thickness.
 
-    ``rho2`` is the squared distance from the optical centre (mm²); ``fixed`` the
-    part of the thickness that does not depend on the centre thickness, minus
-    the front sag plus the prism wedge (mm); ``back_cylinder`` the back's
-    curvature from its cylinder, ``k (F_a − F_b) cos²(φ − α)`` (1/mm, 0.0 for a
-    spherical back), so that the back's curvature in each direction is
-    ``back_cylinder + k F_b(t)`` with ``k = −1 / (1000 (n − 1))``: the centre
-    thickness moves both principal back powers by the same amount, since
-    F₂ = Fv − F₁/(1 − (t/n)F₁) in each meridian. ``cylinder_span`` is
-    ``k (F_a − F_b)``, the most ``back_cylinder`` can be, and ``rho2_max`` (at
-    least) the largest ρ²: together they bound c²ρ² without looking at every
-    point. ``edge_rho2_max`` is the largest ρ² of the edge points.
+    ``rho2`` and ``back_cylinder`` as in :class:`_Points`; ``fixed`` the part
+    of the thickness that does not depend on the centre thickness, minus the
+    front sag plus the prism wedge (mm). ``cylinder_span`` (the most
+    ``back_cylinder`` can be) and ``rho2_max`` (at least the largest ρ²)
+    bound c²ρ² without looking at every point. ``placement``: the lens on its
+    outline when these are the outline's points, whose volume's nodes must
+    be reached as well (None: these points only).
     """
 
     rho2: np.ndarray
@@ -156,62 +216,46 @@ class _Profile(NamedTuple):
     index: float
     cylinder_span: float
     rho2_max: float
-    edge_rho2_max: float
+    placement: LensPlacement | None
 
 
-def _profile(x_mm: np.ndarray, y_mm: np.ndarray, shape: LensShape, strict: bool,
-             edge_count: int | None = None, box_centre_rho2: float = 0.0) -> _Profile:
-    """The :class:`_Profile` of points x, y (mm about the optical centre, front view).
+def _profile(points: _Points, body: _Body, front_d: float, strict: bool, rho2_max: float,
+             placement: LensPlacement | None = None) -> _Profile:
+    """The :class:`_Profile` of the points for a front curve.
 
     ``strict``: raise :class:`LensNotMakeable` when the front does not reach a
-    point; otherwise the thickness there is NaN. With ``edge_count``, the
-    points after the first ``edge_count`` (the edge) lie on the segments from
-    the box centre, at ``box_centre_rho2`` from the optical centre, to edge
-    points; ρ² is convex along a segment, so none is farther than the edge or
-    the box centre.
+    point (or, with ``placement``, a node of the volume); otherwise the
+    thickness there is NaN. ``rho2_max`` bounds every ρ² checked.
     """
-    index = shape.index
-    rho2 = x_mm * x_mm
-    rho2 += y_mm * y_mm
-    edge = rho2 if edge_count is None else rho2[:edge_count]
-    edge_rho2_max = float(edge[edge.argmax()]) if edge.size else 0.0
-    rho2_max = edge_rho2_max if edge_count is None else max(edge_rho2_max, box_centre_rho2)
-    front_curvature = surface_curvature_per_mm(shape.front_d, index, "front")
+    rho2 = points.rho2
+    front_curvature = surface_curvature_per_mm(front_d, body.index, "front")
     if front_curvature:
         square = front_curvature * front_curvature
         # rho2_max bounds every ρ²: only near the limit look at every point.
-        if strict and square * rho2_max > _REACH_MARGIN and float(np.max(square * rho2)) > 1.0:
+        if strict and square * rho2_max > _REACH_MARGIN and any(
+                float(np.max(square * each.rho2)) > 1.0 for each in _everywhere(points, placement)):
             raise LensNotMakeable(_NOT_REACHING)
         fixed = sag_from_squared_mm(-front_curvature, rho2)  # the sag is odd in the curvature: this is minus the front sag
     else:
         fixed = np.zeros_like(rho2)
-    if shape.prism_delta:
-        base = math.radians(shape.prism_base_deg)
-        per_mm = wedge_mm(shape.prism_delta, 1.0, index)  # the wedge's thickness change per mm along the base
-        wedge = x_mm * (per_mm * math.cos(base))
-        wedge += y_mm * (per_mm * math.sin(base))
-        fixed += wedge
-    larger, smaller, direction = principal_powers(shape.surfacing)
-    back_cylinder: np.ndarray | float = 0.0
-    span = surface_curvature_per_mm(larger - smaller, index, "back")
-    if larger != smaller:
-        # cos²(φ − α) = (p · a)² / |p|², a the unit vector of the larger power's meridian (Euler's theorem).
-        # span ≤ 0, so k (F_a − F_b) cos² = (√−span (p · a))² / (−|p|²).
-        alpha, scale = math.radians(direction), math.sqrt(-span)
-        along = x_mm * (scale * math.cos(alpha))
-        along += y_mm * (scale * math.sin(alpha))
-        along *= along
-        along /= -_TINY_MM2 - rho2
-        back_cylinder = along
-    return _Profile(rho2, fixed, back_cylinder, shape.front_d, smaller, index, span, rho2_max, edge_rho2_max)
+    if points.wedge is not None:
+        fixed += points.wedge
+    return _Profile(rho2, fixed, points.back_cylinder, front_d, body.smaller_d, body.index, body.cylinder_span,
+                    rho2_max, placement)
+
+
+def _everywhere(points: _Points, placement: LensPlacement | None) -> tuple[_Points, ...]:
+    """The points, and the volume's nodes too for the outline of a placed lens."""
+    return (points,) if placement is None else (points, _nodes(placement))
 
 
 def _relief_of(profile: _Profile, center_thickness_mm: float, strict: bool) -> np.ndarray:
     """The thickness (mm) at the profile's points less the centre thickness, for a centre thickness.
 
     (The centre thickness itself is added where it is needed, to a number
-    rather than to every point.) Where the back does not reach a point:
-    :class:`LensNotMakeable` when ``strict``, NaN otherwise.
+    rather than to every point.) Where the back does not reach a point (or,
+    for an outline, a node of its volume): :class:`LensNotMakeable` when
+    ``strict``, NaN otherwise.
     """
     # k F_b(t): the back's curvature in the meridian of its smaller power, at this centre thickness.
     back_b = back_surface_power(profile.front_d, profile.back_vertex_b_d, center_thickness_mm, profile.index)
@@ -220,10 +264,16 @@ def _relief_of(profile: _Profile, center_thickness_mm: float, strict: bool) -> n
     if strict and thickness.size:
         # c lies between k F_b and k F_b + span, ρ² is at most rho2_max: only near the limit look at every point.
         steepest = max(shift * shift, (shift + profile.cylinder_span) ** 2)
-        if steepest * profile.rho2_max > _REACH_MARGIN and bool(np.isnan(thickness).any()):
+        if steepest * profile.rho2_max > _REACH_MARGIN and (
+                bool(np.isnan(thickness).any()) or (profile.placement is not None and not _back_reaches(
+                    _nodes(profile.placement), shift))):
             raise LensNotMakeable(_NOT_REACHING)
     thickness += profile.fixed
     return thickness
+
+
+def _back_reaches(points: _Points, shift: float) -> bool:
+    return not bool(np.isnan(sag_from_squared_mm(points.back_cylinder + shift, points.rho2)).any())
 
 
 def thickness_mm(points_mm, shape: LensShape, center_thickness_mm: float) -> np.ndarray:
@@ -266,8 +316,9 @@ def thickness_mm(points_mm, shape: LensShape, center_thickness_mm: float) -> np.
     4.708
     """
     points = np.asarray(points_mm, dtype=float).reshape(-1, 2)
+    body = _body(shape.surfacing, shape.index, shape.prism_delta, shape.prism_base_deg)
     with np.errstate(invalid="ignore"):
-        profile = _profile(points[:, 0], points[:, 1], shape, strict=False)
+        profile = _profile(_points(points[:, 0], points[:, 1], body), body, shape.front_d, False, math.inf)
         thickness = _relief_of(profile, center_thickness_mm, strict=False)
     thickness += center_thickness_mm
     return thickness
@@ -311,6 +362,7 @@ _NEWTON_STEP_MM = 1e-12
 _MAX_ITERATIONS = 100
 
 
+
 def _edge_root_mm(profile: _Profile, point: int, target_mm: float, center_mm: float) -> float:
     """The centre thickness at which one point's thickness is ``target_mm`` (Newton's method, plain floats).
 
@@ -339,31 +391,31 @@ def _edge_root_mm(profile: _Profile, point: int, target_mm: float, center_mm: fl
     raise LensNotMakeable(_NOT_CONVERGING)
 
 
+
+
 class _Solved(NamedTuple):
     center_mm: float
     binding: str
-    relief_mm: np.ndarray  # thickness less the centre thickness at every point, for the solved centre thickness
+    relief_mm: np.ndarray  # thickness less the centre thickness at every edge point, for the solved centre thickness
     thinnest_mm: float     # the thinnest edge
 
 
-def _solve(profile: _Profile, edge_count: int, min_center_mm: float, min_edge_mm: float) -> _Solved:
-    """The least centre thickness meeting the minimums; the profile's first ``edge_count`` points are the edge."""
+def _solve(profile: _Profile, min_center_mm: float, min_edge_mm: float) -> _Solved:
+    """The least centre thickness meeting the minimums; the profile's points are the edge."""
     # The minimum centre applies to a lens with a minus or plano meridian (centre_minimum_applies).
     centre_minimum = _minus_or_plano(profile.back_vertex_b_d)
     center = min_center_mm if centre_minimum else min_edge_mm
-    relief = _relief_of(profile, center, strict=True)
-    edge = relief[:edge_count]
+    edge = _relief_of(profile, center, strict=True)
     point = int(edge.argmin())
     thinnest = float(edge[point]) + center
     # Every point thickens with the centre, so edges at or above their minimum here mean the centre binds.
     if centre_minimum and thinnest >= min_edge_mm:
-        return _Solved(center, "centre", relief, thinnest)
+        return _Solved(center, "centre", edge, thinnest)
     for _ in range(_MAX_ITERATIONS):
         if abs(thinnest - min_edge_mm) <= EDGE_TOLERANCE_MM:
-            return _Solved(center, "edge", relief, thinnest)
+            return _Solved(center, "edge", edge, thinnest)
         center = _edge_root_mm(profile, point, min_edge_mm, center)
-        relief = _relief_of(profile, center, strict=True)
-        edge = relief[:edge_count]
+        edge = _relief_of(profile, center, strict=True)
         point = int(edge.argmin())
         thinnest = float(edge[point]) + center
     raise LensNotMakeable(_NOT_CONVERGING)
@@ -424,13 +476,16 @@ def solve_center_thickness(edge_points_mm, shape: LensShape, min_center_mm: floa
     ('edge', 1.0)
     """
     points = np.asarray(edge_points_mm, dtype=float).reshape(-1, 2)
-    profile = _profile(points[:, 0], points[:, 1], shape, strict=True)
-    solved = _solve(profile, len(points), min_center_mm, min_edge_mm)
+    body = _body(shape.surfacing, shape.index, shape.prism_delta, shape.prism_base_deg)
+    edge = _points(points[:, 0], points[:, 1], body)
+    rho2_max = float(edge.rho2[edge.rho2.argmax()]) if edge.rho2.size else 0.0
+    solved = _solve(_profile(edge, body, shape.front_d, True, rho2_max), min_center_mm, min_edge_mm)
     return CentreThickness(solved.center_mm, solved.binding)
 
 
+
 # --------------------------------------------------------------------------
-# The volume: the thickness integrated over the outline
+# The outline's points and the nodes of the volume's quadrature (the thickness integrated over the outline)
 # --------------------------------------------------------------------------
 
 #: Radial Gauss–Legendre nodes per angle of the volume quadrature.
@@ -476,22 +531,25 @@ def _layout(count: int) -> _Layout:
 class OutlineGrid(NamedTuple):
     """An outline's points and volume weights, prepared once and shared by the lenses cut to it.
 
-    ``x`` / ``y``: mm about the box centre, the right lens's view, of the
-    outline points, then of the volume's quadrature nodes; ``weights``: each
-    node's share of ∬ · dA; ``area``: the sector area ½ Σ r² Δθ over every
-    radius; ``radii``: the outline. Read-only arrays.
+    ``edge_x`` / ``edge_y``: mm about the box centre, the right lens's view, of
+    the outline points; ``node_x`` / ``node_y``: the same of the volume's
+    quadrature nodes, row by row; ``weights``: each node's share of ∬ · dA;
+    ``area``: the sector area ½ Σ r² Δθ over every radius; ``radii``: the
+    outline. Read-only arrays.
     """
 
     radii: np.ndarray
     layout: _Layout
-    x: np.ndarray
-    y: np.ndarray
+    edge_x: np.ndarray
+    edge_y: np.ndarray
+    node_x: np.ndarray
+    node_y: np.ndarray
     weights: np.ndarray
     area: float
 
 
 def outline_grid(radii_mm: Sequence[float]) -> OutlineGrid:
-    """The points and volume weights of an outline, for :func:`edged_lenses` (a frame's may be kept and reused).
+    """The points and volume weights of an outline, for :func:`place_lens` (a frame's may be kept and reused).
 
     Parameters
     ----------
@@ -522,173 +580,140 @@ def outline_grid(radii_mm: Sequence[float]) -> OutlineGrid:
     stride = layout.stride
     sampled = radii[::stride, None]
     nodes = sampled * _RADIAL_NODES  # each sampled radius's nodes, distances from the box centre
-    # Each point is its distance times its direction: the outline's points, then the nodes row by row.
-    x = np.concatenate((radii * layout.cosines, (nodes * layout.cosines[::stride, None]).ravel()))
-    y = np.concatenate((radii * layout.sines, (nodes * layout.sines[::stride, None]).ravel()))
-    weights = (sampled * sampled * layout.row).ravel()
-    area = math.pi / radii.size * float(np.dot(radii, radii))
-    grid = OutlineGrid(radii, layout, x, y, weights, area)
-    for array in (grid.radii, grid.x, grid.y, grid.weights):
+    # Each point is its distance times its direction: the outline's points, and the nodes row by row.
+    grid = OutlineGrid(radii, layout, radii * layout.cosines, radii * layout.sines,
+                       (nodes * layout.cosines[::stride, None]).ravel(), (nodes * layout.sines[::stride, None]).ravel(),
+                       (sampled * sampled * layout.row).ravel(), math.pi / radii.size * float(np.dot(radii, radii)))
+    for array in (grid.radii, grid.edge_x, grid.edge_y, grid.node_x, grid.node_y, grid.weights):
         array.flags.writeable = False
     return grid
 
 
-def _about_centre(grid: OutlineGrid, eye: str, centre_mm: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
-    """The grid's points about one lens's optical centre (the left lens is the mirror image of the right)."""
+def _about_centre(x: np.ndarray, y: np.ndarray, eye: str,
+                  centre_mm: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
+    """Points of the right lens's grid about one lens's optical centre (the left lens is the mirror image)."""
     if eye == "right":
-        x = grid.x - centre_mm[0]
+        x = x - centre_mm[0]
     elif eye == "left":
-        x = np.subtract(-centre_mm[0], grid.x)  # −x − c, in one step
+        x = np.subtract(-centre_mm[0], x)  # −x − c, in one step
     else:
         raise ValueError(f"eye must be 'right' or 'left', not {eye!r}")
-    return x, grid.y - centre_mm[1]
+    return x, y - centre_mm[1]
 
 
-def _volume_from(relief_nodes: np.ndarray, grid: OutlineGrid, eye: str, centre_mm: tuple[float, float],
-                 shape: LensShape, center_thickness_mm: float, x_nodes: np.ndarray, y_nodes: np.ndarray) -> float:
-    """``∬ t dA`` from the relief (thickness less the centre thickness) at the nodes.
+# --------------------------------------------------------------------------
+# One lens on its outline: placed once, then tried on front curves, and its volume once it is chosen
+# --------------------------------------------------------------------------
 
-    The centre thickness is a constant and the prism wedge a linear function:
-    both are integrated over every sector exactly (area ½ Σ r² Δθ, first
-    moments ⅓ Σ r³ (cos θ, sin θ) Δθ), in place of their share of the sampled
-    quadrature (which is exact for them already when every radius is used).
+
+class LensPlacement(NamedTuple):
+    """A lens placed on its outline before its front curve is chosen: what every trial of a front shares.
+
+    ``edge``: the outline's points about the optical centre, with their prism
+    wedge and the back's cylinder (:class:`_Points`); ``reach_rho2``: at least
+    the largest ρ² of the outline and of the volume's nodes (the box centre's
+    or the farthest edge point's); ``farthest_mm``: the distance of the
+    farthest outline point from the optical centre.
     """
-    volume = float(np.dot(relief_nodes, grid.weights)) + center_thickness_mm * grid.area
-    if shape.prism_delta and grid.layout.stride > 1:
-        radii = grid.radii
-        count = radii.size
-        cosines, sines = grid.layout.cosines, grid.layout.sines  # the outline's directions
-        cubes = radii * radii * radii
-        third = 2.0 * math.pi / count / 3.0
-        mirror = -1.0 if eye == "left" else 1.0
-        moment_x = mirror * third * float(np.dot(cosines, cubes)) - centre_mm[0] * grid.area
-        moment_y = third * float(np.dot(sines, cubes)) - centre_mm[1] * grid.area
-        base = math.radians(shape.prism_base_deg)
-        per_mm = wedge_mm(shape.prism_delta, 1.0, shape.index)
-        along_x, along_y = per_mm * math.cos(base), per_mm * math.sin(base)
-        sampled = float(np.dot(x_nodes * along_x + y_nodes * along_y, grid.weights))
-        volume += along_x * moment_x + along_y * moment_y - sampled
-    return volume
+
+    grid: OutlineGrid
+    eye: str
+    centre_mm: tuple[float, float]
+    body: _Body
+    edge: _Points
+    reach_rho2: float
+    farthest_mm: float
+
+
+def place_lens(grid: OutlineGrid, eye: str, centre_mm: tuple[float, float], surfacing: PowerMatrix, index: float,
+               prism_delta: float = 0.0, prism_base_deg: float = 0.0) -> LensPlacement:
+    """One lens placed on its outline, for :func:`edged_lens` on any front curve and :func:`edged_volume_mm3`.
+
+    Parameters
+    ----------
+    grid : OutlineGrid
+        The right lens's outline (:func:`outline_grid`).
+    eye : {"right", "left"}
+        The left lens is the mirror image of the right.
+    centre_mm : (float, float)
+        The optical centre about the box centre, mm.
+    surfacing : PowerMatrix
+        The back vertex power to produce, D.
+    index : float
+        Refractive index.
+    prism_delta, prism_base_deg : float
+        The prescribed prism (Δ) and its base (degrees, ISO 8429).
+
+    Returns
+    -------
+    LensPlacement
+        The outline about the optical centre with what its thickness owes to
+        neither the front curve nor the centre thickness (distances, prism
+        wedge, the back's cylinder by Euler's theorem), worked out once for
+        every front curve tried.
+
+    References
+    ----------
+    Jalie, *The Principles of Ophthalmic Lenses* (prism thickness); Euler's
+    theorem for the toric back.
+
+    Examples
+    --------
+    >>> from lenslane.plugins.optics.power import power_matrix
+    >>> placed = place_lens(outline_grid([25.0] * 72), "right", (3.0, 0.0), power_matrix(-2.0), 1.5)
+    >>> round(placed.farthest_mm, 9)
+    28.0
+    """
+    body = _body(surfacing, index, prism_delta, prism_base_deg)
+    x, y = _about_centre(grid.edge_x, grid.edge_y, eye, centre_mm)
+    edge = _points(x, y, body)
+    edge_rho2_max = float(edge.rho2[edge.rho2.argmax()])
+    # The nodes lie on the segments from the box centre to the edge points; ρ² is convex along a segment, so
+    # none is farther than the edge or the box centre.
+    cx, cy = centre_mm
+    return LensPlacement(grid, eye, centre_mm, body, edge, max(edge_rho2_max, cx * cx + cy * cy),
+                         math.sqrt(edge_rho2_max))
+
+
+def _nodes(placement: LensPlacement) -> _Points:
+    """The volume's quadrature nodes about the lens's optical centre."""
+    grid = placement.grid
+    x, y = _about_centre(grid.node_x, grid.node_y, placement.eye, placement.centre_mm)
+    return _points(x, y, placement.body)
 
 
 class EdgedLens(NamedTuple):
-    """An edged lens worked out at once: the centre thickness and its binding minimum, the edges, the volume.
+    """An edged lens on one front curve: the centre thickness and its binding minimum, the thinnest and thickest edge.
 
     ``center_mm`` and ``binding`` as in :class:`CentreThickness`;
     ``edge_min_mm`` / ``edge_max_mm`` the thinnest and thickest point of the
-    outline; ``volume_mm3`` as :func:`lens_volume_mm3`; ``farthest_mm`` the
-    distance of the farthest outline point from the optical centre.
+    outline (mm).
     """
 
     center_mm: float
     binding: str
     edge_min_mm: float
     edge_max_mm: float
-    volume_mm3: float
-    farthest_mm: float
 
 
-class LensRequest(NamedTuple):
-    """One lens for :func:`edged_lenses`: eye, optical centre (mm about the box centre), shape, minimums (mm)."""
-
-    eye: str
-    centre_mm: tuple[float, float]
-    shape: LensShape
-    min_center_mm: float
-    min_edge_mm: float
-
-
-def _edged(grid: OutlineGrid, lens: LensRequest) -> EdgedLens:
-    count = grid.radii.size
-    x, y = _about_centre(grid, lens.eye, lens.centre_mm)
-    cx, cy = lens.centre_mm
-    profile = _profile(x, y, lens.shape, strict=True, edge_count=count, box_centre_rho2=cx * cx + cy * cy)
-    solved = _solve(profile, count, lens.min_center_mm, lens.min_edge_mm)
-    center, relief = solved.center_mm, solved.relief_mm
-    edges = relief[:count]
-    volume = _volume_from(relief[count:], grid, lens.eye, lens.centre_mm, lens.shape, center, x[count:], y[count:])
-    return EdgedLens(center, solved.binding, solved.thinnest_mm, float(edges[edges.argmax()]) + center, volume,
-                     math.sqrt(profile.edge_rho2_max))
-
-
-def edged_lenses(outline: Sequence[float] | OutlineGrid,
-                 lenses: Sequence[LensRequest]) -> list[EdgedLens | LensNotMakeable]:
-    """Centre thickness, thinnest and thickest edge and volume of each lens cut to one outline.
+def edged_lens(placement: LensPlacement, front_d: float, min_center_mm: float, min_edge_mm: float) -> EdgedLens:
+    """Centre thickness and the thinnest and thickest edge of a placed lens on a front curve.
 
     Parameters
     ----------
-    outline : sequence of float, or OutlineGrid
-        The outline of the right lens seen from the front, radii about the box
-        centre at equal angle steps from 0° (the contract's form), mm; or its
-        :func:`outline_grid`, prepared before.
-    lenses : sequence of LensRequest
-        Each lens: eye (the left lens is the mirror image of the right),
-        optical centre about the box centre (mm), shape and minimums as in
-        :func:`solve_center_thickness`.
-
-    Returns
-    -------
-    list of EdgedLens or LensNotMakeable
-        Per lens, in order: the same centre thickness and binding as
-        :func:`solve_center_thickness` on the outline about its optical
-        centre, the least and greatest of :func:`thickness_mm` there, and the
-        volume as :func:`lens_volume_mm3` — or, for a lens that cannot be made
-        (a surface does not reach the outline or the volume's nodes, or no
-        thickness converges), the :class:`LensNotMakeable` that says why.
-
-    Notes
-    -----
-    The outline's points and the volume's nodes share one set of arrays,
-    placed once for all the lenses; per lens, what does not depend on the
-    centre thickness (distances, front sag, wedge, the back's cylinder) is
-    computed once, and each trial thickness costs a handful of array
-    operations.
-
-    References
-    ----------
-    Jalie, *The Principles of Ophthalmic Lenses* (thickness from sags, minimum
-    substance, weight = volume × density); Euler's theorem for the toric back.
-
-    Examples
-    --------
-    >>> from lenslane.plugins.optics.power import power_matrix
-    >>> right, left = edged_lenses([25.0] * 72, [
-    ...     LensRequest("right", (2.0, 0.0), LensShape(8.0, power_matrix(3.0), 1.5), 2.0, 1.0),
-    ...     LensRequest("left", (-2.0, 0.0), LensShape(8.0, power_matrix(3.0), 1.5), 2.0, 1.0)])
-    >>> right.binding, round(right.edge_min_mm, 9), round(right.center_mm - left.center_mm, 9)
-    ('edge', 1.0, 0.0)
-    """
-    grid = outline if isinstance(outline, OutlineGrid) else outline_grid(outline)
-    results: list[EdgedLens | LensNotMakeable] = []
-    for lens in lenses:
-        try:
-            results.append(_edged(grid, lens))
-        except LensNotMakeable as exc:
-            results.append(exc)
-    return results
-
-
-def edged_lens(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float, float], shape: LensShape,
-               min_center_mm: float, min_edge_mm: float) -> EdgedLens:
-    """Centre thickness, thinnest and thickest edge and volume of one edged lens (:func:`edged_lenses` for one).
-
-    Parameters
-    ----------
-    radii_mm : sequence of float
-        The outline of the right lens seen from the front, radii about the box
-        centre at equal angle steps from 0°.
-    eye : {"right", "left"}
-        The left lens is the mirror image of the right.
-    centre_mm : (float, float)
-        The optical centre about the box centre, mm.
-    shape : LensShape
-        Front curve, surfacing power, index and prism.
+    placement : LensPlacement
+        The lens on its outline (:func:`place_lens`).
+    front_d : float
+        True front power (D) at the lens index.
     min_center_mm, min_edge_mm : float
         The lab's minimums, as in :func:`solve_center_thickness`.
 
     Returns
     -------
     EdgedLens
+        The same centre thickness and binding as :func:`solve_center_thickness`
+        on the outline about the optical centre, and the least and greatest
+        of :func:`thickness_mm` there.
 
     Raises
     ------
@@ -696,19 +721,75 @@ def edged_lens(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float, floa
         As :func:`solve_center_thickness`, or a surface does not reach the
         volume's quadrature nodes.
 
+    Notes
+    -----
+    Per front curve only the front sag is worked out at the outline's points;
+    each trial thickness then costs a handful of array operations.
+
     References
     ----------
     Jalie, *The Principles of Ophthalmic Lenses* (thickness from sags, minimum
-    substance, weight = volume × density); Euler's theorem for the toric back.
+    substance); Euler's theorem for the toric back.
 
     Examples
     --------
     >>> from lenslane.plugins.optics.power import power_matrix
-    >>> lens = edged_lens([25.0] * 72, "right", (0.0, 0.0), LensShape(8.0, power_matrix(3.0), 1.5), 2.0, 1.0)
-    >>> lens.binding, round(lens.edge_min_mm, 9), round(lens.farthest_mm, 9)
-    ('edge', 1.0, 25.0)
+    >>> grid = outline_grid([25.0] * 72)
+    >>> right = edged_lens(place_lens(grid, "right", (2.0, 0.0), power_matrix(3.0), 1.5), 8.0, 2.0, 1.0)
+    >>> left = edged_lens(place_lens(grid, "left", (-2.0, 0.0), power_matrix(3.0), 1.5), 8.0, 2.0, 1.0)
+    >>> right.binding, round(right.edge_min_mm, 9), round(right.center_mm - left.center_mm, 9)
+    ('edge', 1.0, 0.0)
     """
-    return _edged(outline_grid(radii_mm), LensRequest(eye, centre_mm, shape, min_center_mm, min_edge_mm))
+    profile = _profile(placement.edge, placement.body, front_d, True, placement.reach_rho2, placement)
+    solved = _solve(profile, min_center_mm, min_edge_mm)
+    center, edge = solved.center_mm, solved.relief_mm
+    return EdgedLens(center, solved.binding, solved.thinnest_mm, float(edge[edge.argmax()]) + center)
+
+
+def edged_volume_mm3(placement: LensPlacement, front_d: float, center_thickness_mm: float) -> float:
+    """The volume (mm³) of a placed lens on a front curve and centre thickness, as :func:`lens_volume_mm3`.
+
+    Raises
+    ------
+    LensNotMakeable
+        A surface does not reach part of the outline.
+
+    References
+    ----------
+    Jalie, *The Principles of Ophthalmic Lenses* (weight = volume × density);
+    Gauss–Legendre quadrature and the trapezoidal rule as in any
+    numerical-analysis text.
+
+    Examples
+    --------
+    >>> from lenslane.plugins.optics.power import power_matrix
+    >>> placed = place_lens(outline_grid([25.0] * 72), "left", (-3.0, 2.0), power_matrix(0.0), 1.5)
+    >>> round(edged_volume_mm3(placed, 0.0, 2.0) / (math.pi * 25.0 ** 2 * 2.0), 9)
+    1.0
+    """
+    nodes = _nodes(placement)
+    body = placement.body
+    relief = _relief_of(_profile(nodes, body, front_d, True, placement.reach_rho2), center_thickness_mm, strict=True)
+    grid = placement.grid
+    volume = float(np.dot(relief, grid.weights)) + center_thickness_mm * grid.area
+    if nodes.wedge is not None and grid.layout.stride > 1:
+        # The centre thickness is a constant and the prism wedge a linear function: both are integrated over
+        # every sector exactly (area ½ Σ r² Δθ, first moments ⅓ Σ r³ (cos θ, sin θ) Δθ), in place of their
+        # share of the sampled quadrature (which is exact for them already when every radius is used).
+        radii = grid.radii
+        count = radii.size
+        cosines, sines = grid.layout.cosines, grid.layout.sines  # the outline's directions
+        cubes = radii * radii * radii
+        third = 2.0 * math.pi / count / 3.0
+        mirror = -1.0 if placement.eye == "left" else 1.0
+        cx, cy = placement.centre_mm
+        moment_x = mirror * third * float(np.dot(cosines, cubes)) - cx * grid.area
+        moment_y = third * float(np.dot(sines, cubes)) - cy * grid.area
+        base = math.radians(body.prism_base_deg)
+        per_mm = wedge_mm(body.prism_delta, 1.0, body.index)
+        along_x, along_y = per_mm * math.cos(base), per_mm * math.sin(base)
+        volume += along_x * moment_x + along_y * moment_y - float(np.dot(nodes.wedge, grid.weights))
+    return volume
 
 
 def lens_volume_mm3(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float, float],
@@ -768,12 +849,9 @@ def lens_volume_mm3(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float,
     >>> round(volume / (math.pi * 25.0 ** 2 * 2.0), 9)
     1.0
     """
-    grid = outline_grid(radii_mm)
-    count = grid.radii.size
-    x, y = _about_centre(grid, eye, centre_mm)
-    x_nodes, y_nodes = x[count:], y[count:]
-    relief = _relief_of(_profile(x_nodes, y_nodes, shape, strict=True), center_thickness_mm, strict=True)
-    return _volume_from(relief, grid, eye, centre_mm, shape, center_thickness_mm, x_nodes, y_nodes)
+    placement = place_lens(outline_grid(radii_mm), eye, centre_mm, shape.surfacing, shape.index, shape.prism_delta,
+                           shape.prism_base_deg)
+    return edged_volume_mm3(placement, shape.front_d, center_thickness_mm)
 
 
 def lens_weight_g(volume_mm3: float, density_g_cm3: float) -> float:
