@@ -309,7 +309,7 @@ def _outline(view, params):
         basis = f"the lab's exponent m = {shape.exponent:g}, as the order gives no effective diameter"
     else:
         basis = f"m = {shape.exponent:.2f} fitted so that twice the longest radius is the ED {effective_diameter_mm:.1f} mm"
-    return outline_grid(shape.radii_mm), (
+    return outline_grid(shape.radii_mm, shape.directions), (
         f"outline modelled as the superellipse |x/(A/2)|^m + |y/(B/2)|^m = 1 with A {box_width_mm:.1f} mm, "
         f"B {box_height_mm:.1f} mm and {basis}"
     )

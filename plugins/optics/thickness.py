@@ -521,8 +521,8 @@ class _Layout(NamedTuple):
     row: np.ndarray
 
 
-def _layout(count: int) -> _Layout:
-    cosines, sines = unit_circle(count)
+def _layout(count: int, directions: tuple[np.ndarray, np.ndarray] | None = None) -> _Layout:
+    cosines, sines = unit_circle(count) if directions is None else directions
     stride = _volume_stride(count)
     row = (stride * 2.0 * math.pi / count) * _AREA_NODE_WEIGHTS
     return _Layout(cosines, sines, stride, row)
@@ -548,7 +548,7 @@ class OutlineGrid(NamedTuple):
     area: float
 
 
-def outline_grid(radii_mm: Sequence[float]) -> OutlineGrid:
+def outline_grid(radii_mm: Sequence[float], directions: tuple[np.ndarray, np.ndarray] | None = None) -> OutlineGrid:
     """The points and volume weights of an outline, for :func:`place_lens` (a frame's may be kept and reused).
 
     Parameters
@@ -556,6 +556,9 @@ def outline_grid(radii_mm: Sequence[float]) -> OutlineGrid:
     radii_mm : sequence of float
         The outline of the right lens seen from the front, radii about the box
         centre at equal angle steps from 0° (the contract's form), mm.
+    directions : (ndarray, ndarray) or None
+        The radii's directions, ``unit_circle(len(radii_mm))``, when the
+        caller has them already (a modelled outline's).
 
     Returns
     -------
@@ -576,7 +579,7 @@ def outline_grid(radii_mm: Sequence[float]) -> OutlineGrid:
     (1.0, 1.0)
     """
     radii = np.array(radii_mm, dtype=float)
-    layout = _layout(radii.size)
+    layout = _layout(radii.size, directions)
     stride = layout.stride
     sampled = radii[::stride, None]
     nodes = sampled * _RADIAL_NODES  # each sampled radius's nodes, distances from the box centre
