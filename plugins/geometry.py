@@ -29,7 +29,7 @@ from lenslane.plugins.optics.prism import resultant_prism
 from lenslane.plugins.optics.surfaces import front_surface_power, toric_back_surface
 from lenslane.plugins.optics.tilt import tilt_obliquity
 from lenslane.plugins.optics.thickness import (
-    EdgedLens, LensNotMakeable, LensPlacement, OutlineGrid, edged_lens, edged_volume_mm3, lens_weight_g, outline_grid,
+    EdgedLens, LensNotMakeable, LensPlacement, OutlineGrid, edged_lens, lens_weight_g, outline_grid,
     place_lens,
 )
 
@@ -654,7 +654,7 @@ def _eye_geometry(view, params, shared: _Shared, lens: _Eye, choice: _Choice, th
     minimums, min_edge, index = shared.minimums, shared.min_edge, shared.material.index
     allowance = params.blank_allowance_mm
     placement = _placed(shared, lens)
-    volume = edged_volume_mm3(placement, front, solved.center_mm)
+    volume = solved.volume_mm3
     blank = blank_diameter_from_farthest_mm(placement.farthest_mm, allowance)
     weight = lens_weight_g(volume, shared.material.density)
     binding = solved.binding

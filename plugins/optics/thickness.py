@@ -203,9 +203,7 @@ class _Profile(NamedTuple):
     of the thickness that does not depend on the centre thickness, minus the
     front sag plus the prism wedge (mm). ``cylinder_span`` (the most
     ``back_cylinder`` can be) and ``rho2_max`` (at least the largest ρ²)
-    bound c²ρ² without looking at every point. ``placement``: the lens on its
-    outline when these are the outline's points, whose volume's nodes must
-    be reached as well (None: these points only).
+    bound c²ρ² without looking at every point.
     """
 
     rho2: np.ndarray
@@ -216,24 +214,20 @@ class _Profile(NamedTuple):
     index: float
     cylinder_span: float
     rho2_max: float
-    placement: LensPlacement | None
 
 
-def _profile(points: _Points, body: _Body, front_d: float, strict: bool, rho2_max: float,
-             placement: LensPlacement | None = None) -> _Profile:
+def _profile(points: _Points, body: _Body, front_d: float, strict: bool, rho2_max: float) -> _Profile:
     """The :class:`_Profile` of the points for a front curve.
 
     ``strict``: raise :class:`LensNotMakeable` when the front does not reach a
-    point (or, with ``placement``, a node of the volume); otherwise the
-    thickness there is NaN. ``rho2_max`` bounds every ρ² checked.
+    point; otherwise the thickness there is NaN. ``rho2_max`` bounds every ρ².
     """
     rho2 = points.rho2
     front_curvature = surface_curvature_per_mm(front_d, body.index, "front")
     if front_curvature:
         square = front_curvature * front_curvature
         # rho2_max bounds every ρ²: only near the limit look at every point.
-        if strict and square * rho2_max > _REACH_MARGIN and any(
-                float(np.max(square * each.rho2)) > 1.0 for each in _everywhere(points, placement)):
+        if strict and square * rho2_max > _REACH_MARGIN and float(np.max(square * rho2)) > 1.0:
             raise LensNotMakeable(_NOT_REACHING)
         fixed = sag_from_squared_mm(-front_curvature, rho2)  # the sag is odd in the curvature: this is minus the front sag
     else:
@@ -241,21 +235,15 @@ def _profile(points: _Points, body: _Body, front_d: float, strict: bool, rho2_ma
     if points.wedge is not None:
         fixed += points.wedge
     return _Profile(rho2, fixed, points.back_cylinder, front_d, body.smaller_d, body.index, body.cylinder_span,
-                    rho2_max, placement)
-
-
-def _everywhere(points: _Points, placement: LensPlacement | None) -> tuple[_Points, ...]:
-    """The points, and the volume's nodes too for the outline of a placed lens."""
-    return (points,) if placement is None else (points, _nodes(placement))
+                    rho2_max)
 
 
 def _relief_of(profile: _Profile, center_thickness_mm: float, strict: bool) -> np.ndarray:
     """The thickness (mm) at the profile's points less the centre thickness, for a centre thickness.
 
     (The centre thickness itself is added where it is needed, to a number
-    rather than to every point.) Where the back does not reach a point (or,
-    for an outline, a node of its volume): :class:`LensNotMakeable` when
-    ``strict``, NaN otherwise.
+    rather than to every point.) Where the back does not reach a point:
+    :class:`LensNotMakeable` when ``strict``, NaN otherwise.
     """
     # k F_b(t): the back's curvature in the meridian of its smaller power, at this centre thickness.
     back_b = back_surface_power(profile.front_d, profile.back_vertex_b_d, center_thickness_mm, profile.index)
@@ -264,16 +252,10 @@ def _relief_of(profile: _Profile, center_thickness_mm: float, strict: bool) -> n
     if strict and thickness.size:
         # c lies between k F_b and k F_b + span, ρ² is at most rho2_max: only near the limit look at every point.
         steepest = max(shift * shift, (shift + profile.cylinder_span) ** 2)
-        if steepest * profile.rho2_max > _REACH_MARGIN and (
-                bool(np.isnan(thickness).any()) or (profile.placement is not None and not _back_reaches(
-                    _nodes(profile.placement), shift))):
+        if steepest * profile.rho2_max > _REACH_MARGIN and bool(np.isnan(thickness).any()):
             raise LensNotMakeable(_NOT_REACHING)
     thickness += profile.fixed
     return thickness
-
-
-def _back_reaches(points: _Points, shift: float) -> bool:
-    return not bool(np.isnan(sag_from_squared_mm(points.back_cylinder + shift, points.rho2)).any())
 
 
 def thickness_mm(points_mm, shape: LensShape, center_thickness_mm: float) -> np.ndarray:
@@ -396,26 +378,28 @@ def _edge_root_mm(profile: _Profile, point: int, target_mm: float, center_mm: fl
 class _Solved(NamedTuple):
     center_mm: float
     binding: str
-    relief_mm: np.ndarray  # thickness less the centre thickness at every edge point, for the solved centre thickness
+    relief_mm: np.ndarray  # thickness less the centre thickness at every point, for the solved centre thickness
     thinnest_mm: float     # the thinnest edge
 
 
-def _solve(profile: _Profile, min_center_mm: float, min_edge_mm: float) -> _Solved:
-    """The least centre thickness meeting the minimums; the profile's points are the edge."""
+def _solve(profile: _Profile, edge_count: int, min_center_mm: float, min_edge_mm: float) -> _Solved:
+    """The least centre thickness meeting the minimums; the profile's first ``edge_count`` points are the edge."""
     # The minimum centre applies to a lens with a minus or plano meridian (centre_minimum_applies).
     centre_minimum = _minus_or_plano(profile.back_vertex_b_d)
     center = min_center_mm if centre_minimum else min_edge_mm
-    edge = _relief_of(profile, center, strict=True)
+    relief = _relief_of(profile, center, strict=True)
+    edge = relief[:edge_count]
     point = int(edge.argmin())
     thinnest = float(edge[point]) + center
     # Every point thickens with the centre, so edges at or above their minimum here mean the centre binds.
     if centre_minimum and thinnest >= min_edge_mm:
-        return _Solved(center, "centre", edge, thinnest)
+        return _Solved(center, "centre", relief, thinnest)
     for _ in range(_MAX_ITERATIONS):
         if abs(thinnest - min_edge_mm) <= EDGE_TOLERANCE_MM:
-            return _Solved(center, "edge", edge, thinnest)
+            return _Solved(center, "edge", relief, thinnest)
         center = _edge_root_mm(profile, point, min_edge_mm, center)
-        edge = _relief_of(profile, center, strict=True)
+        relief = _relief_of(profile, center, strict=True)
+        edge = relief[:edge_count]
         point = int(edge.argmin())
         thinnest = float(edge[point]) + center
     raise LensNotMakeable(_NOT_CONVERGING)
@@ -479,7 +463,7 @@ def solve_center_thickness(edge_points_mm, shape: LensShape, min_center_mm: floa
     body = _body(shape.surfacing, shape.index, shape.prism_delta, shape.prism_base_deg)
     edge = _points(points[:, 0], points[:, 1], body)
     rho2_max = float(edge.rho2[edge.rho2.argmax()]) if edge.rho2.size else 0.0
-    solved = _solve(_profile(edge, body, shape.front_d, True, rho2_max), min_center_mm, min_edge_mm)
+    solved = _solve(_profile(edge, body, shape.front_d, True, rho2_max), len(points), min_center_mm, min_edge_mm)
     return CentreThickness(solved.center_mm, solved.binding)
 
 
@@ -531,19 +515,16 @@ def _layout(count: int, directions: tuple[np.ndarray, np.ndarray] | None = None)
 class OutlineGrid(NamedTuple):
     """An outline's points and volume weights, prepared once and shared by the lenses cut to it.
 
-    ``edge_x`` / ``edge_y``: mm about the box centre, the right lens's view, of
-    the outline points; ``node_x`` / ``node_y``: the same of the volume's
-    quadrature nodes, row by row; ``weights``: each node's share of ∬ · dA;
-    ``area``: the sector area ½ Σ r² Δθ over every radius; ``radii``: the
-    outline. Read-only arrays.
+    ``x`` / ``y``: mm about the box centre, the right lens's view, of the
+    outline points, then of the volume's quadrature nodes; ``weights``: each
+    node's share of ∬ · dA; ``area``: the sector area ½ Σ r² Δθ over every
+    radius; ``radii``: the outline. Read-only arrays.
     """
 
     radii: np.ndarray
     layout: _Layout
-    edge_x: np.ndarray
-    edge_y: np.ndarray
-    node_x: np.ndarray
-    node_y: np.ndarray
+    x: np.ndarray
+    y: np.ndarray
     weights: np.ndarray
     area: float
 
@@ -583,11 +564,13 @@ def outline_grid(radii_mm: Sequence[float], directions: tuple[np.ndarray, np.nda
     stride = layout.stride
     sampled = radii[::stride, None]
     nodes = sampled * _RADIAL_NODES  # each sampled radius's nodes, distances from the box centre
-    # Each point is its distance times its direction: the outline's points, and the nodes row by row.
-    grid = OutlineGrid(radii, layout, radii * layout.cosines, radii * layout.sines,
-                       (nodes * layout.cosines[::stride, None]).ravel(), (nodes * layout.sines[::stride, None]).ravel(),
-                       (sampled * sampled * layout.row).ravel(), math.pi / radii.size * float(np.dot(radii, radii)))
-    for array in (grid.radii, grid.edge_x, grid.edge_y, grid.node_x, grid.node_y, grid.weights):
+    # Each point is its distance times its direction: the outline's points, then the nodes row by row.
+    x = np.concatenate((radii * layout.cosines, (nodes * layout.cosines[::stride, None]).ravel()))
+    y = np.concatenate((radii * layout.sines, (nodes * layout.sines[::stride, None]).ravel()))
+    weights = (sampled * sampled * layout.row).ravel()
+    area = math.pi / radii.size * float(np.dot(radii, radii))
+    grid = OutlineGrid(radii, layout, x, y, weights, area)
+    for array in (grid.radii, grid.x, grid.y, grid.weights):
         array.flags.writeable = False
     return grid
 
@@ -604,33 +587,60 @@ def _about_centre(x: np.ndarray, y: np.ndarray, eye: str,
     return x, y - centre_mm[1]
 
 
+def _volume_from(relief_nodes: np.ndarray, grid: OutlineGrid, eye: str, centre_mm: tuple[float, float], body: _Body,
+                 center_thickness_mm: float, wedge_nodes: np.ndarray | None) -> float:
+    """``∬ t dA`` from the relief (thickness less the centre thickness) at the nodes.
+
+    The centre thickness is a constant and the prism wedge a linear function:
+    both are integrated over every sector exactly (area ½ Σ r² Δθ, first
+    moments ⅓ Σ r³ (cos θ, sin θ) Δθ), in place of their share of the sampled
+    quadrature (``wedge_nodes``, the wedge at the nodes; which is exact for
+    them already when every radius is used).
+    """
+    volume = float(np.dot(relief_nodes, grid.weights)) + center_thickness_mm * grid.area
+    if wedge_nodes is not None and grid.layout.stride > 1:
+        radii = grid.radii
+        count = radii.size
+        cosines, sines = grid.layout.cosines, grid.layout.sines  # the outline's directions
+        cubes = radii * radii * radii
+        third = 2.0 * math.pi / count / 3.0
+        mirror = -1.0 if eye == "left" else 1.0
+        moment_x = mirror * third * float(np.dot(cosines, cubes)) - centre_mm[0] * grid.area
+        moment_y = third * float(np.dot(sines, cubes)) - centre_mm[1] * grid.area
+        base = math.radians(body.prism_base_deg)
+        per_mm = wedge_mm(body.prism_delta, 1.0, body.index)
+        along_x, along_y = per_mm * math.cos(base), per_mm * math.sin(base)
+        volume += along_x * moment_x + along_y * moment_y - float(np.dot(wedge_nodes, grid.weights))
+    return volume
+
+
 # --------------------------------------------------------------------------
-# One lens on its outline: placed once, then tried on front curves, and its volume once it is chosen
+# One lens on its outline: placed once, then tried on front curves
 # --------------------------------------------------------------------------
 
 
 class LensPlacement(NamedTuple):
     """A lens placed on its outline before its front curve is chosen: what every trial of a front shares.
 
-    ``edge``: the outline's points about the optical centre, with their prism
-    wedge and the back's cylinder (:class:`_Points`); ``reach_rho2``: at least
-    the largest ρ² of the outline and of the volume's nodes (the box centre's
-    or the farthest edge point's); ``farthest_mm``: the distance of the
-    farthest outline point from the optical centre.
+    ``points``: the outline's points, then the volume's nodes, about the
+    optical centre, with their prism wedge and the back's cylinder
+    (:class:`_Points`); ``reach_rho2``: at least the largest ρ² of them all
+    (the box centre's or the farthest edge point's); ``farthest_mm``: the
+    distance of the farthest outline point from the optical centre.
     """
 
     grid: OutlineGrid
     eye: str
     centre_mm: tuple[float, float]
     body: _Body
-    edge: _Points
+    points: _Points
     reach_rho2: float
     farthest_mm: float
 
 
 def place_lens(grid: OutlineGrid, eye: str, centre_mm: tuple[float, float], surfacing: PowerMatrix, index: float,
                prism_delta: float = 0.0, prism_base_deg: float = 0.0) -> LensPlacement:
-    """One lens placed on its outline, for :func:`edged_lens` on any front curve and :func:`edged_volume_mm3`.
+    """One lens placed on its outline, for :func:`edged_lens` on any front curve.
 
     Parameters
     ----------
@@ -650,10 +660,10 @@ def place_lens(grid: OutlineGrid, eye: str, centre_mm: tuple[float, float], surf
     Returns
     -------
     LensPlacement
-        The outline about the optical centre with what its thickness owes to
-        neither the front curve nor the centre thickness (distances, prism
-        wedge, the back's cylinder by Euler's theorem), worked out once for
-        every front curve tried.
+        The outline's points and the volume's nodes about the optical centre,
+        with what their thickness owes to neither the front curve nor the
+        centre thickness (distances, prism wedge, the back's cylinder by
+        Euler's theorem), worked out once for every front curve tried.
 
     References
     ----------
@@ -668,39 +678,33 @@ def place_lens(grid: OutlineGrid, eye: str, centre_mm: tuple[float, float], surf
     28.0
     """
     body = _body(surfacing, index, prism_delta, prism_base_deg)
-    x, y = _about_centre(grid.edge_x, grid.edge_y, eye, centre_mm)
-    edge = _points(x, y, body)
-    edge_rho2_max = float(edge.rho2[edge.rho2.argmax()])
+    points = _points(*_about_centre(grid.x, grid.y, eye, centre_mm), body)
+    edge = points.rho2[:grid.radii.size]
+    edge_rho2_max = float(edge[edge.argmax()])
     # The nodes lie on the segments from the box centre to the edge points; ρ² is convex along a segment, so
     # none is farther than the edge or the box centre.
     cx, cy = centre_mm
-    return LensPlacement(grid, eye, centre_mm, body, edge, max(edge_rho2_max, cx * cx + cy * cy),
+    return LensPlacement(grid, eye, centre_mm, body, points, max(edge_rho2_max, cx * cx + cy * cy),
                          math.sqrt(edge_rho2_max))
 
 
-def _nodes(placement: LensPlacement) -> _Points:
-    """The volume's quadrature nodes about the lens's optical centre."""
-    grid = placement.grid
-    x, y = _about_centre(grid.node_x, grid.node_y, placement.eye, placement.centre_mm)
-    return _points(x, y, placement.body)
-
-
 class EdgedLens(NamedTuple):
-    """An edged lens on one front curve: the centre thickness and its binding minimum, the thinnest and thickest edge.
+    """An edged lens on one front curve: the centre thickness and its binding minimum, the edges, the volume.
 
     ``center_mm`` and ``binding`` as in :class:`CentreThickness`;
     ``edge_min_mm`` / ``edge_max_mm`` the thinnest and thickest point of the
-    outline (mm).
+    outline (mm); ``volume_mm3`` as :func:`lens_volume_mm3`.
     """
 
     center_mm: float
     binding: str
     edge_min_mm: float
     edge_max_mm: float
+    volume_mm3: float
 
 
 def edged_lens(placement: LensPlacement, front_d: float, min_center_mm: float, min_edge_mm: float) -> EdgedLens:
-    """Centre thickness and the thinnest and thickest edge of a placed lens on a front curve.
+    """Centre thickness, thinnest and thickest edge and volume of a placed lens on a front curve.
 
     Parameters
     ----------
@@ -715,8 +719,8 @@ def edged_lens(placement: LensPlacement, front_d: float, min_center_mm: float, m
     -------
     EdgedLens
         The same centre thickness and binding as :func:`solve_center_thickness`
-        on the outline about the optical centre, and the least and greatest
-        of :func:`thickness_mm` there.
+        on the outline about the optical centre, the least and greatest of
+        :func:`thickness_mm` there, and the volume as :func:`lens_volume_mm3`.
 
     Raises
     ------
@@ -726,13 +730,14 @@ def edged_lens(placement: LensPlacement, front_d: float, min_center_mm: float, m
 
     Notes
     -----
-    Per front curve only the front sag is worked out at the outline's points;
-    each trial thickness then costs a handful of array operations.
+    The outline's points and the volume's nodes share one set of arrays,
+    placed once per lens; per front curve only the front sag is added, and
+    each trial thickness costs a handful of array operations.
 
     References
     ----------
     Jalie, *The Principles of Ophthalmic Lenses* (thickness from sags, minimum
-    substance); Euler's theorem for the toric back.
+    substance, weight = volume × density); Euler's theorem for the toric back.
 
     Examples
     --------
@@ -743,56 +748,15 @@ def edged_lens(placement: LensPlacement, front_d: float, min_center_mm: float, m
     >>> right.binding, round(right.edge_min_mm, 9), round(right.center_mm - left.center_mm, 9)
     ('edge', 1.0, 0.0)
     """
-    profile = _profile(placement.edge, placement.body, front_d, True, placement.reach_rho2, placement)
-    solved = _solve(profile, min_center_mm, min_edge_mm)
-    center, edge = solved.center_mm, solved.relief_mm
-    return EdgedLens(center, solved.binding, solved.thinnest_mm, float(edge[edge.argmax()]) + center)
-
-
-def edged_volume_mm3(placement: LensPlacement, front_d: float, center_thickness_mm: float) -> float:
-    """The volume (mm³) of a placed lens on a front curve and centre thickness, as :func:`lens_volume_mm3`.
-
-    Raises
-    ------
-    LensNotMakeable
-        A surface does not reach part of the outline.
-
-    References
-    ----------
-    Jalie, *The Principles of Ophthalmic Lenses* (weight = volume × density);
-    Gauss–Legendre quadrature and the trapezoidal rule as in any
-    numerical-analysis text.
-
-    Examples
-    --------
-    >>> from lenslane.plugins.optics.power import power_matrix
-    >>> placed = place_lens(outline_grid([25.0] * 72), "left", (-3.0, 2.0), power_matrix(0.0), 1.5)
-    >>> round(edged_volume_mm3(placed, 0.0, 2.0) / (math.pi * 25.0 ** 2 * 2.0), 9)
-    1.0
-    """
-    nodes = _nodes(placement)
-    body = placement.body
-    relief = _relief_of(_profile(nodes, body, front_d, True, placement.reach_rho2), center_thickness_mm, strict=True)
-    grid = placement.grid
-    volume = float(np.dot(relief, grid.weights)) + center_thickness_mm * grid.area
-    if nodes.wedge is not None and grid.layout.stride > 1:
-        # The centre thickness is a constant and the prism wedge a linear function: both are integrated over
-        # every sector exactly (area ½ Σ r² Δθ, first moments ⅓ Σ r³ (cos θ, sin θ) Δθ), in place of their
-        # share of the sampled quadrature (which is exact for them already when every radius is used).
-        radii = grid.radii
-        count = radii.size
-        cosines, sines = grid.layout.cosines, grid.layout.sines  # the outline's directions
-        cubes = radii * radii * radii
-        third = 2.0 * math.pi / count / 3.0
-        mirror = -1.0 if placement.eye == "left" else 1.0
-        cx, cy = placement.centre_mm
-        moment_x = mirror * third * float(np.dot(cosines, cubes)) - cx * grid.area
-        moment_y = third * float(np.dot(sines, cubes)) - cy * grid.area
-        base = math.radians(body.prism_base_deg)
-        per_mm = wedge_mm(body.prism_delta, 1.0, body.index)
-        along_x, along_y = per_mm * math.cos(base), per_mm * math.sin(base)
-        volume += along_x * moment_x + along_y * moment_y - float(np.dot(nodes.wedge, grid.weights))
-    return volume
+    count = placement.grid.radii.size
+    points = placement.points
+    profile = _profile(points, placement.body, front_d, True, placement.reach_rho2)
+    solved = _solve(profile, count, min_center_mm, min_edge_mm)
+    center, relief = solved.center_mm, solved.relief_mm
+    edges = relief[:count]
+    volume = _volume_from(relief[count:], placement.grid, placement.eye, placement.centre_mm, placement.body,
+                          center, None if points.wedge is None else points.wedge[count:])
+    return EdgedLens(center, solved.binding, solved.thinnest_mm, float(edges[edges.argmax()]) + center, volume)
 
 
 def lens_volume_mm3(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float, float],
@@ -852,9 +816,13 @@ def lens_volume_mm3(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float,
     >>> round(volume / (math.pi * 25.0 ** 2 * 2.0), 9)
     1.0
     """
-    placement = place_lens(outline_grid(radii_mm), eye, centre_mm, shape.surfacing, shape.index, shape.prism_delta,
-                           shape.prism_base_deg)
-    return edged_volume_mm3(placement, shape.front_d, center_thickness_mm)
+    grid = outline_grid(radii_mm)
+    count = grid.radii.size
+    body = _body(shape.surfacing, shape.index, shape.prism_delta, shape.prism_base_deg)
+    nodes = _points(*_about_centre(grid.x[count:], grid.y[count:], eye, centre_mm), body)
+    relief = _relief_of(_profile(nodes, body, shape.front_d, True, float(nodes.rho2.max())), center_thickness_mm,
+                        strict=True)
+    return _volume_from(relief, grid, eye, centre_mm, body, center_thickness_mm, nodes.wedge)
 
 
 def lens_weight_g(volume_mm3: float, density_g_cm3: float) -> float:
