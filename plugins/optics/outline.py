@@ -80,6 +80,10 @@ def outline_extent(radii_mm: Sequence[float]) -> Extent:
 
 #: Radii of a modelled outline: one a degree, the first at 0°.
 MODEL_RADII_COUNT = 360
+#: Their directions (cos θ, sin θ of :func:`unit_circle`), the same for every modelled outline: constants of the
+#: model like the count itself, worked out once (read-only arrays).
+MODEL_DIRECTIONS = unit_circle(MODEL_RADII_COUNT)
+MODEL_DIRECTIONS[0].flags.writeable = MODEL_DIRECTIONS[1].flags.writeable = False
 #: The superellipse exponent used when the order gives no effective diameter.
 DEFAULT_EXPONENT = 4.0
 #: Exponent limits: 2 is the ellipse; 60 is all but the box rectangle.
@@ -232,11 +236,10 @@ def modelled_outline(box_width_mm: float, box_height_mm: float,
         exponent = exponent_without_ed
     else:
         exponent = fitted_exponent(box_width_mm, box_height_mm, effective_diameter_mm)
-    directions = unit_circle(MODEL_RADII_COUNT)
-    radii = superellipse_radii(box_width_mm / 2.0, box_height_mm / 2.0, exponent, MODEL_RADII_COUNT, directions)
-    for array in (radii, *directions):
-        array.flags.writeable = False
-    return ModelledOutline(radii, exponent, directions)
+    radii = superellipse_radii(box_width_mm / 2.0, box_height_mm / 2.0, exponent, MODEL_RADII_COUNT,
+                               MODEL_DIRECTIONS)
+    radii.flags.writeable = False
+    return ModelledOutline(radii, exponent, MODEL_DIRECTIONS)
 
 
 # --------------------------------------------------------------------------
