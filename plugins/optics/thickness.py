@@ -227,9 +227,11 @@ def _profile(points: _Points, body: _Body, front_d: float, strict: bool, rho2_ma
     if front_curvature:
         square = front_curvature * front_curvature
         # rho2_max bounds every ρ²: only near the limit look at every point.
-        if strict and square * rho2_max > _REACH_MARGIN and float(np.max(square * rho2)) > 1.0:
+        reached = strict and square * rho2_max <= _REACH_MARGIN
+        if strict and not reached and float(np.max(square * rho2)) > 1.0:
             raise LensNotMakeable(_NOT_REACHING)
-        fixed = sag_from_squared_mm(-front_curvature, rho2)  # the sag is odd in the curvature: this is minus the front sag
+        # The sag is odd in the curvature: this is minus the front sag.
+        fixed = sag_from_squared_mm(-front_curvature, rho2, reached)
     else:
         fixed = np.zeros_like(rho2)
     if points.wedge is not None:
@@ -248,12 +250,12 @@ def _relief_of(profile: _Profile, center_thickness_mm: float, strict: bool) -> n
     # k F_b(t): the back's curvature in the meridian of its smaller power, at this centre thickness.
     back_b = back_surface_power(profile.front_d, profile.back_vertex_b_d, center_thickness_mm, profile.index)
     shift = surface_curvature_per_mm(back_b, profile.index, "back")
-    thickness = sag_from_squared_mm(profile.back_cylinder + shift, profile.rho2)  # the back sag; NaN where it does not reach
-    if strict and thickness.size:
-        # c lies between k F_b and k F_b + span, ρ² is at most rho2_max: only near the limit look at every point.
-        steepest = max(shift * shift, (shift + profile.cylinder_span) ** 2)
-        if steepest * profile.rho2_max > _REACH_MARGIN and bool(np.isnan(thickness).any()):
-            raise LensNotMakeable(_NOT_REACHING)
+    # c lies between k F_b and k F_b + span, ρ² is at most rho2_max: only near the limit look at every point.
+    reached = strict and max(shift * shift, (shift + profile.cylinder_span) ** 2) * profile.rho2_max <= _REACH_MARGIN
+    # The back sag; NaN where it does not reach.
+    thickness = sag_from_squared_mm(profile.back_cylinder + shift, profile.rho2, reached)
+    if strict and not reached and thickness.size and bool(np.isnan(thickness).any()):
+        raise LensNotMakeable(_NOT_REACHING)
     thickness += profile.fixed
     return thickness
 
