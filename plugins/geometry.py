@@ -254,12 +254,16 @@ _OPTICAL_CENTRE_SOURCE = "ISO 8624 (boxing system); design reference points: com
 _MATCHED = " One base serves both eyes (common practice: matched fronts, for looks and equal magnification)."
 
 
-def _record_texts(front_method: str, front_source: str, binding: str, blank_method: str,
-                  thinning: bool) -> tuple[str, str]:
-    """The geometry change's ``method`` (``"<value>: <method>; …"``) and ``source`` (each source once)."""
+class _LaterTexts(NamedTuple):
+    """The ``method`` text (``"<value>: <method>; …"``) and the sources of the values after the front curve and
+    the centre thickness: the same for both eyes of an order."""
+
+    methods: str
+    sources: tuple[str, ...]
+
+
+def _later_texts(blank_method: str, thinning: bool) -> _LaterTexts:
     values = [  # each value: its method, its source
-        ("front_curve_d", front_method, front_source),
-        ("center_thickness_mm", _CENTRE_THICKNESS_METHOD.format(binding=binding), SURFACES_SOURCE),
         ("edge_min_mm", _EDGES_METHOD, SURFACES_SOURCE),
         ("edge_max_mm", _EDGES_METHOD, SURFACES_SOURCE),
         ("blank_min_diameter_mm", blank_method, _BLANK_SOURCE),
@@ -269,8 +273,16 @@ def _record_texts(front_method: str, front_source: str, binding: str, blank_meth
     ]
     if thinning:
         values.append(("thinning_prism", _THINNING_METHOD, COMMON_PRACTICE))
-    return ("; ".join(f"{name}: {method}" for name, method, _ in values),
-            "; ".join(dict.fromkeys(source for _, _, source in values)))
+    return _LaterTexts("; ".join(f"{name}: {method}" for name, method, _ in values),
+                       tuple(source for _, _, source in values))
+
+
+def _record_texts(front_method: str, front_source: str, binding: str, later: _LaterTexts) -> tuple[str, str]:
+    """The geometry change's ``method`` (``"<value>: <method>; …"``) and ``source`` (each source once): the front
+    curve's and the centre thickness's, then the later values'."""
+    return (f"front_curve_d: {front_method}; "
+            f"center_thickness_mm: {_CENTRE_THICKNESS_METHOD.format(binding=binding)}; {later.methods}",
+            "; ".join(dict.fromkeys((front_source, SURFACES_SOURCE, *later.sources))))
 
 
 class _Shared(NamedTuple):
@@ -377,7 +389,7 @@ def _matrix(surfacing: dict):
 
 class _Eye(NamedTuple):
     """One eye's lens apart from its front curve: power, centre, prism, the stock and rule that apply, and the
-    lens placed on the order's outline (None until :func:`_placed`)."""
+    lens placed on the order's outline (None: placed when it is tried, :func:`_placed`)."""
 
     eye: str
     sphere: float
@@ -395,7 +407,9 @@ class _Eye(NamedTuple):
     placement: LensPlacement | None = None
 
 
-def _prepare(view, eye, surfacing: dict, params: GeometryParams, thinning: float) -> _Eye:
+def _prepare(view, eye, surfacing: dict, params: GeometryParams, thinning: float,
+             shared: _Shared | None = None) -> _Eye:
+    """One eye's lens apart from its front curve; with ``shared``, placed on the order's outline as well."""
     order = view.order
     frame, fit = order.frame, getattr(order.fit, eye)
     sphere, cylinder, axis = surfacing["sphere"], surfacing.get("cylinder", 0.0), surfacing.get("axis", 180)
@@ -414,8 +428,11 @@ def _prepare(view, eye, surfacing: dict, params: GeometryParams, thinning: float
     stock = (chosen.base_curves_d if chosen and chosen.base_curves_d
              else params.base_curves_d.get(material, params.other_base_curves_d))
     method = chosen.method if chosen and chosen.method else params.front_curve_method
-    return _Eye(eye, sphere, cylinder, axis, power_matrix(sphere, cylinder, axis), offset,
-                optical_centre(eye, offset), centre_inputs, prism.amount, prism.base_deg, list(stock), method, band)
+    matrix, centre = power_matrix(sphere, cylinder, axis), optical_centre(eye, offset)
+    placement = None if shared is None else place_lens(shared.grid, eye, centre, matrix, shared.material.index,
+                                                       prism.amount, prism.base_deg)
+    return _Eye(eye, sphere, cylinder, axis, matrix, offset, centre, centre_inputs, prism.amount, prism.base_deg,
+                list(stock), method, band, placement)
 
 
 def _placed(shared: _Shared, lens: _Eye) -> LensPlacement:
@@ -646,7 +663,8 @@ def _beyond_limits(eye: str, solved: EdgedLens, blank: float, weight: float, par
     )
 
 
-def _eye_geometry(view, params, shared: _Shared, lens: _Eye, choice: _Choice, thinning: float) -> list:
+def _eye_geometry(view, params, shared: _Shared, lens: _Eye, choice: _Choice, thinning: float,
+                  later: _LaterTexts) -> list:
     """The change that records one eye's geometry (each value with its method, source and inputs), and flags."""
     order = view.order
     frame = order.frame
@@ -695,7 +713,7 @@ def _eye_geometry(view, params, shared: _Shared, lens: _Eye, choice: _Choice, th
         f"The lens for this frame: front curve {front:.2f} D, centre thickness {solved.center_mm:.1f} mm "
         f"(the least that meets {binding_text}), edge {solved.edge_min_mm:.1f}–{solved.edge_max_mm:.1f} mm, "
         f"blank at least {blank:.1f} mm, {weight:.1f} g.{choice.sentence}{thinning_text}",
-        *_record_texts(choice.method, choice.source, binding, shared.blank_method, bool(thinning)),
+        *_record_texts(choice.method, choice.source, binding, later),
         inputs,
     )]
     if not choice.trial.concave:
@@ -716,21 +734,21 @@ def run(view, params: GeometryParams):
     if all(surfacing is None for surfacing in surfacings.values()):
         return  # no lens to make, only flags to raise: the material is not looked up
     shared, thinning, lenses, choices = _chosen(view, params, surfacings)
+    later = _later_texts(shared.blank_method, bool(thinning))
     for lens, choice in zip(lenses, choices):
         yield from choice.flags
         if isinstance(choice.trial.solved, LensNotMakeable):
             yield _not_makeable(lens, shared, choice.trial)
         else:
-            yield from _eye_geometry(view, params, shared, lens, choice, thinning)
+            yield from _eye_geometry(view, params, shared, lens, choice, thinning, later)
 
 
 def _chosen(view, params: GeometryParams, surfacings: dict):
     """The pair's lenses and front curves for these surfacing powers (eye → power, or None for no lens)."""
     shared = _shared(view, params, _outline(view, params))
     thinning = thinning_prism(view, params, surfacings)
-    lenses = [_prepare(view, eye, surfacing, params, thinning)
+    lenses = [_prepare(view, eye, surfacing, params, thinning, shared)
               for eye, surfacing in surfacings.items() if surfacing is not None]
-    lenses = [lens._replace(placement=_placed(shared, lens)) for lens in lenses]
     choices = [_own_choice(view, shared, lens, params) for lens in lenses]
     if len(lenses) == 2 and view.order.lens.front_curve_d is None:
         choices = _matched(shared, lenses, choices, params)
