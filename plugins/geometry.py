@@ -26,7 +26,7 @@ from lenslane.plugins.optics.outline import (
 )
 from lenslane.plugins.optics.power import power_matrix, principal_powers, spherical_equivalent
 from lenslane.plugins.optics.prism import resultant_prism
-from lenslane.plugins.optics.surfaces import front_surface_power, toric_back_surface
+from lenslane.plugins.optics.surfaces import back_surface_power, front_surface_power
 from lenslane.plugins.optics.tilt import tilt_obliquity
 from lenslane.plugins.optics.thickness import (
     EdgedLens, LensNotMakeable, LensPlacement, OutlineGrid, edged_lens, lens_weight_g, outline_grid,
@@ -455,12 +455,13 @@ class _Trial(NamedTuple):
 
 def _try(shared: _Shared, lens: _Eye, front_d: float, params: GeometryParams) -> _Trial:
     """Solve the lens on a front curve and judge it: a concave back by the margin, within the hard limits."""
+    placement = _placed(shared, lens)
     try:
-        solved = edged_lens(_placed(shared, lens), front_d, shared.minimums.center_mm, shared.min_edge)
+        solved = edged_lens(placement, front_d, shared.minimums.center_mm, shared.min_edge)
     except LensNotMakeable as exc:
         return _Trial(front_d, exc, None, (str(exc),), False)
-    back = toric_back_surface(front_d, lens.matrix, solved.center_mm, shared.material.index)
-    flattest = max(back.power_a_d, back.power_b_d)
+    # The toric back's flattest meridian is its larger principal power's: F₂ = Fv − F₁/(1 − (t/n)F₁) per meridian.
+    flattest = back_surface_power(front_d, placement.larger_d, solved.center_mm, shared.material.index)
     problems = []
     concave = flattest <= -params.back_concave_margin_d
     if not concave:

@@ -639,6 +639,11 @@ class LensPlacement(NamedTuple):
     reach_rho2: float
     farthest_mm: float
 
+    @property
+    def larger_d(self) -> float:
+        """The surfacing power's larger principal power (D), the meridian of the back's flattest curve."""
+        return self.body.larger_d
+
 
 def place_lens(grid: OutlineGrid, eye: str, centre_mm: tuple[float, float], surfacing: PowerMatrix, index: float,
                prism_delta: float = 0.0, prism_base_deg: float = 0.0) -> LensPlacement:
