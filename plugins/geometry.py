@@ -579,9 +579,14 @@ def _matched(shared: _Shared, lenses: list[_Eye], choices: list[_Choice], params
     limit = params.matched_front_max_difference_d
     # The powers allow one base when a stocked base within the lab's difference of each eye's own curve makes
     # both lenses; the nearest to both is tried first, the flatter on a tie.
-    common = [b for b in set(lenses[0].stock) & set(lenses[1].stock) if max(abs(b - f) for f in fronts) <= limit]
+    first, second = fronts
+
+    def farther(base: float) -> float:  # the base's distance from the farther of the two eyes' own curves
+        return max(abs(base - first), abs(base - second))
+
+    common = [b for b in set(lenses[0].stock) & set(lenses[1].stock) if farther(b) <= limit]
     low, high = min(fronts), max(fronts)
-    for base in sorted(common, key=lambda b: (max(abs(b - f) for f in fronts), b)):
+    for base in sorted(common, key=lambda b: (farther(b), b)):
         # An eye whose own choice is this base has its lens solved on it already.
         trials = [choice.trial if choice.trial.front_d == base else _try(shared, lens, base, params)
                   for lens, choice in zip(lenses, choices)]
