@@ -119,7 +119,6 @@ def back_power_in_direction(back: ToricBack, direction_rad):
     return float(power) if power.ndim == 0 else power
 
 
-
 # --------------------------------------------------------------------------
 # Thickness at many points: what depends on neither the front curve nor the centre thickness is worked out once
 # --------------------------------------------------------------------------
@@ -346,7 +345,6 @@ _NEWTON_STEP_MM = 1e-12
 _MAX_ITERATIONS = 100
 
 
-
 def _edge_root_mm(profile: _Profile, point: int, target_mm: float, center_mm: float) -> float:
     """The centre thickness at which one point's thickness is ``target_mm`` (Newton's method, plain floats).
 
@@ -373,8 +371,6 @@ def _edge_root_mm(profile: _Profile, point: int, target_mm: float, center_mm: fl
         if abs(step) < _NEWTON_STEP_MM:
             return t
     raise LensNotMakeable(_NOT_CONVERGING)
-
-
 
 
 class _Solved(NamedTuple):
@@ -467,7 +463,6 @@ def solve_center_thickness(edge_points_mm, shape: LensShape, min_center_mm: floa
     rho2_max = float(edge.rho2[edge.rho2.argmax()]) if edge.rho2.size else 0.0
     solved = _solve(_profile(edge, body, shape.front_d, True, rho2_max), len(points), min_center_mm, min_edge_mm)
     return CentreThickness(solved.center_mm, solved.binding)
-
 
 
 # --------------------------------------------------------------------------
