@@ -110,6 +110,6 @@ PLAIN_NUMBER = re.compile(rb"(-?[0-9]+(?:\.[0-9]+)?(?:[eE][-+]?[0-9]+)?)")
 
 
 @settings(max_examples=500, deadline=None)
-@given(st.binary(max_size=60) | st.text(alphabet="-+.eE0123456789 x\"", max_size=40).map(str.encode))
+@given(st.binary(max_size=60) | st.text(alphabet="-+.eE0123456789 x\"\x00", max_size=40).map(str.encode))
 def test_the_packers_number_pattern_cuts_as_the_plain_one(text):
     assert _NUMBERS.split(text) == PLAIN_NUMBER.split(text)
