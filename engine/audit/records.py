@@ -39,7 +39,7 @@ from __future__ import annotations
 
 import hashlib
 import re
-from itertools import chain
+from itertools import chain, count
 from datetime import datetime, timezone
 from typing import Any, Callable
 
@@ -185,9 +185,10 @@ class Packer:
     def _form_define(self, kind: str, item: Any, form: bytes, numbers: list[bytes]) -> tuple[int, list[bytes]]:
         """The define of an item's form: one the chain holds, one written earlier in the batch, or one written
         now, holding this item's numbers."""
-        if (kind, form) not in self.forms:
-            self.forms[kind, form] = (self._define(kind, item), numbers)
-        return self.forms[kind, form]
+        found = self.forms.get((kind, form))
+        if found is None:
+            found = self.forms[kind, form] = (self._define(kind, item), numbers)
+        return found
 
     def _run(self, run: dict[str, Any]) -> int:
         if id(run) not in self.runs:
@@ -220,10 +221,11 @@ def _item_texts(defines: list[tuple[int, list[bytes]]], numbers: list[list[bytes
     for (seq, defined), own in zip(defines, numbers):
         mask, written = 0, []
         if own != defined:
-            for bit, (number, held) in enumerate(zip(own, defined)):
+            for bit, number, held in zip(count(), own, defined):
                 if number != held:  # bit i: the item's i-th number differs from its define's
                     mask |= 1 << bit
-                    written.append(number if first[number] == place + bit else _shorter(number, first[number]))
+                    earlier = first[number]
+                    written.append(number if earlier == place + bit else _shorter(number, earlier))
         texts.append("%d %x %s" % (seq, mask, b",".join(written).decode()) if mask else f"{seq} 0")
         place += len(own)
     return texts
