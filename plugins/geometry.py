@@ -26,10 +26,11 @@ from lenslane.plugins.optics.outline import (
 )
 from lenslane.plugins.optics.power import power_matrix, principal_powers, spherical_equivalent
 from lenslane.plugins.optics.prism import resultant_prism
-from lenslane.plugins.optics.surfaces import front_surface_power, toric_back_surface
+from lenslane.plugins.optics.surfaces import back_surface_power, front_surface_power
 from lenslane.plugins.optics.tilt import tilt_obliquity
 from lenslane.plugins.optics.thickness import (
-    EdgedLens, LensNotMakeable, LensRequest, LensShape, OutlineGrid, edged_lenses, lens_weight_g, outline_grid,
+    EdgedLens, LensNotMakeable, LensPlacement, OutlineGrid, edged_lens, lens_weight_g, outline_grid,
+    place_lens,
 )
 
 SURFACES_SOURCE = ("Jalie, The Principles of Ophthalmic Lenses: surface power, exact sag, thick-lens back vertex "
@@ -253,12 +254,16 @@ _OPTICAL_CENTRE_SOURCE = "ISO 8624 (boxing system); design reference points: com
 _MATCHED = " One base serves both eyes (common practice: matched fronts, for looks and equal magnification)."
 
 
-def _record_texts(front_method: str, front_source: str, binding: str, blank_method: str,
-                  thinning: bool) -> tuple[str, str]:
-    """The geometry change's ``method`` (``"<value>: <method>; …"``) and ``source`` (each source once)."""
+class _LaterTexts(NamedTuple):
+    """The ``method`` text (``"<value>: <method>; …"``) and the sources of the values after the front curve and
+    the centre thickness: the same for both eyes of an order."""
+
+    methods: str
+    sources: tuple[str, ...]
+
+
+def _later_texts(blank_method: str, thinning: bool) -> _LaterTexts:
     values = [  # each value: its method, its source
-        ("front_curve_d", front_method, front_source),
-        ("center_thickness_mm", _CENTRE_THICKNESS_METHOD.format(binding=binding), SURFACES_SOURCE),
         ("edge_min_mm", _EDGES_METHOD, SURFACES_SOURCE),
         ("edge_max_mm", _EDGES_METHOD, SURFACES_SOURCE),
         ("blank_min_diameter_mm", blank_method, _BLANK_SOURCE),
@@ -268,8 +273,16 @@ def _record_texts(front_method: str, front_source: str, binding: str, blank_meth
     ]
     if thinning:
         values.append(("thinning_prism", _THINNING_METHOD, COMMON_PRACTICE))
-    return ("; ".join(f"{name}: {method}" for name, method, _ in values),
-            "; ".join(dict.fromkeys(source for _, _, source in values)))
+    return _LaterTexts("; ".join(f"{name}: {method}" for name, method, _ in values),
+                       tuple(source for _, _, source in values))
+
+
+def _record_texts(front_method: str, front_source: str, binding: str, later: _LaterTexts) -> tuple[str, str]:
+    """The geometry change's ``method`` (``"<value>: <method>; …"``) and ``source`` (each source once): the front
+    curve's and the centre thickness's, then the later values'."""
+    return (f"front_curve_d: {front_method}; "
+            f"center_thickness_mm: {_CENTRE_THICKNESS_METHOD.format(binding=binding)}; {later.methods}",
+            "; ".join(dict.fromkeys((front_source, SURFACES_SOURCE, *later.sources))))
 
 
 class _Shared(NamedTuple):
@@ -308,7 +321,7 @@ def _outline(view, params):
         basis = f"the lab's exponent m = {shape.exponent:g}, as the order gives no effective diameter"
     else:
         basis = f"m = {shape.exponent:.2f} fitted so that twice the longest radius is the ED {effective_diameter_mm:.1f} mm"
-    return outline_grid(shape.radii_mm), (
+    return outline_grid(shape.radii_mm, shape.directions), (
         f"outline modelled as the superellipse |x/(A/2)|^m + |y/(B/2)|^m = 1 with A {box_width_mm:.1f} mm, "
         f"B {box_height_mm:.1f} mm and {basis}"
     )
@@ -375,7 +388,8 @@ def _matrix(surfacing: dict):
 
 
 class _Eye(NamedTuple):
-    """One eye's lens apart from its front curve: power, centre, prism, the stock and rule that apply."""
+    """One eye's lens apart from its front curve: power, centre, prism, the stock and rule that apply, and the
+    lens placed on the order's outline (None: placed when it is tried, :func:`_placed`)."""
 
     eye: str
     sphere: float
@@ -390,9 +404,12 @@ class _Eye(NamedTuple):
     stock: list[float]
     method: str
     band: int | None
+    placement: LensPlacement | None = None
 
 
-def _prepare(view, eye, surfacing: dict, params: GeometryParams, thinning: float) -> _Eye:
+def _prepare(view, eye, surfacing: dict, params: GeometryParams, thinning: float,
+             shared: _Shared | None = None) -> _Eye:
+    """One eye's lens apart from its front curve; with ``shared``, placed on the order's outline as well."""
     order = view.order
     frame, fit = order.frame, getattr(order.fit, eye)
     sphere, cylinder, axis = surfacing["sphere"], surfacing.get("cylinder", 0.0), surfacing.get("axis", 180)
@@ -411,8 +428,19 @@ def _prepare(view, eye, surfacing: dict, params: GeometryParams, thinning: float
     stock = (chosen.base_curves_d if chosen and chosen.base_curves_d
              else params.base_curves_d.get(material, params.other_base_curves_d))
     method = chosen.method if chosen and chosen.method else params.front_curve_method
-    return _Eye(eye, sphere, cylinder, axis, power_matrix(sphere, cylinder, axis), offset,
-                optical_centre(eye, offset), centre_inputs, prism.amount, prism.base_deg, list(stock), method, band)
+    matrix, centre = power_matrix(sphere, cylinder, axis), optical_centre(eye, offset)
+    placement = None if shared is None else place_lens(shared.grid, eye, centre, matrix, shared.material.index,
+                                                       prism.amount, prism.base_deg)
+    return _Eye(eye, sphere, cylinder, axis, matrix, offset, centre, centre_inputs, prism.amount, prism.base_deg,
+                list(stock), method, band, placement)
+
+
+def _placed(shared: _Shared, lens: _Eye) -> LensPlacement:
+    """The eye's lens on the order's outline, for every front curve it is tried on."""
+    if lens.placement is not None:
+        return lens.placement
+    return place_lens(shared.grid, lens.eye, lens.centre, lens.matrix, shared.material.index, lens.prism_delta,
+                      lens.prism_base_deg)
 
 
 class _Trial(NamedTuple):
@@ -427,13 +455,13 @@ class _Trial(NamedTuple):
 
 def _try(shared: _Shared, lens: _Eye, front_d: float, params: GeometryParams) -> _Trial:
     """Solve the lens on a front curve and judge it: a concave back by the margin, within the hard limits."""
-    shape = LensShape(front_d, lens.matrix, shared.material.index, lens.prism_delta, lens.prism_base_deg)
-    [solved] = edged_lenses(shared.grid, [LensRequest(lens.eye, lens.centre, shape, shared.minimums.center_mm,
-                                                      shared.min_edge)])
-    if isinstance(solved, LensNotMakeable):
-        return _Trial(front_d, solved, None, (str(solved),), False)
-    back = toric_back_surface(front_d, lens.matrix, solved.center_mm, shared.material.index)
-    flattest = max(back.power_a_d, back.power_b_d)
+    placement = _placed(shared, lens)
+    try:
+        solved = edged_lens(placement, front_d, shared.minimums.center_mm, shared.min_edge)
+    except LensNotMakeable as exc:
+        return _Trial(front_d, exc, None, (str(exc),), False)
+    # The toric back's flattest meridian is its larger principal power's: F₂ = Fv − F₁/(1 − (t/n)F₁) per meridian.
+    flattest = back_surface_power(front_d, placement.larger_d, solved.center_mm, shared.material.index)
     problems = []
     concave = flattest <= -params.back_concave_margin_d
     if not concave:
@@ -551,9 +579,14 @@ def _matched(shared: _Shared, lenses: list[_Eye], choices: list[_Choice], params
     limit = params.matched_front_max_difference_d
     # The powers allow one base when a stocked base within the lab's difference of each eye's own curve makes
     # both lenses; the nearest to both is tried first, the flatter on a tie.
-    common = [b for b in set(lenses[0].stock) & set(lenses[1].stock) if max(abs(b - f) for f in fronts) <= limit]
+    first, second = fronts
+
+    def farther(base: float) -> float:  # the base's distance from the farther of the two eyes' own curves
+        return max(abs(base - first), abs(base - second))
+
+    common = [b for b in set(lenses[0].stock) & set(lenses[1].stock) if farther(b) <= limit]
     low, high = min(fronts), max(fronts)
-    for base in sorted(common, key=lambda b: (max(abs(b - f) for f in fronts), b)):
+    for base in sorted(common, key=lambda b: (farther(b), b)):
         # An eye whose own choice is this base has its lens solved on it already.
         trials = [choice.trial if choice.trial.front_d == base else _try(shared, lens, base, params)
                   for lens, choice in zip(lenses, choices)]
@@ -636,15 +669,17 @@ def _beyond_limits(eye: str, solved: EdgedLens, blank: float, weight: float, par
     )
 
 
-def _eye_geometry(view, params, shared: _Shared, lens: _Eye, choice: _Choice, thinning: float) -> list:
+def _eye_geometry(view, params, shared: _Shared, lens: _Eye, choice: _Choice, thinning: float,
+                  later: _LaterTexts) -> list:
     """The change that records one eye's geometry (each value with its method, source and inputs), and flags."""
     order = view.order
     frame = order.frame
     solved, front = choice.trial.solved, choice.trial.front_d
     minimums, min_edge, index = shared.minimums, shared.min_edge, shared.material.index
     allowance = params.blank_allowance_mm
+    placement = _placed(shared, lens)
     volume = solved.volume_mm3
-    blank = blank_diameter_from_farthest_mm(solved.farthest_mm, allowance)
+    blank = blank_diameter_from_farthest_mm(placement.farthest_mm, allowance)
     weight = lens_weight_g(volume, shared.material.density)
     binding = solved.binding
     binding_text = (f"the minimum centre thickness {minimums.center_mm:.1f} mm" if binding == "centre"
@@ -665,7 +700,7 @@ def _eye_geometry(view, params, shared: _Shared, lens: _Eye, choice: _Choice, th
                                 "mount": frame.mount, "index": index},
         "edge_min_mm": edges_inputs,
         "edge_max_mm": edges_inputs,
-        "blank_min_diameter_mm": {"farthest_mm": solved.farthest_mm, "allowance_mm": allowance,
+        "blank_min_diameter_mm": {"farthest_mm": placement.farthest_mm, "allowance_mm": allowance,
                                   "decentration_in_mm": lens.offset.inward_mm,
                                   "decentration_up_mm": lens.offset.upward_mm},
         "weight_g": {"volume_cm3": volume / 1000.0, "density_g_cm3": shared.material.density},
@@ -684,7 +719,7 @@ def _eye_geometry(view, params, shared: _Shared, lens: _Eye, choice: _Choice, th
         f"The lens for this frame: front curve {front:.2f} D, centre thickness {solved.center_mm:.1f} mm "
         f"(the least that meets {binding_text}), edge {solved.edge_min_mm:.1f}–{solved.edge_max_mm:.1f} mm, "
         f"blank at least {blank:.1f} mm, {weight:.1f} g.{choice.sentence}{thinning_text}",
-        *_record_texts(choice.method, choice.source, binding, shared.blank_method, bool(thinning)),
+        *_record_texts(choice.method, choice.source, binding, later),
         inputs,
     )]
     if not choice.trial.concave:
@@ -705,12 +740,13 @@ def run(view, params: GeometryParams):
     if all(surfacing is None for surfacing in surfacings.values()):
         return  # no lens to make, only flags to raise: the material is not looked up
     shared, thinning, lenses, choices = _chosen(view, params, surfacings)
+    later = _later_texts(shared.blank_method, bool(thinning))
     for lens, choice in zip(lenses, choices):
         yield from choice.flags
         if isinstance(choice.trial.solved, LensNotMakeable):
             yield _not_makeable(lens, shared, choice.trial)
         else:
-            yield from _eye_geometry(view, params, shared, lens, choice, thinning)
+            yield from _eye_geometry(view, params, shared, lens, choice, thinning, later)
 
 
 def _chosen(view, params: GeometryParams, surfacings: dict, shared: _Shared | None = None):
@@ -718,7 +754,7 @@ def _chosen(view, params: GeometryParams, surfacings: dict, shared: _Shared | No
     if shared is None:
         shared = _shared(view, params, _outline(view, params))
     thinning = thinning_prism(view, params, surfacings)
-    lenses = [_prepare(view, eye, surfacing, params, thinning)
+    lenses = [_prepare(view, eye, surfacing, params, thinning, shared)
               for eye, surfacing in surfacings.items() if surfacing is not None]
     choices = [_own_choice(view, shared, lens, params) for lens in lenses]
     if len(lenses) == 2 and view.order.lens.front_curve_d is None:

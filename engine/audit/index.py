@@ -19,6 +19,7 @@ damaged or missing), it rebuilds the index from the whole log.
 from __future__ import annotations
 
 import contextlib
+import json
 import os
 import sqlite3
 from dataclasses import dataclass
@@ -319,11 +320,14 @@ class Index:
     def is_published(self, order_id: str) -> bool:
         return self.db.execute("SELECT 1 FROM published WHERE order_id=?", (order_id,)).fetchone() is not None
 
-    def define_of(self, kind: str, key: str) -> tuple[int, bytes | None] | None:
-        """The seq of the define record of ``kind`` found by ``key`` (:func:`lenslane.audit.records.define_key`),
-        and the numbers it holds."""
-        row = self.db.execute("SELECT seq, numbers FROM defines WHERE key=? AND kind=?", (key, kind)).fetchone()
-        return (row[0], row[1]) if row else None
+    def defines_of(self, keys: list[tuple[str, str]]) -> dict[tuple[str, str], tuple[int, bytes | None]]:
+        """The define records of these kinds found by these keys (:func:`lenslane.audit.records.define_key`) that
+        the log holds, asked for in one question: for each, its seq and the numbers it holds."""
+        wanted = set(keys)
+        rows = self.db.execute(
+            "SELECT kind, key, seq, numbers FROM defines WHERE key IN (SELECT value FROM json_each(?))",
+            (json.dumps(sorted({key for _, key in wanted})),))
+        return {(kind, key): (seq, numbers) for kind, key, seq, numbers in rows if (kind, key) in wanted}
 
     def define_at(self, ref: int | str) -> tuple[int, str] | None:
         """The seq and kind of the define a record refers to: by its seq, or (the second format) by the first

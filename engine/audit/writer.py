@@ -21,7 +21,7 @@ from typing import Any, Iterable
 
 from lenslane.audit.index import Index
 from lenslane.audit.reader import AUDIT_NAME, audit_files, first_record, read_tail, rotated_name
-from lenslane.audit.records import CHAIN_FIELDS, GENESIS, TORN_EVENT, Packer, canonical, define, utc_now
+from lenslane.audit.records import CHAIN_FIELDS, GENESIS, TORN_EVENT, Packer, canonical, utc_now
 from lenslane.lab.files import fsync_dir, write_all
 
 #: How much of the first record's timestamp names the rotation period.
@@ -114,19 +114,7 @@ class AuditLog:
         """
         if self._must_reload:  # a failed write may have left a torn line, or whole records not yet indexed
             self._load()
-        records: list[dict[str, Any]] = []
-
-        def refer(kind: str, body: Any, key: str, numbers: list[bytes] | None) -> tuple[int, bytes | None]:
-            found = self.index.define_of(kind, key)
-            if found is None:
-                records.append(define(kind, body))
-                found = (self.seq + len(records), None if numbers is None else b",".join(numbers))
-            return found
-
-        packer = Packer(refer)
-        for event in events:
-            records.append(packer.pack(event))
-        return self._commit(records)
+        return self._commit(Packer(self.seq + 1, self.index.defines_of).pack(list(events)))
 
     def _commit(self, events: list[dict[str, Any]], prefix: bytes = b"") -> list[dict[str, Any]]:
         if not events:

@@ -79,7 +79,7 @@ _ATOMS = frozenset((str, int, bool, type(None)))
 
 def _walk(value: Any, key: str, rounding: bool) -> Any:
     # One walk checks and copies (and rounds). The built-in types, by far the usual ones, are taken by their
-    # exact type, a dict's atoms without a call; subclasses of them (an IntEnum, numpy's float64) by isinstance.
+    # exact type, a dict's or a list's atoms without a call; subclasses of them (an IntEnum, numpy's float64) by isinstance.
     # A float is finite exactly when value - value is 0.0 (it is NaN for a NaN or an infinity).
     kind = type(value)
     if kind is dict:
@@ -98,7 +98,18 @@ def _walk(value: Any, key: str, rounding: bool) -> Any:
                 copy[name] = _walk(item, name, rounding)
         return copy
     if kind is list or kind is tuple:
-        return [_walk(item, key, rounding) for item in value]
+        items = []
+        for item in value:
+            item_kind = type(item)
+            if item_kind is float:
+                if item - item:
+                    raise NotPlain(item)
+                items.append(round_number(key, item) if rounding and key else item)
+            elif item_kind in _ATOMS:
+                items.append(item)
+            else:
+                items.append(_walk(item, key, rounding))
+        return items
     if kind is float or (kind not in _ATOMS and isinstance(value, float)):
         if value - value:
             raise NotPlain(value)

@@ -80,6 +80,10 @@ def outline_extent(radii_mm: Sequence[float]) -> Extent:
 
 #: Radii of a modelled outline: one a degree, the first at 0°.
 MODEL_RADII_COUNT = 360
+#: Their directions (cos θ, sin θ of :func:`unit_circle`), the same for every modelled outline: constants of the
+#: model like the count itself, worked out once (read-only arrays).
+MODEL_DIRECTIONS = unit_circle(MODEL_RADII_COUNT)
+MODEL_DIRECTIONS[0].flags.writeable = MODEL_DIRECTIONS[1].flags.writeable = False
 #: The superellipse exponent used when the order gives no effective diameter.
 DEFAULT_EXPONENT = 4.0
 #: Exponent limits: 2 is the ellipse; 60 is all but the box rectangle.
@@ -87,14 +91,17 @@ _EXPONENT_RANGE = (2.0, 60.0)
 
 
 class ModelledOutline(NamedTuple):
-    """A modelled outline: the radii (mm, a read-only array) at equal steps from 0°, and the superellipse exponent used."""
+    """A modelled outline: the radii (mm, a read-only array) at equal steps from 0°, the superellipse exponent used,
+    and the radii's directions (cos θ, sin θ: :func:`unit_circle`), for work on its points."""
 
     radii_mm: np.ndarray
     exponent: float
+    directions: tuple[np.ndarray, np.ndarray]
 
 
 def superellipse_radii(half_width_mm: float, half_height_mm: float, exponent: float,
-                       count: int = MODEL_RADII_COUNT) -> np.ndarray:
+                       count: int = MODEL_RADII_COUNT,
+                       directions: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
     """Radii (mm) of the superellipse ``|x/a|^m + |y/b|^m = 1`` at ``count`` equal angle steps from 0°.
 
     Parameters
@@ -105,6 +112,8 @@ def superellipse_radii(half_width_mm: float, half_height_mm: float, exponent: fl
         m ≥ 2: 2 is the ellipse; larger values square the corners toward the box.
     count : int
         Number of radii, the first at 0°, counter-clockwise.
+    directions : (ndarray, ndarray) or None
+        ``unit_circle(count)`` when the caller has it already.
 
     Returns
     -------
@@ -120,10 +129,10 @@ def superellipse_radii(half_width_mm: float, half_height_mm: float, exponent: fl
     >>> superellipse_radii(26.0, 19.0, 2.0, 4).round(6).tolist()
     [26.0, 19.0, 26.0, 19.0]
     """
-    angles = np.arange(count) * (2.0 * math.pi / count)
+    cosines, sines = unit_circle(count) if directions is None else directions
     with np.errstate(divide="ignore"):
-        inverse = (np.abs(np.cos(angles) / half_width_mm) ** exponent
-                   + np.abs(np.sin(angles) / half_height_mm) ** exponent)
+        inverse = (np.abs(cosines / half_width_mm) ** exponent
+                   + np.abs(sines / half_height_mm) ** exponent)
     return inverse ** (-1.0 / exponent)
 
 
@@ -200,7 +209,8 @@ def modelled_outline(box_width_mm: float, box_height_mm: float,
     Returns
     -------
     ModelledOutline
-        360 radii about the box centre, one a degree from 0°, and the exponent.
+        360 radii about the box centre, one a degree from 0°, the exponent and
+        the radii's directions.
 
     Notes
     -----
@@ -226,9 +236,10 @@ def modelled_outline(box_width_mm: float, box_height_mm: float,
         exponent = exponent_without_ed
     else:
         exponent = fitted_exponent(box_width_mm, box_height_mm, effective_diameter_mm)
-    radii = superellipse_radii(box_width_mm / 2.0, box_height_mm / 2.0, exponent)
+    radii = superellipse_radii(box_width_mm / 2.0, box_height_mm / 2.0, exponent, MODEL_RADII_COUNT,
+                               MODEL_DIRECTIONS)
     radii.flags.writeable = False
-    return ModelledOutline(radii, exponent)
+    return ModelledOutline(radii, exponent, MODEL_DIRECTIONS)
 
 
 # --------------------------------------------------------------------------

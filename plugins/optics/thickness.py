@@ -120,7 +120,7 @@ def back_power_in_direction(back: ToricBack, direction_rad):
 
 
 # --------------------------------------------------------------------------
-# Thickness at many points: what does not depend on the centre thickness is worked out once
+# Thickness at many points: what depends on neither the front curve nor the centre thickness is worked out once
 # --------------------------------------------------------------------------
 
 _NOT_REACHING = "a surface of this lens does not reach the outline: its curve is steeper than the lens is wide"
@@ -132,20 +132,77 @@ _TINY_MM2 = 1e-300
 _REACH_MARGIN = 0.999999
 
 
+class _Body(NamedTuple):
+    """What a lens's thickness owes to its power, index and prism, apart from the front curve.
+
+    The principal powers of the surfacing power (D) and the direction of the
+    larger (degrees); ``cylinder_span`` is ``k (F_a − F_b)`` (1/mm) with
+    ``k = −1 / (1000 (n − 1))``: the back's curvature from its cylinder at most.
+    """
+
+    index: float
+    larger_d: float
+    smaller_d: float
+    direction_deg: float
+    cylinder_span: float
+    prism_delta: float
+    prism_base_deg: float
+
+
+def _body(surfacing: PowerMatrix, index: float, prism_delta: float, prism_base_deg: float) -> _Body:
+    larger, smaller, direction = principal_powers(surfacing)
+    return _Body(index, larger, smaller, direction, surface_curvature_per_mm(larger - smaller, index, "back"),
+                 prism_delta, prism_base_deg)
+
+
+class _Points(NamedTuple):
+    """Points about a lens's optical centre, with what their thickness owes to the lens's power and prism alone.
+
+    ``rho2`` is the squared distance from the optical centre (mm²); ``wedge``
+    the prism's share of the thickness (mm; None without prism);
+    ``back_cylinder`` the back's curvature from its cylinder,
+    ``k (F_a − F_b) cos²(φ − α)`` (1/mm, 0.0 for a spherical back), so that the
+    back's curvature in each direction is ``back_cylinder + k F_b(t)``: the
+    front curve and the centre thickness move both principal back powers by
+    the same amount, since F₂ = Fv − F₁/(1 − (t/n)F₁) in each meridian.
+    """
+
+    rho2: np.ndarray
+    wedge: np.ndarray | None
+    back_cylinder: np.ndarray | float
+
+
+def _points(x_mm: np.ndarray, y_mm: np.ndarray, body: _Body) -> _Points:
+    """The :class:`_Points` of points x, y (mm about the optical centre, front view)."""
+    rho2 = x_mm * x_mm
+    rho2 += y_mm * y_mm
+    wedge = None
+    if body.prism_delta:
+        base = math.radians(body.prism_base_deg)
+        per_mm = wedge_mm(body.prism_delta, 1.0, body.index)  # the wedge's thickness change per mm along the base
+        wedge = x_mm * (per_mm * math.cos(base))
+        wedge += y_mm * (per_mm * math.sin(base))
+    back_cylinder: np.ndarray | float = 0.0
+    if body.larger_d != body.smaller_d:
+        # cos²(φ − α) = (p · a)² / |p|², a the unit vector of the larger power's meridian (Euler's theorem).
+        # span ≤ 0, so k (F_a − F_b) cos² = (√−span (p · a))² / (−|p|²).
+        alpha, scale = math.radians(body.direction_deg), math.sqrt(-body.cylinder_span)
+        along = x_mm * (scale * math.cos(alpha))
+        along += y_mm * (scale * math.sin(alpha))
+        along *= along
+        along /= -_TINY_MM2 - rho2
+        back_cylinder = along
+    return _Points(rho2, wedge, back_cylinder)
+
+
 class _Profile(NamedTuple):
     """What the thickness at a set of points owes to the lens apart from its centre thickness.
 
-    ``rho2`` is the squared distance from the optical centre (mm²); ``fixed`` the
-    part of the thickness that does not depend on the centre thickness, minus
-    the front sag plus the prism wedge (mm); ``back_cylinder`` the back's
-    curvature from its cylinder, ``k (F_a − F_b) cos²(φ − α)`` (1/mm, 0.0 for a
-    spherical back), so that the back's curvature in each direction is
-    ``back_cylinder + k F_b(t)`` with ``k = −1 / (1000 (n − 1))``: the centre
-    thickness moves both principal back powers by the same amount, since
-    F₂ = Fv − F₁/(1 − (t/n)F₁) in each meridian. ``cylinder_span`` is
-    ``k (F_a − F_b)``, the most ``back_cylinder`` can be, and ``rho2_max`` (at
-    least) the largest ρ²: together they bound c²ρ² without looking at every
-    point. ``edge_rho2_max`` is the largest ρ² of the edge points.
+    ``rho2`` and ``back_cylinder`` as in :class:`_Points`; ``fixed`` the part
+    of the thickness that does not depend on the centre thickness, minus the
+    front sag plus the prism wedge (mm). ``cylinder_span`` (the most
+    ``back_cylinder`` can be) and ``rho2_max`` (at least the largest ρ²)
+    bound c²ρ² without looking at every point.
     """
 
     rho2: np.ndarray
@@ -156,54 +213,30 @@ class _Profile(NamedTuple):
     index: float
     cylinder_span: float
     rho2_max: float
-    edge_rho2_max: float
 
 
-def _profile(x_mm: np.ndarray, y_mm: np.ndarray, shape: LensShape, strict: bool,
-             edge_count: int | None = None, box_centre_rho2: float = 0.0) -> _Profile:
-    """The :class:`_Profile` of points x, y (mm about the optical centre, front view).
+def _profile(points: _Points, body: _Body, front_d: float, strict: bool, rho2_max: float) -> _Profile:
+    """The :class:`_Profile` of the points for a front curve.
 
     ``strict``: raise :class:`LensNotMakeable` when the front does not reach a
-    point; otherwise the thickness there is NaN. With ``edge_count``, the
-    points after the first ``edge_count`` (the edge) lie on the segments from
-    the box centre, at ``box_centre_rho2`` from the optical centre, to edge
-    points; ρ² is convex along a segment, so none is farther than the edge or
-    the box centre.
+    point; otherwise the thickness there is NaN. ``rho2_max`` bounds every ρ².
     """
-    index = shape.index
-    rho2 = x_mm * x_mm
-    rho2 += y_mm * y_mm
-    edge = rho2 if edge_count is None else rho2[:edge_count]
-    edge_rho2_max = float(edge[edge.argmax()]) if edge.size else 0.0
-    rho2_max = edge_rho2_max if edge_count is None else max(edge_rho2_max, box_centre_rho2)
-    front_curvature = surface_curvature_per_mm(shape.front_d, index, "front")
+    rho2 = points.rho2
+    front_curvature = surface_curvature_per_mm(front_d, body.index, "front")
     if front_curvature:
         square = front_curvature * front_curvature
         # rho2_max bounds every ρ²: only near the limit look at every point.
-        if strict and square * rho2_max > _REACH_MARGIN and float(np.max(square * rho2)) > 1.0:
+        reached = strict and square * rho2_max <= _REACH_MARGIN
+        if strict and not reached and float(np.max(square * rho2)) > 1.0:
             raise LensNotMakeable(_NOT_REACHING)
-        fixed = sag_from_squared_mm(-front_curvature, rho2)  # the sag is odd in the curvature: this is minus the front sag
+        # The sag is odd in the curvature: this is minus the front sag.
+        fixed = sag_from_squared_mm(-front_curvature, rho2, reached)
     else:
         fixed = np.zeros_like(rho2)
-    if shape.prism_delta:
-        base = math.radians(shape.prism_base_deg)
-        per_mm = wedge_mm(shape.prism_delta, 1.0, index)  # the wedge's thickness change per mm along the base
-        wedge = x_mm * (per_mm * math.cos(base))
-        wedge += y_mm * (per_mm * math.sin(base))
-        fixed += wedge
-    larger, smaller, direction = principal_powers(shape.surfacing)
-    back_cylinder: np.ndarray | float = 0.0
-    span = surface_curvature_per_mm(larger - smaller, index, "back")
-    if larger != smaller:
-        # cos²(φ − α) = (p · a)² / |p|², a the unit vector of the larger power's meridian (Euler's theorem).
-        # span ≤ 0, so k (F_a − F_b) cos² = (√−span (p · a))² / (−|p|²).
-        alpha, scale = math.radians(direction), math.sqrt(-span)
-        along = x_mm * (scale * math.cos(alpha))
-        along += y_mm * (scale * math.sin(alpha))
-        along *= along
-        along /= -_TINY_MM2 - rho2
-        back_cylinder = along
-    return _Profile(rho2, fixed, back_cylinder, shape.front_d, smaller, index, span, rho2_max, edge_rho2_max)
+    if points.wedge is not None:
+        fixed += points.wedge
+    return _Profile(rho2, fixed, points.back_cylinder, front_d, body.smaller_d, body.index, body.cylinder_span,
+                    rho2_max)
 
 
 def _relief_of(profile: _Profile, center_thickness_mm: float, strict: bool) -> np.ndarray:
@@ -216,12 +249,12 @@ def _relief_of(profile: _Profile, center_thickness_mm: float, strict: bool) -> n
     # k F_b(t): the back's curvature in the meridian of its smaller power, at this centre thickness.
     back_b = back_surface_power(profile.front_d, profile.back_vertex_b_d, center_thickness_mm, profile.index)
     shift = surface_curvature_per_mm(back_b, profile.index, "back")
-    thickness = sag_from_squared_mm(profile.back_cylinder + shift, profile.rho2)  # the back sag; NaN where it does not reach
-    if strict and thickness.size:
-        # c lies between k F_b and k F_b + span, ρ² is at most rho2_max: only near the limit look at every point.
-        steepest = max(shift * shift, (shift + profile.cylinder_span) ** 2)
-        if steepest * profile.rho2_max > _REACH_MARGIN and bool(np.isnan(thickness).any()):
-            raise LensNotMakeable(_NOT_REACHING)
+    # c lies between k F_b and k F_b + span, ρ² is at most rho2_max: only near the limit look at every point.
+    reached = strict and max(shift * shift, (shift + profile.cylinder_span) ** 2) * profile.rho2_max <= _REACH_MARGIN
+    # The back sag; NaN where it does not reach.
+    thickness = sag_from_squared_mm(profile.back_cylinder + shift, profile.rho2, reached)
+    if strict and not reached and thickness.size and bool(np.isnan(thickness).any()):
+        raise LensNotMakeable(_NOT_REACHING)
     thickness += profile.fixed
     return thickness
 
@@ -266,8 +299,9 @@ def thickness_mm(points_mm, shape: LensShape, center_thickness_mm: float) -> np.
     4.708
     """
     points = np.asarray(points_mm, dtype=float).reshape(-1, 2)
+    body = _body(shape.surfacing, shape.index, shape.prism_delta, shape.prism_base_deg)
     with np.errstate(invalid="ignore"):
-        profile = _profile(points[:, 0], points[:, 1], shape, strict=False)
+        profile = _profile(_points(points[:, 0], points[:, 1], body), body, shape.front_d, False, math.inf)
         thickness = _relief_of(profile, center_thickness_mm, strict=False)
     thickness += center_thickness_mm
     return thickness
@@ -424,13 +458,15 @@ def solve_center_thickness(edge_points_mm, shape: LensShape, min_center_mm: floa
     ('edge', 1.0)
     """
     points = np.asarray(edge_points_mm, dtype=float).reshape(-1, 2)
-    profile = _profile(points[:, 0], points[:, 1], shape, strict=True)
-    solved = _solve(profile, len(points), min_center_mm, min_edge_mm)
+    body = _body(shape.surfacing, shape.index, shape.prism_delta, shape.prism_base_deg)
+    edge = _points(points[:, 0], points[:, 1], body)
+    rho2_max = float(edge.rho2[edge.rho2.argmax()]) if edge.rho2.size else 0.0
+    solved = _solve(_profile(edge, body, shape.front_d, True, rho2_max), len(points), min_center_mm, min_edge_mm)
     return CentreThickness(solved.center_mm, solved.binding)
 
 
 # --------------------------------------------------------------------------
-# The volume: the thickness integrated over the outline
+# The outline's points and the nodes of the volume's quadrature (the thickness integrated over the outline)
 # --------------------------------------------------------------------------
 
 #: Radial Gauss–Legendre nodes per angle of the volume quadrature.
@@ -466,8 +502,8 @@ class _Layout(NamedTuple):
     row: np.ndarray
 
 
-def _layout(count: int) -> _Layout:
-    cosines, sines = unit_circle(count)
+def _layout(count: int, directions: tuple[np.ndarray, np.ndarray] | None = None) -> _Layout:
+    cosines, sines = unit_circle(count) if directions is None else directions
     stride = _volume_stride(count)
     row = (stride * 2.0 * math.pi / count) * _AREA_NODE_WEIGHTS
     return _Layout(cosines, sines, stride, row)
@@ -490,14 +526,17 @@ class OutlineGrid(NamedTuple):
     area: float
 
 
-def outline_grid(radii_mm: Sequence[float]) -> OutlineGrid:
-    """The points and volume weights of an outline, for :func:`edged_lenses` (a frame's may be kept and reused).
+def outline_grid(radii_mm: Sequence[float], directions: tuple[np.ndarray, np.ndarray] | None = None) -> OutlineGrid:
+    """The points and volume weights of an outline, for :func:`place_lens` (a frame's may be kept and reused).
 
     Parameters
     ----------
     radii_mm : sequence of float
         The outline of the right lens seen from the front, radii about the box
         centre at equal angle steps from 0° (the contract's form), mm.
+    directions : (ndarray, ndarray) or None
+        The radii's directions, ``unit_circle(len(radii_mm))``, when the
+        caller has them already (a modelled outline's).
 
     Returns
     -------
@@ -518,7 +557,7 @@ def outline_grid(radii_mm: Sequence[float]) -> OutlineGrid:
     (1.0, 1.0)
     """
     radii = np.array(radii_mm, dtype=float)
-    layout = _layout(radii.size)
+    layout = _layout(radii.size, directions)
     stride = layout.stride
     sampled = radii[::stride, None]
     nodes = sampled * _RADIAL_NODES  # each sampled radius's nodes, distances from the box centre
@@ -533,28 +572,30 @@ def outline_grid(radii_mm: Sequence[float]) -> OutlineGrid:
     return grid
 
 
-def _about_centre(grid: OutlineGrid, eye: str, centre_mm: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
-    """The grid's points about one lens's optical centre (the left lens is the mirror image of the right)."""
+def _about_centre(x: np.ndarray, y: np.ndarray, eye: str,
+                  centre_mm: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
+    """Points of the right lens's grid about one lens's optical centre (the left lens is the mirror image)."""
     if eye == "right":
-        x = grid.x - centre_mm[0]
+        x = x - centre_mm[0]
     elif eye == "left":
-        x = np.subtract(-centre_mm[0], grid.x)  # −x − c, in one step
+        x = np.subtract(-centre_mm[0], x)  # −x − c, in one step
     else:
         raise ValueError(f"eye must be 'right' or 'left', not {eye!r}")
-    return x, grid.y - centre_mm[1]
+    return x, y - centre_mm[1]
 
 
-def _volume_from(relief_nodes: np.ndarray, grid: OutlineGrid, eye: str, centre_mm: tuple[float, float],
-                 shape: LensShape, center_thickness_mm: float, x_nodes: np.ndarray, y_nodes: np.ndarray) -> float:
+def _volume_from(relief_nodes: np.ndarray, grid: OutlineGrid, eye: str, centre_mm: tuple[float, float], body: _Body,
+                 center_thickness_mm: float, wedge_nodes: np.ndarray | None) -> float:
     """``∬ t dA`` from the relief (thickness less the centre thickness) at the nodes.
 
     The centre thickness is a constant and the prism wedge a linear function:
     both are integrated over every sector exactly (area ½ Σ r² Δθ, first
     moments ⅓ Σ r³ (cos θ, sin θ) Δθ), in place of their share of the sampled
-    quadrature (which is exact for them already when every radius is used).
+    quadrature (``wedge_nodes``, the wedge at the nodes; which is exact for
+    them already when every radius is used).
     """
     volume = float(np.dot(relief_nodes, grid.weights)) + center_thickness_mm * grid.area
-    if shape.prism_delta and grid.layout.stride > 1:
+    if wedge_nodes is not None and grid.layout.stride > 1:
         radii = grid.radii
         count = radii.size
         cosines, sines = grid.layout.cosines, grid.layout.sines  # the outline's directions
@@ -563,21 +604,98 @@ def _volume_from(relief_nodes: np.ndarray, grid: OutlineGrid, eye: str, centre_m
         mirror = -1.0 if eye == "left" else 1.0
         moment_x = mirror * third * float(np.dot(cosines, cubes)) - centre_mm[0] * grid.area
         moment_y = third * float(np.dot(sines, cubes)) - centre_mm[1] * grid.area
-        base = math.radians(shape.prism_base_deg)
-        per_mm = wedge_mm(shape.prism_delta, 1.0, shape.index)
+        base = math.radians(body.prism_base_deg)
+        per_mm = wedge_mm(body.prism_delta, 1.0, body.index)
         along_x, along_y = per_mm * math.cos(base), per_mm * math.sin(base)
-        sampled = float(np.dot(x_nodes * along_x + y_nodes * along_y, grid.weights))
-        volume += along_x * moment_x + along_y * moment_y - sampled
+        volume += along_x * moment_x + along_y * moment_y - float(np.dot(wedge_nodes, grid.weights))
     return volume
 
 
+# --------------------------------------------------------------------------
+# One lens on its outline: placed once, then tried on front curves
+# --------------------------------------------------------------------------
+
+
+class LensPlacement(NamedTuple):
+    """A lens placed on its outline before its front curve is chosen: what every trial of a front shares.
+
+    ``points``: the outline's points, then the volume's nodes, about the
+    optical centre, with their prism wedge and the back's cylinder
+    (:class:`_Points`); ``reach_rho2``: at least the largest ρ² of them all
+    (the box centre's or the farthest edge point's); ``farthest_mm``: the
+    distance of the farthest outline point from the optical centre.
+    """
+
+    grid: OutlineGrid
+    eye: str
+    centre_mm: tuple[float, float]
+    body: _Body
+    points: _Points
+    reach_rho2: float
+    farthest_mm: float
+
+    @property
+    def larger_d(self) -> float:
+        """The surfacing power's larger principal power (D), the meridian of the back's flattest curve."""
+        return self.body.larger_d
+
+
+def place_lens(grid: OutlineGrid, eye: str, centre_mm: tuple[float, float], surfacing: PowerMatrix, index: float,
+               prism_delta: float = 0.0, prism_base_deg: float = 0.0) -> LensPlacement:
+    """One lens placed on its outline, for :func:`edged_lens` on any front curve.
+
+    Parameters
+    ----------
+    grid : OutlineGrid
+        The right lens's outline (:func:`outline_grid`).
+    eye : {"right", "left"}
+        The left lens is the mirror image of the right.
+    centre_mm : (float, float)
+        The optical centre about the box centre, mm.
+    surfacing : PowerMatrix
+        The back vertex power to produce, D.
+    index : float
+        Refractive index.
+    prism_delta, prism_base_deg : float
+        The prescribed prism (Δ) and its base (degrees, ISO 8429).
+
+    Returns
+    -------
+    LensPlacement
+        The outline's points and the volume's nodes about the optical centre,
+        with what their thickness owes to neither the front curve nor the
+        centre thickness (distances, prism wedge, the back's cylinder by
+        Euler's theorem), worked out once for every front curve tried.
+
+    References
+    ----------
+    Jalie, *The Principles of Ophthalmic Lenses* (prism thickness); Euler's
+    theorem for the toric back.
+
+    Examples
+    --------
+    >>> from lenslane.plugins.optics.power import power_matrix
+    >>> placed = place_lens(outline_grid([25.0] * 72), "right", (3.0, 0.0), power_matrix(-2.0), 1.5)
+    >>> round(placed.farthest_mm, 9)
+    28.0
+    """
+    body = _body(surfacing, index, prism_delta, prism_base_deg)
+    points = _points(*_about_centre(grid.x, grid.y, eye, centre_mm), body)
+    edge = points.rho2[:grid.radii.size]
+    edge_rho2_max = float(edge[edge.argmax()])
+    # The nodes lie on the segments from the box centre to the edge points; ρ² is convex along a segment, so
+    # none is farther than the edge or the box centre.
+    cx, cy = centre_mm
+    return LensPlacement(grid, eye, centre_mm, body, points, max(edge_rho2_max, cx * cx + cy * cy),
+                         math.sqrt(edge_rho2_max))
+
+
 class EdgedLens(NamedTuple):
-    """An edged lens worked out at once: the centre thickness and its binding minimum, the edges, the volume.
+    """An edged lens on one front curve: the centre thickness and its binding minimum, the edges, the volume.
 
     ``center_mm`` and ``binding`` as in :class:`CentreThickness`;
     ``edge_min_mm`` / ``edge_max_mm`` the thinnest and thickest point of the
-    outline; ``volume_mm3`` as :func:`lens_volume_mm3`; ``farthest_mm`` the
-    distance of the farthest outline point from the optical centre.
+    outline (mm); ``volume_mm3`` as :func:`lens_volume_mm3`.
     """
 
     center_mm: float
@@ -585,110 +703,26 @@ class EdgedLens(NamedTuple):
     edge_min_mm: float
     edge_max_mm: float
     volume_mm3: float
-    farthest_mm: float
 
 
-class LensRequest(NamedTuple):
-    """One lens for :func:`edged_lenses`: eye, optical centre (mm about the box centre), shape, minimums (mm)."""
-
-    eye: str
-    centre_mm: tuple[float, float]
-    shape: LensShape
-    min_center_mm: float
-    min_edge_mm: float
-
-
-def _edged(grid: OutlineGrid, lens: LensRequest) -> EdgedLens:
-    count = grid.radii.size
-    x, y = _about_centre(grid, lens.eye, lens.centre_mm)
-    cx, cy = lens.centre_mm
-    profile = _profile(x, y, lens.shape, strict=True, edge_count=count, box_centre_rho2=cx * cx + cy * cy)
-    solved = _solve(profile, count, lens.min_center_mm, lens.min_edge_mm)
-    center, relief = solved.center_mm, solved.relief_mm
-    edges = relief[:count]
-    volume = _volume_from(relief[count:], grid, lens.eye, lens.centre_mm, lens.shape, center, x[count:], y[count:])
-    return EdgedLens(center, solved.binding, solved.thinnest_mm, float(edges[edges.argmax()]) + center, volume,
-                     math.sqrt(profile.edge_rho2_max))
-
-
-def edged_lenses(outline: Sequence[float] | OutlineGrid,
-                 lenses: Sequence[LensRequest]) -> list[EdgedLens | LensNotMakeable]:
-    """Centre thickness, thinnest and thickest edge and volume of each lens cut to one outline.
+def edged_lens(placement: LensPlacement, front_d: float, min_center_mm: float, min_edge_mm: float) -> EdgedLens:
+    """Centre thickness, thinnest and thickest edge and volume of a placed lens on a front curve.
 
     Parameters
     ----------
-    outline : sequence of float, or OutlineGrid
-        The outline of the right lens seen from the front, radii about the box
-        centre at equal angle steps from 0° (the contract's form), mm; or its
-        :func:`outline_grid`, prepared before.
-    lenses : sequence of LensRequest
-        Each lens: eye (the left lens is the mirror image of the right),
-        optical centre about the box centre (mm), shape and minimums as in
-        :func:`solve_center_thickness`.
-
-    Returns
-    -------
-    list of EdgedLens or LensNotMakeable
-        Per lens, in order: the same centre thickness and binding as
-        :func:`solve_center_thickness` on the outline about its optical
-        centre, the least and greatest of :func:`thickness_mm` there, and the
-        volume as :func:`lens_volume_mm3` — or, for a lens that cannot be made
-        (a surface does not reach the outline or the volume's nodes, or no
-        thickness converges), the :class:`LensNotMakeable` that says why.
-
-    Notes
-    -----
-    The outline's points and the volume's nodes share one set of arrays,
-    placed once for all the lenses; per lens, what does not depend on the
-    centre thickness (distances, front sag, wedge, the back's cylinder) is
-    computed once, and each trial thickness costs a handful of array
-    operations.
-
-    References
-    ----------
-    Jalie, *The Principles of Ophthalmic Lenses* (thickness from sags, minimum
-    substance, weight = volume × density); Euler's theorem for the toric back.
-
-    Examples
-    --------
-    >>> from lenslane.plugins.optics.power import power_matrix
-    >>> right, left = edged_lenses([25.0] * 72, [
-    ...     LensRequest("right", (2.0, 0.0), LensShape(8.0, power_matrix(3.0), 1.5), 2.0, 1.0),
-    ...     LensRequest("left", (-2.0, 0.0), LensShape(8.0, power_matrix(3.0), 1.5), 2.0, 1.0)])
-    >>> right.binding, round(right.edge_min_mm, 9), round(right.center_mm - left.center_mm, 9)
-    ('edge', 1.0, 0.0)
-    """
-    grid = outline if isinstance(outline, OutlineGrid) else outline_grid(outline)
-    results: list[EdgedLens | LensNotMakeable] = []
-    for lens in lenses:
-        try:
-            results.append(_edged(grid, lens))
-        except LensNotMakeable as exc:
-            results.append(exc)
-    return results
-
-
-def edged_lens(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float, float], shape: LensShape,
-               min_center_mm: float, min_edge_mm: float) -> EdgedLens:
-    """Centre thickness, thinnest and thickest edge and volume of one edged lens (:func:`edged_lenses` for one).
-
-    Parameters
-    ----------
-    radii_mm : sequence of float
-        The outline of the right lens seen from the front, radii about the box
-        centre at equal angle steps from 0°.
-    eye : {"right", "left"}
-        The left lens is the mirror image of the right.
-    centre_mm : (float, float)
-        The optical centre about the box centre, mm.
-    shape : LensShape
-        Front curve, surfacing power, index and prism.
+    placement : LensPlacement
+        The lens on its outline (:func:`place_lens`).
+    front_d : float
+        True front power (D) at the lens index.
     min_center_mm, min_edge_mm : float
         The lab's minimums, as in :func:`solve_center_thickness`.
 
     Returns
     -------
     EdgedLens
+        The same centre thickness and binding as :func:`solve_center_thickness`
+        on the outline about the optical centre, the least and greatest of
+        :func:`thickness_mm` there, and the volume as :func:`lens_volume_mm3`.
 
     Raises
     ------
@@ -696,6 +730,12 @@ def edged_lens(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float, floa
         As :func:`solve_center_thickness`, or a surface does not reach the
         volume's quadrature nodes.
 
+    Notes
+    -----
+    The outline's points and the volume's nodes share one set of arrays,
+    placed once per lens; per front curve only the front sag is added, and
+    each trial thickness costs a handful of array operations.
+
     References
     ----------
     Jalie, *The Principles of Ophthalmic Lenses* (thickness from sags, minimum
@@ -704,11 +744,21 @@ def edged_lens(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float, floa
     Examples
     --------
     >>> from lenslane.plugins.optics.power import power_matrix
-    >>> lens = edged_lens([25.0] * 72, "right", (0.0, 0.0), LensShape(8.0, power_matrix(3.0), 1.5), 2.0, 1.0)
-    >>> lens.binding, round(lens.edge_min_mm, 9), round(lens.farthest_mm, 9)
-    ('edge', 1.0, 25.0)
+    >>> grid = outline_grid([25.0] * 72)
+    >>> right = edged_lens(place_lens(grid, "right", (2.0, 0.0), power_matrix(3.0), 1.5), 8.0, 2.0, 1.0)
+    >>> left = edged_lens(place_lens(grid, "left", (-2.0, 0.0), power_matrix(3.0), 1.5), 8.0, 2.0, 1.0)
+    >>> right.binding, round(right.edge_min_mm, 9), round(right.center_mm - left.center_mm, 9)
+    ('edge', 1.0, 0.0)
     """
-    return _edged(outline_grid(radii_mm), LensRequest(eye, centre_mm, shape, min_center_mm, min_edge_mm))
+    count = placement.grid.radii.size
+    points = placement.points
+    profile = _profile(points, placement.body, front_d, True, placement.reach_rho2)
+    solved = _solve(profile, count, min_center_mm, min_edge_mm)
+    center, relief = solved.center_mm, solved.relief_mm
+    edges = relief[:count]
+    volume = _volume_from(relief[count:], placement.grid, placement.eye, placement.centre_mm, placement.body,
+                          center, None if points.wedge is None else points.wedge[count:])
+    return EdgedLens(center, solved.binding, solved.thinnest_mm, float(edges[edges.argmax()]) + center, volume)
 
 
 def lens_volume_mm3(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float, float],
@@ -770,10 +820,11 @@ def lens_volume_mm3(radii_mm: Sequence[float], eye: str, centre_mm: tuple[float,
     """
     grid = outline_grid(radii_mm)
     count = grid.radii.size
-    x, y = _about_centre(grid, eye, centre_mm)
-    x_nodes, y_nodes = x[count:], y[count:]
-    relief = _relief_of(_profile(x_nodes, y_nodes, shape, strict=True), center_thickness_mm, strict=True)
-    return _volume_from(relief, grid, eye, centre_mm, shape, center_thickness_mm, x_nodes, y_nodes)
+    body = _body(shape.surfacing, shape.index, shape.prism_delta, shape.prism_base_deg)
+    nodes = _points(*_about_centre(grid.x[count:], grid.y[count:], eye, centre_mm), body)
+    relief = _relief_of(_profile(nodes, body, shape.front_d, True, float(nodes.rho2.max())), center_thickness_mm,
+                        strict=True)
+    return _volume_from(relief, grid, eye, centre_mm, body, center_thickness_mm, nodes.wedge)
 
 
 def lens_weight_g(volume_mm3: float, density_g_cm3: float) -> float:

@@ -23,6 +23,7 @@ import json
 import os
 import platform
 import shutil
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -86,28 +87,40 @@ def bench(count: int, workdir: Path, settings: dict[str, str] | None = None) -> 
             "load": (load_before, load_after)}
 
 
+def report(row: dict) -> None:
+    """Print one round: both rates, the ratio, memory, the load, and each stage's share of the chain."""
+    print(f"N={row['orders']}: engine {row['engine_rate']:.0f} orders/s ({row['engine_s']:.1f} s), "
+          f"floor {row['floor_rate']:.0f} orders/s ({row['floor_before_s']:.1f} s before, "
+          f"{row['floor_after_s']:.1f} s after), "
+          f"ratio {row['ratio']:.2f}, engine peak RSS {row['engine_peak_rss_mb']:.0f} MB "
+          f"(floor {row['floor_peak_rss_mb']:.0f} MB), published {row['published']}; "
+          f"load average {row['load'][0]:.2f} before, {row['load'][1]:.2f} after (other work on the machine "
+          "moves every figure)")
+    stage_seconds = row["stats"].get("stage_seconds", {})
+    chain = sum(stage_seconds.values())
+    if chain:
+        shares = ", ".join(f"{name} {100 * s / chain:.0f}%" for name, s in stage_seconds.items())
+        print(f"  the chain took {chain:.1f} s; per stage: {shares}")
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--orders", type=int, nargs="+", default=[4000], help="backlog sizes (default 4000)")
+    parser.add_argument("--rounds", type=int, default=3, help="rounds per size, each on fresh copies (default 3)")
     parser.add_argument("--keep", action="store_true", help="keep the generated labs")
     args = parser.parse_args()
     workdir = Path(tempfile.mkdtemp(prefix="lenslane-bench-", dir=os.environ.get("BENCH_DIR")))
     print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, {workdir}")
     try:
         for count in args.orders:
-            row = bench(count, workdir)
-            print(f"N={row['orders']}: engine {row['engine_rate']:.0f} orders/s ({row['engine_s']:.1f} s), "
-                  f"floor {row['floor_rate']:.0f} orders/s ({row['floor_before_s']:.1f} s before, "
-                  f"{row['floor_after_s']:.1f} s after), "
-                  f"ratio {row['ratio']:.2f}, engine peak RSS {row['engine_peak_rss_mb']:.0f} MB "
-                  f"(floor {row['floor_peak_rss_mb']:.0f} MB), published {row['published']}; "
-                  f"load average {row['load'][0]:.2f} before, {row['load'][1]:.2f} after (other work on the machine "
-                  "moves every figure)")
-            stage_seconds = row["stats"].get("stage_seconds", {})
-            chain = sum(stage_seconds.values())
-            if chain:
-                shares = ", ".join(f"{name} {100 * s / chain:.0f}%" for name, s in stage_seconds.items())
-                print(f"  the chain took {chain:.1f} s; per stage: {shares}")
+            ratios = []
+            for round_number in range(args.rounds):
+                row = bench(count, workdir / f"round-{round_number}")
+                report(row)
+                ratios.append(row["ratio"])
+            if len(ratios) > 1:
+                print(f"N={count}: median ratio of {len(ratios)} rounds {statistics.median(ratios):.2f} "
+                      f"(each: {', '.join(f'{ratio:.2f}' for ratio in ratios)})")
     finally:
         if not args.keep:
             shutil.rmtree(workdir, ignore_errors=True)

@@ -104,13 +104,17 @@ def test_back_surface_power_inverts_back_vertex_power(front_d, back_vertex_d, th
 # --------------------------------------------------------------------------
 
 
+@pytest.mark.parametrize("reached", [False, True])
 @pytest.mark.parametrize("power_d, y_mm", [(6.0, 25.0), (-8.0, 30.0), (0.0, 20.0), (12.0, 10.0)])
-def test_sag_from_the_squared_distance_is_the_sagitta_formula(power_d, y_mm):
-    # Source: the sagitta formula s = r − √(r² − y²) (Jalie), written out here with the radius.
+def test_sag_from_the_squared_distance_is_the_sagitta_formula(power_d, y_mm, reached):
+    # Source: the sagitta formula s = r − √(r² − y²) (Jalie), written out here with the radius; for points and
+    # arrays, with numpy's error state set (the default) or left alone (reached=True: every point within reach).
     curvature = surface_curvature_per_mm(power_d, 1.5)
     radius = math.inf if curvature == 0 else 1.0 / curvature
     reference = 0.0 if math.isinf(radius) else radius - math.copysign(math.sqrt(radius ** 2 - y_mm ** 2), radius)
-    assert float(sag_from_squared_mm(curvature, y_mm * y_mm)) == pytest.approx(reference, abs=1e-9)
+    assert float(sag_from_squared_mm(curvature, y_mm * y_mm, reached)) == pytest.approx(reference, abs=1e-9)
+    [array] = sag_from_squared_mm(curvature, np.array([y_mm * y_mm]), reached)
+    assert array == pytest.approx(reference, abs=1e-9)
 
 
 @given(st.floats(-0.06, 0.06), st.floats(0.0, 1600.0))
