@@ -377,15 +377,15 @@ def blank_diameter_from_ed_mm(effective_diameter_mm: float, inward_mm: float, al
     return effective_diameter_mm + 2.0 * abs(inward_mm) + allowance_mm
 
 
-def vertical_extent_at(radii_mm: Sequence[float], x_mm: float) -> tuple[float, float] | None:
+def vertical_extent_at(points_mm: np.ndarray, x_mm: float) -> tuple[float, float] | None:
     """The lowest and highest point of the outline on the vertical line x = ``x_mm`` (mm about the box centre).
 
     Parameters
     ----------
-    radii_mm : sequence of float
-        The right lens's outline (the contract's form), the polygon through its points.
+    points_mm : (N, 2) array
+        The outline's points (:func:`outline_points`), the polygon through them, its last side closing it.
     x_mm : float
-        The vertical line's distance right of the box centre, front view of the right lens, mm.
+        The vertical line's distance right of the box centre, in the points' view, mm.
 
     Returns
     -------
@@ -396,12 +396,10 @@ def vertical_extent_at(radii_mm: Sequence[float], x_mm: float) -> tuple[float, f
     --------
     A square-ish round lens of radius 20 mm, on its vertical through the centre:
 
-    >>> [round(v, 6) for v in vertical_extent_at([20.0] * 360, 0.0)]
+    >>> [round(v, 6) for v in vertical_extent_at(outline_points([20.0] * 360), 0.0)]
     [-20.0, 20.0]
     """
-    radii = np.asarray(radii_mm, dtype=float)
-    cosines, sines = unit_circle(radii.size)
-    x, y = radii * cosines, radii * sines  # the points of outline_points, by coordinate
+    x, y = points_mm[:, 0], points_mm[:, 1]
     # Each side of the polygon runs from a point to the next; the last closes it, back to the first.
     offset = x - x_mm
     crosses = offset[:-1] * offset[1:] <= 0.0
@@ -412,7 +410,7 @@ def vertical_extent_at(radii_mm: Sequence[float], x_mm: float) -> tuple[float, f
     start = np.flatnonzero(crosses)
     end = start + 1
     if closing:
-        start, end = np.append(start, radii.size - 1), np.append(end, 0)
+        start, end = np.append(start, x.size - 1), np.append(end, 0)
     x_start, y_start = x[start], y[start]
     fraction = (x_mm - x_start) / (x[end] - x_start)
     heights = y_start + fraction * (y[end] - y_start)

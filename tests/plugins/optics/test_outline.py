@@ -96,7 +96,7 @@ def test_the_vertical_extent_of_a_round_outline_is_the_circle_s_chord(radius, co
     # through `count` points of it, whose every point lies at least R cos(π/count) from the centre, so the
     # polygon meets the vertical no nearer the centre than ±√(R² cos²(π/count) − a²).
     x_mm = along * radius
-    low, high = vertical_extent_at([radius] * count, x_mm)
+    low, high = vertical_extent_at(outline_points([radius] * count), x_mm)
     chord = math.sqrt(radius * radius - x_mm * x_mm)
     inner = math.sqrt(max(0.0, (radius * math.cos(math.pi / count)) ** 2 - x_mm * x_mm))
     assert -chord - 1e-9 <= low <= -inner + 1e-9 and inner - 1e-9 <= high <= chord + 1e-9
@@ -106,5 +106,5 @@ def test_the_vertical_extent_uses_the_side_that_closes_the_outline():
     # Source: plane geometry. The outline of 4 equal radii is a diamond (corners at 0°, 90°, 180°, 270°): x = 5
     # crosses the sides from 270° to 0° (the closing side, last point to first) and from 0° to 90°,
     # at y = ∓(20 − 5) mm; beyond the outline, none.
-    assert vertical_extent_at([20.0] * 4, 5.0) == pytest.approx((-15.0, 15.0))
-    assert vertical_extent_at([20.0] * 4, 21.0) is None
+    assert vertical_extent_at(outline_points([20.0] * 4), 5.0) == pytest.approx((-15.0, 15.0))
+    assert vertical_extent_at(outline_points([20.0] * 4), 21.0) is None
