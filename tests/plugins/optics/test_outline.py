@@ -9,8 +9,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from lenslane.plugins.optics.outline import (
-    blank_diameter_from_ed_mm, blank_diameter_mm, decentration, fitted_exponent, modelled_outline, optical_centre,
-    outline_extent, outline_points, superellipse_radii, vertical_extent_at,
+    blank_diameter_from_ed_mm, blank_diameter_mm, decentration, fitted_exponent, longest_radius, modelled_outline,
+    optical_centre, outline_extent, outline_points, superellipse_radii, vertical_extent_at,
 )
 
 
@@ -79,6 +79,27 @@ def test_the_modelled_outline_has_the_stated_box_and_ed(width, height, ed):
     assert extent.width_mm == pytest.approx(width, abs=1e-6)
     assert extent.height_mm == pytest.approx(height, abs=1e-6)
     assert extent.effective_diameter_mm == pytest.approx(ed, abs=0.02)  # sampled at 1° steps
+
+
+@settings(max_examples=100, deadline=None)
+@given(a=st.floats(10.0, 40.0), b=st.floats(10.0, 40.0),
+       m=st.one_of(st.sampled_from([2.0, 2.000001, 2.01, 60.0]), st.floats(2.0, 60.0)))
+def test_the_longest_radius_is_the_superellipse_s_farthest_point(a, b, m):
+    # Source: the superellipse |x/a|^m + |y/b|^m = 1 in polar form, r(θ) = (|cos θ/a|^m + |sin θ/b|^m)^(−1/m),
+    # sampled at 200 001 angles of the first quadrant (the curve is symmetric about both axes): the closed form
+    # may not fall short of any sample, and the densest sample comes within the sampling's own error.
+    angles = np.linspace(0.0, math.pi / 2.0, 200_001)
+    sampled = float(np.max((np.abs(np.cos(angles) / a) ** m + np.abs(np.sin(angles) / b) ** m) ** (-1.0 / m)))
+    assert sampled - 1e-9 <= longest_radius(a, b, m) <= sampled + 1e-7
+
+
+def test_the_longest_radius_of_a_square_s_superellipse_is_at_its_diagonal():
+    # Source: |x/a|^m + |y/a|^m = 1 meets the diagonal x = y at x = a·2^(−1/m), so r = a·2^(1/2 − 1/m); the ellipse
+    # (m = 2) reaches no farther than its longer semi-axis.
+    for m in (2.5, 4.0, 10.0, 60.0):
+        assert longest_radius(20.0, 20.0, m) == pytest.approx(20.0 * 2.0 ** (0.5 - 1.0 / m), rel=1e-12)
+    assert longest_radius(26.0, 19.0, 2.0) == 26.0
+    assert longest_radius(19.0, 26.0, 2.0) == 26.0
 
 
 def test_the_exponent_stays_within_ellipse_and_rectangle():
