@@ -12,7 +12,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from lenslane import Flag, Stage, hookimpl
 from lenslane.plugins.optics.outline import (
-    decentration as inward_decentration, optical_centre, outline_extent, vertical_extent_at,
+    decentration as inward_decentration, optical_centre, outline_extent, outline_points, vertical_extent_at,
 )
 from lenslane.plugins.optics.power import is_on_step
 
@@ -48,6 +48,11 @@ def _fit_checks(view, params: ValidateParams):
     order = view.order
     frame = order.frame
     pds = {}
+    # The outline's points (the right lens's view), worked out once for every height placed on it.
+    placed = frame.outline_mm is not None and any(
+        getattr(order.fit, eye).height_mm is not None or getattr(order.fit, eye).segment_height_mm is not None
+        for eye in view.eyes)
+    points = outline_points(frame.outline_mm) if placed else None
     for eye in view.eyes:
         fit = getattr(order.fit, eye)
         pds[eye] = fit.pd_mm
@@ -70,7 +75,7 @@ def _fit_checks(view, params: ValidateParams):
             )
         heights = [(name, value) for name, value in (("fitting height", fit.height_mm),
                                                      ("segment height", fit.segment_height_mm)) if value is not None]
-        span = _lens_span(view, eye) if heights else None
+        span = _lens_span(view, eye, points) if heights else None
         outside = [flag for name, value in heights if (flag := _outside_lens(view, eye, name, value, span)) is not None]
         yield from outside
         if outside:
@@ -97,14 +102,17 @@ def _fit_checks(view, params: ValidateParams):
         )
 
 
-def _lens_span(view, eye: str) -> tuple[float, float, str]:
-    """How far the lens reaches up and down at the pupil's position (mm above the box bottom), and in what words."""
+def _lens_span(view, eye: str, points) -> tuple[float, float, str]:
+    """How far the lens reaches up and down at the pupil's position (mm above the box bottom), and in what words.
+
+    ``points`` are the outline's (the right lens's view: the left is its mirror), or None when the order has none.
+    """
     frame, fit = view.order.frame, getattr(view.order.fit, eye)
-    if frame.outline_mm is None:
+    if points is None:
         return 0.0, frame.box_height_mm, f"the box height of {frame.box_height_mm:.1f} mm"
-    # On the outline, along the vertical through the pupil (the right lens's view; the left is its mirror).
+    # On the outline, along the vertical through the pupil.
     offset = inward_decentration(frame.box_width_mm, frame.bridge_mm, frame.box_height_mm, fit.pd_mm)
-    extent = vertical_extent_at(frame.outline_mm, optical_centre("right", offset)[0])
+    extent = vertical_extent_at(points, optical_centre("right", offset)[0])
     low, high = (0.0, 0.0) if extent is None else (extent[0] + frame.box_height_mm / 2.0,
                                                      extent[1] + frame.box_height_mm / 2.0)
     return low, high, f"the lens outline, {low:.1f}–{high:.1f} mm above the box bottom below the pupil"

@@ -136,12 +136,34 @@ def superellipse_radii(half_width_mm: float, half_height_mm: float, exponent: fl
     return inverse ** (-1.0 / exponent)
 
 
-def _longest_radius(half_width_mm: float, half_height_mm: float, exponent: float) -> float:
-    # The longest radius lies in the first quadrant by symmetry; sample it finely.
-    angles = np.linspace(0.0, math.pi / 2.0, 2049)
-    inverse = (np.abs(np.cos(angles) / half_width_mm) ** exponent
-               + np.abs(np.sin(angles) / half_height_mm) ** exponent)
-    return float(np.max(inverse ** (-1.0 / exponent)))
+def longest_radius(half_width_mm: float, half_height_mm: float, exponent: float) -> float:
+    """The longest radius of the superellipse |x/a|^m + |y/b|^m = 1 from its centre (mm), in closed form.
+
+    Notes
+    -----
+    For m > 2 the farthest point is where the curve's normal points at the centre: with L the longer and S
+    the shorter semi-axis, Lagrange's condition on x² + y² gives its short-axis coordinate over its long-axis
+    one as v = (S/L)^(m/(m−2)); scaled onto the curve, the long-axis coordinate is
+    L (1 + q^m)^(−1/m) with q = (S/L)^(2/(m−2)), and the radius is that times √(1 + v²). The axis ends are
+    the nearest points for m > 2 (the curve is flatter there than the circle through them). For m = 2, the
+    ellipse, it is L. Both powers of S/L ≤ 1 stay in range for every m > 2 (they fall to 0 as m → 2).
+
+    Examples
+    --------
+    A square's superellipse reaches its diagonal at x = y = a·2^(−1/m):
+
+    >>> round(longest_radius(20.0, 20.0, 4.0), 9) == round(20.0 * 2 ** 0.25, 9)
+    True
+    >>> longest_radius(26.0, 19.0, 2.0)
+    26.0
+    """
+    longer, shorter = max(half_width_mm, half_height_mm), min(half_width_mm, half_height_mm)
+    if exponent <= 2.0:
+        return longer
+    ratio = shorter / longer
+    v = ratio ** (exponent / (exponent - 2.0))
+    q = ratio ** (2.0 / (exponent - 2.0))
+    return longer * (1.0 + q ** exponent) ** (-1.0 / exponent) * math.sqrt(1.0 + v * v)
 
 
 def fitted_exponent(box_width_mm: float, box_height_mm: float, effective_diameter_mm: float) -> float:
@@ -178,13 +200,13 @@ def fitted_exponent(box_width_mm: float, box_height_mm: float, effective_diamete
     a, b = box_width_mm / 2.0, box_height_mm / 2.0
     target = effective_diameter_mm / 2.0
     low, high = _EXPONENT_RANGE
-    if target <= _longest_radius(a, b, low):
+    if target <= longest_radius(a, b, low):
         return low
-    if target >= _longest_radius(a, b, high):
+    if target >= longest_radius(a, b, high):
         return high
     for _ in range(60):
         middle = 0.5 * (low + high)
-        if _longest_radius(a, b, middle) < target:
+        if longest_radius(a, b, middle) < target:
             low = middle
         else:
             high = middle
@@ -377,15 +399,15 @@ def blank_diameter_from_ed_mm(effective_diameter_mm: float, inward_mm: float, al
     return effective_diameter_mm + 2.0 * abs(inward_mm) + allowance_mm
 
 
-def vertical_extent_at(radii_mm: Sequence[float], x_mm: float) -> tuple[float, float] | None:
+def vertical_extent_at(points_mm: np.ndarray, x_mm: float) -> tuple[float, float] | None:
     """The lowest and highest point of the outline on the vertical line x = ``x_mm`` (mm about the box centre).
 
     Parameters
     ----------
-    radii_mm : sequence of float
-        The right lens's outline (the contract's form), the polygon through its points.
+    points_mm : (N, 2) array
+        The outline's points (:func:`outline_points`), the polygon through them, its last side closing it.
     x_mm : float
-        The vertical line's distance right of the box centre, front view of the right lens, mm.
+        The vertical line's distance right of the box centre, in the points' view, mm.
 
     Returns
     -------
@@ -396,12 +418,10 @@ def vertical_extent_at(radii_mm: Sequence[float], x_mm: float) -> tuple[float, f
     --------
     A square-ish round lens of radius 20 mm, on its vertical through the centre:
 
-    >>> [round(v, 6) for v in vertical_extent_at([20.0] * 360, 0.0)]
+    >>> [round(v, 6) for v in vertical_extent_at(outline_points([20.0] * 360), 0.0)]
     [-20.0, 20.0]
     """
-    radii = np.asarray(radii_mm, dtype=float)
-    cosines, sines = unit_circle(radii.size)
-    x, y = radii * cosines, radii * sines  # the points of outline_points, by coordinate
+    x, y = points_mm[:, 0], points_mm[:, 1]
     # Each side of the polygon runs from a point to the next; the last closes it, back to the first.
     offset = x - x_mm
     crosses = offset[:-1] * offset[1:] <= 0.0
@@ -412,7 +432,7 @@ def vertical_extent_at(radii_mm: Sequence[float], x_mm: float) -> tuple[float, f
     start = np.flatnonzero(crosses)
     end = start + 1
     if closing:
-        start, end = np.append(start, radii.size - 1), np.append(end, 0)
+        start, end = np.append(start, x.size - 1), np.append(end, 0)
     x_start, y_start = x[start], y[start]
     fraction = (x_mm - x_start) / (x[end] - x_start)
     heights = y_start + fraction * (y[end] - y_start)

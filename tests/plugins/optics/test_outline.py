@@ -9,8 +9,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from lenslane.plugins.optics.outline import (
-    blank_diameter_from_ed_mm, blank_diameter_mm, decentration, fitted_exponent, modelled_outline, optical_centre,
-    outline_extent, outline_points, superellipse_radii, vertical_extent_at,
+    blank_diameter_from_ed_mm, blank_diameter_mm, decentration, fitted_exponent, longest_radius, modelled_outline,
+    optical_centre, outline_extent, outline_points, superellipse_radii, vertical_extent_at,
 )
 
 
@@ -81,6 +81,27 @@ def test_the_modelled_outline_has_the_stated_box_and_ed(width, height, ed):
     assert extent.effective_diameter_mm == pytest.approx(ed, abs=0.02)  # sampled at 1° steps
 
 
+@settings(max_examples=100, deadline=None)
+@given(a=st.floats(10.0, 40.0), b=st.floats(10.0, 40.0),
+       m=st.one_of(st.sampled_from([2.0, 2.000001, 2.01, 60.0]), st.floats(2.0, 60.0)))
+def test_the_longest_radius_is_the_superellipse_s_farthest_point(a, b, m):
+    # Source: the superellipse |x/a|^m + |y/b|^m = 1 in polar form, r(θ) = (|cos θ/a|^m + |sin θ/b|^m)^(−1/m),
+    # sampled at 200 001 angles of the first quadrant (the curve is symmetric about both axes): the closed form
+    # may not fall short of any sample, and the densest sample comes within the sampling's own error.
+    angles = np.linspace(0.0, math.pi / 2.0, 200_001)
+    sampled = float(np.max((np.abs(np.cos(angles) / a) ** m + np.abs(np.sin(angles) / b) ** m) ** (-1.0 / m)))
+    assert sampled - 1e-9 <= longest_radius(a, b, m) <= sampled + 1e-7
+
+
+def test_the_longest_radius_of_a_square_s_superellipse_is_at_its_diagonal():
+    # Source: |x/a|^m + |y/a|^m = 1 meets the diagonal x = y at x = a·2^(−1/m), so r = a·2^(1/2 − 1/m); the ellipse
+    # (m = 2) reaches no farther than its longer semi-axis.
+    for m in (2.5, 4.0, 10.0, 60.0):
+        assert longest_radius(20.0, 20.0, m) == pytest.approx(20.0 * 2.0 ** (0.5 - 1.0 / m), rel=1e-12)
+    assert longest_radius(26.0, 19.0, 2.0) == 26.0
+    assert longest_radius(19.0, 26.0, 2.0) == 26.0
+
+
 def test_the_exponent_stays_within_ellipse_and_rectangle():
     # Source: an ED no larger than the longer box side is an ellipse at most; beyond the box diagonal nothing
     # inside the box reaches it (the superellipse tends to the rectangle).
@@ -96,7 +117,7 @@ def test_the_vertical_extent_of_a_round_outline_is_the_circle_s_chord(radius, co
     # through `count` points of it, whose every point lies at least R cos(π/count) from the centre, so the
     # polygon meets the vertical no nearer the centre than ±√(R² cos²(π/count) − a²).
     x_mm = along * radius
-    low, high = vertical_extent_at([radius] * count, x_mm)
+    low, high = vertical_extent_at(outline_points([radius] * count), x_mm)
     chord = math.sqrt(radius * radius - x_mm * x_mm)
     inner = math.sqrt(max(0.0, (radius * math.cos(math.pi / count)) ** 2 - x_mm * x_mm))
     assert -chord - 1e-9 <= low <= -inner + 1e-9 and inner - 1e-9 <= high <= chord + 1e-9
@@ -106,5 +127,5 @@ def test_the_vertical_extent_uses_the_side_that_closes_the_outline():
     # Source: plane geometry. The outline of 4 equal radii is a diamond (corners at 0°, 90°, 180°, 270°): x = 5
     # crosses the sides from 270° to 0° (the closing side, last point to first) and from 0° to 90°,
     # at y = ∓(20 − 5) mm; beyond the outline, none.
-    assert vertical_extent_at([20.0] * 4, 5.0) == pytest.approx((-15.0, 15.0))
-    assert vertical_extent_at([20.0] * 4, 21.0) is None
+    assert vertical_extent_at(outline_points([20.0] * 4), 5.0) == pytest.approx((-15.0, 15.0))
+    assert vertical_extent_at(outline_points([20.0] * 4), 21.0) is None
