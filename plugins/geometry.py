@@ -11,7 +11,7 @@ Every value is proposed as its own change, with the method that made it.
 from __future__ import annotations
 
 import math
-from typing import Annotated, NamedTuple
+from typing import Annotated, Callable, NamedTuple
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
@@ -749,9 +749,10 @@ def run(view, params: GeometryParams):
             yield from _eye_geometry(view, params, shared, lens, choice, thinning, later)
 
 
-def _chosen(view, params: GeometryParams, surfacings: dict):
+def _chosen(view, params: GeometryParams, surfacings: dict, shared: _Shared | None = None):
     """The pair's lenses and front curves for these surfacing powers (eye → power, or None for no lens)."""
-    shared = _shared(view, params, _outline(view, params))
+    if shared is None:
+        shared = _shared(view, params, _outline(view, params))
     thinning = thinning_prism(view, params, surfacings)
     lenses = [_prepare(view, eye, surfacing, params, thinning, shared)
               for eye, surfacing in surfacings.items() if surfacing is not None]
@@ -761,31 +762,33 @@ def _chosen(view, params: GeometryParams, surfacings: dict):
     return shared, thinning, lenses, choices
 
 
-def planned_fronts(view, surfacings: dict, params: GeometryParams | None = None) -> dict[str, float]:
-    """The front curve this stage gives each eye's lens for these surfacing powers (eye → power).
+class PlannedLens(NamedTuple):
+    """An eye's lens as this stage would make it: its front curve, and its solution on that front (the centre
+    thickness) or why no thickness makes it."""
+
+    front_d: float
+    solved: EdgedLens | LensNotMakeable
+
+
+def lens_planner(view, params: GeometryParams | None = None) -> Callable[[dict], dict[str, PlannedLens]]:
+    """How this stage would make the order's lenses: surfacing powers (eye → power) → each eye's front curve and
+    its solution on it.
 
     For a stage before this one whose optics depend on the lens's shape (the
-    exact tilt compensation): the same choice as :func:`run` — the rule, the
-    stock, a concave back, matched fronts — with ``params`` the lab's
-    ``[stages.geometry]``.
-    """
-    _, _, lenses, choices = _chosen(view, params or GeometryParams(), surfacings)
-    return {lens.eye: choice.trial.front_d for lens, choice in zip(lenses, choices)}
-
-
-def planned_centre_mm(view, eye: str, surfacings: dict, front_d: float, params: GeometryParams | None = None) -> float:
-    """The centre thickness (mm) this stage solves for the eye's lens on a given front curve.
-
-    Raises :class:`~lenslane.plugins.optics.thickness.LensNotMakeable` when no
-    thickness makes the lens.
+    exact tilt compensation), which asks for several powers: the same choice
+    as :func:`run` — the rule, the stock, a concave back, matched fronts —
+    with ``params`` the lab's ``[stages.geometry]``, and the centre thickness
+    this stage solves on it. The outline and the material, which do not
+    depend on the powers, are worked out once.
     """
     params = params or GeometryParams()
     shared = _shared(view, params, _outline(view, params))
-    lens = _prepare(view, eye, surfacings[eye], params, thinning_prism(view, params, surfacings))
-    trial = _try(shared, lens, front_d, params)
-    if isinstance(trial.solved, LensNotMakeable):
-        raise trial.solved
-    return trial.solved.center_mm
+
+    def planned(surfacings: dict) -> dict[str, PlannedLens]:
+        _, _, lenses, choices = _chosen(view, params, surfacings, shared)
+        return {lens.eye: PlannedLens(choice.trial.front_d, choice.trial.solved)
+                for lens, choice in zip(lenses, choices)}
+    return planned
 
 
 def _not_makeable(lens: _Eye, shared: _Shared, trial: _Trial) -> Flag:

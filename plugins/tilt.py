@@ -22,9 +22,9 @@ from lenslane.plugins.compensation import (
     CompensationParams, Design, matrix_of, no_surfacing, not_applied, power_dict, propose, trade_notation,
 )
 from lenslane.contract.precision import present
-from lenslane.plugins.geometry import GeometryParams, planned_centre_mm, planned_fronts
+from lenslane.plugins.geometry import GeometryParams, PlannedLens, lens_planner
 from lenslane.plugins.optics.asworn import (
-    asworn_power, exact_compensation, gaze_errors, largest_meridional_error, off_axis_record, worn_lens,
+    ExactLens, asworn_power, exact_compensation, gaze_errors, largest_meridional_error, off_axis_record, worn_lens,
 )
 from lenslane.plugins.optics.power import PowerMatrix
 from lenslane.plugins.optics.raytrace import RayMissedSurface
@@ -49,8 +49,6 @@ EXACT_SOURCE = ("Spencer & Murty, \"General ray-tracing procedure\", JOSA 52:672
                 "(thickness); Thibos, Wheeler & Horner, Optom Vis Sci 74:367, 1997 (off-axis errors)")
 
 ALL_DESIGNS: list[Design] = list(DESIGNS)
-#: The solve is repeated at most this often when the solved powers make the geometry choose other front curves.
-_FRONT_ROUNDS = 4
 
 
 class TiltParams(CompensationParams):
@@ -84,48 +82,38 @@ class _Exact(NamedTuple):
 def _exact_pair(view, befores: dict, martins: dict, tilts: dict, index: float, form: str) -> dict[str, _Exact]:
     """Solve the surfacing powers, the front curves and the thicknesses the geometry stage will give them, together.
 
-    The front curves are the geometry stage's choice for the pair's surfacing
-    powers (matched fronts included); each power is solved for its eye's front
-    (the thickness re-derived at every round), and again if the solved powers
-    make the geometry stage choose other fronts, until the fronts it chooses
-    are the ones solved for. Raises :class:`LensNotMakeable` (no lens can be
+    The front curves and centre thicknesses are the geometry stage's own for
+    the pair's surfacing powers (matched fronts included), asked once per
+    round of the solution for both eyes; the first round starts from its lens
+    for Martin's powers. Raises :class:`LensNotMakeable` (no lens can be
     made) or :class:`RayMissedSurface` (a chief ray cannot get through).
     """
     geometry = view.settings.stage_params.get("geometry") or GeometryParams()
-    # The rounds of the solution start at the lab's minimum centre thickness: every minus lens's.
+    # A lens for Martin's power that no thickness makes starts at the lab's minimum centre thickness.
     minimums = geometry.minimum_thickness.get(view.order.lens.material, geometry.other_minimum_thickness)
-    surfacings = dict(martins)
-    fronts, solved = None, {}
 
-    def powers(matrices):
-        return {eye: power_dict(matrix, befores[eye], form) for eye, matrix in matrices.items()}
+    planner = lens_planner(view, geometry)
 
-    for _ in range(_FRONT_ROUNDS):
-        chosen = planned_fronts(view, powers(surfacings), geometry)
-        if chosen == fronts:
-            break
-        fronts = chosen
-        for eye, before in befores.items():
-            theta, tangential = tilts[eye]
+    def planned(matrices) -> dict[str, PlannedLens]:
+        return planner({eye: power_dict(matrix, befores[eye], form) for eye, matrix in matrices.items()})
 
-            def thickness_of(candidate, eye=eye):
-                return planned_centre_mm(view, eye, powers({**surfacings, eye: candidate}), fronts[eye], geometry)
+    def shape(surfacings):
+        return {eye: (lens.front_d, _centre_mm(lens)) for eye, lens in planned(surfacings).items()}
 
-            solved[eye] = exact_compensation(matrix_of(before), fronts[eye], index, theta, tangential, thickness_of,
-                                             start_mm=minimums.center_mm)
-            surfacings[eye] = solved[eye].surfacing
-    else:
-        raise LensNotMakeable(f"the solved powers keep changing the front curves the lab would choose "
-                              f"({_FRONT_ROUNDS} rounds)")
+    start = {eye: (lens.front_d, _centre_mm(lens, otherwise=minimums.center_mm))
+             for eye, lens in planned(martins).items()}
+    lenses = {eye: ExactLens(matrix_of(before), index, *tilts[eye]) for eye, before in befores.items()}
+    solved = exact_compensation(lenses, shape, start)
     exact = {}
     for eye, before in befores.items():
         theta, tangential = tilts[eye]
-        wanted, front, centre = matrix_of(before), fronts[eye], solved[eye].center_mm
-        published = matrix_of(present(power_dict(surfacings[eye], before, form), "surfacing"))
+        wanted, front, centre, surfacing = lenses[eye].wanted, solved[eye].front_d, solved[eye].center_mm, \
+            solved[eye].surfacing
+        published = matrix_of(present(power_dict(surfacing, before, form), "surfacing"))
         published_worn = asworn_power(worn_lens(front, published, centre, index, theta, tangential))
-        errors = gaze_errors(worn_lens(front, surfacings[eye], centre, index, theta, tangential), wanted, eye,
+        errors = gaze_errors(worn_lens(front, surfacing, centre, index, theta, tangential), wanted, eye,
                              geometry.rotation_distance_mm)
-        exact[eye] = _Exact(surfacings[eye], {
+        exact[eye] = _Exact(surfacing, {
             "method": "exact",
             "martin_surfacing": power_dict(martins[eye], before, form),
             "asworn_residual_d": solved[eye].residual_d,
@@ -138,6 +126,16 @@ def _exact_pair(view, befores: dict, martins: dict, tilts: dict, index: float, f
             "off_axis": off_axis_record(errors),
         })
     return exact
+
+
+def _centre_mm(lens: PlannedLens, otherwise: float | None = None) -> float:
+    """The planned lens's centre thickness; when no thickness makes it, ``otherwise`` if given, else it raises
+    :class:`LensNotMakeable`."""
+    if not isinstance(lens.solved, LensNotMakeable):
+        return lens.solved.center_mm
+    if otherwise is None:
+        raise lens.solved
+    return otherwise
 
 
 def _missing_fit(view, params: TiltParams, pantoscopic, face_form):

@@ -47,6 +47,7 @@ from lenslane.plugins.optics.raytrace import (
     torus_curvature, torus_normal,
 )
 from lenslane.plugins.optics.surfaces import back_surface_power, back_vertex_power, surface_curvature_per_mm
+from lenslane.plugins.optics.thickness import LensNotMakeable
 
 #: From the back vertex to the eye's centre of rotation, mm (about 27 mm; from memory).
 ROTATION_DISTANCE_MM = 27.0
@@ -486,60 +487,125 @@ def _difference(a, b) -> PowerMatrix:
     return PowerMatrix(float(a[0]) - float(b[0]), float(a[1]) - float(b[1]), float(a[2]) - float(b[2]))
 
 
+class ExactLens(NamedTuple):
+    """A lens to compensate: the wanted as-worn power at the back-vertex plane (D) — the prescription carried to
+    the fitting vertex distance — its refractive index, obliquity (radians) and tangential direction."""
+
+    wanted: PowerMatrix
+    index: float
+    theta: float
+    tangential: tuple[float, float]
+
+
 class ExactCompensation(NamedTuple):
-    """The solved lens: surfacing power, centre thickness (mm), residual (D), rounds of the solution."""
+    """A solved lens: surfacing power, front curve (D), centre thickness (mm), residual (D), rounds of the solution."""
 
     surfacing: PowerMatrix
+    front_d: float
     center_mm: float
     residual_d: float
     rounds: int
 
 
-def exact_compensation(wanted, front_d: float, index: float, theta: float, tangential: tuple[float, float],
-                       thickness_of: Callable[[PowerMatrix], float], *, start_mm: float,
-                       tolerance_d: float = RESIDUAL_TOLERANCE_D) -> ExactCompensation:
-    """The surfacing power whose real-ray as-worn power equals the wanted power, with the thickness it implies.
+#: How the lab shapes lenses: ``shape(surfacings) -> {key: (front curve D, centre thickness mm)}`` for the
+#: surfacing powers of all the lenses solved together (a pair: its fronts are chosen together).
+Shaping = Callable[[dict[str, PowerMatrix]], dict[str, tuple[float, float]]]
+
+
+class _Rounds:
+    """One lens's solution so far: the front and thickness it is being solved on, the surfacing power made for
+    them, the thicknesses tried with how far the lab's thickness was from each, and the lens the lab last made."""
+
+    def __init__(self, lens: ExactLens, front_d: float, thickness_mm: float, tolerance_d: float):
+        self.lens, self.tolerance_d = lens, tolerance_d
+        self.front_d, self.thickness_mm = float(front_d), float(thickness_mm)
+        self.surfacing: PowerMatrix | None = None
+        self.rounds, self.tried = 0, []
+        self.made: ExactCompensation | None = None
+
+    @property
+    def done(self) -> bool:
+        """The lens the lab makes for the surfacing power is worn as the wanted power."""
+        return self.made is not None and self.made.residual_d < self.tolerance_d
+
+    def solve(self) -> None:
+        """The surfacing power, exact in closed form, for the front and thickness being tried."""
+        lens = self.lens
+        self.surfacing = surfacing_for(lens.wanted, self.front_d, self.thickness_mm, lens.index, lens.theta,
+                                       lens.tangential)
+        self.rounds += 1
+
+    def take(self, front_d: float, own_mm: float) -> None:
+        """The lab's front and centre thickness for the surfacing power: the lens it makes, traced afresh with its
+        toric back, and what to try next if that lens is not yet worn as wanted."""
+        if self.done and (front_d, own_mm) == (self.made.front_d, self.made.center_mm):
+            return  # the same lens as the one already traced
+        if front_d != self.front_d:  # the lab would choose another front for this power: solve on that one
+            self.front_d, self.thickness_mm, self.tried, self.made = float(front_d), own_mm, [], None
+            return
+        lens = self.lens
+        worn = asworn_power(worn_lens(front_d, self.surfacing, own_mm, lens.index, lens.theta, lens.tangential))
+        self.made = ExactCompensation(self.surfacing, self.front_d, own_mm,
+                                      largest_meridional_error(_difference(lens.wanted, worn)), self.rounds)
+        if self.done:
+            return
+        self.tried.append((self.thickness_mm, own_mm - self.thickness_mm))
+        self.thickness_mm = own_mm
+        if len(self.tried) > 1 and self.tried[-1][1] != self.tried[-2][1]:
+            (t_a, g_a), (t_b, g_b) = self.tried[-2:]
+            self.thickness_mm = t_b - g_b * (t_b - t_a) / (g_b - g_a)
+
+
+def exact_compensation(lenses: dict[str, ExactLens], shape: Shaping, start: dict[str, tuple[float, float]], *,
+                       tolerance_d: float = RESIDUAL_TOLERANCE_D) -> dict[str, ExactCompensation]:
+    """The surfacing powers whose real-ray as-worn powers equal the wanted powers, solved together with the front
+    curves and centre thicknesses the lab gives them.
 
     Parameters
     ----------
-    wanted : PowerMatrix or (xx, xy, yy)
-        The wanted as-worn power at the back-vertex plane, D: the prescription
-        carried to the fitting vertex distance.
-    front_d, index, theta : float
-        Front curve (D), refractive index, obliquity (radians).
-    tangential : (float, float)
-        Tangential direction of the tilt.
-    thickness_of : callable
-        ``thickness_of(surfacing) -> centre thickness (mm)``: how the lab
-        derives the thickness from the surfacing power (the lens geometry
-        model); a constant for a lens of fixed thickness.
-    start_mm : float
-        The first thickness tried (the lab's minimum centre thickness is the
-        thickness of every minus lens).
+    lenses : dict of ExactLens
+        The lenses solved together (a pair: its fronts are chosen together).
+    shape : callable
+        ``shape(surfacings) -> {key: (front_d, centre_mm)}``: the front curve
+        and centre thickness the lab gives each lens for these surfacing
+        powers (the lens geometry model); constants for lenses of fixed shape.
+        It may raise (no lens can be made).
+    start : dict of (float, float)
+        Each lens's first front curve (D) and thickness (mm) tried: the lab's
+        for an estimate of the surfacing powers (Martin's formula's).
     tolerance_d : float
-        Stop when the residual is below this.
+        A lens is solved when its residual is below this.
 
     Returns
     -------
-    ExactCompensation
-        The surfacing power, the centre thickness of that surfacing power, the
-        residual (the largest meridional error of ``wanted − as-worn`` for that
-        lens, D) and the rounds taken.
+    dict of ExactCompensation
+        Per lens: the surfacing power, the front curve and centre thickness
+        the lab gives that power, the residual (the largest meridional error
+        of ``wanted − as-worn`` for that lens, D) and the surfacing powers
+        solved for it.
+
+    Raises
+    ------
+    LensNotMakeable
+        The solved powers keep changing the front curves the lab chooses.
 
     Notes
     -----
-    At a given thickness t the surfacing power S(t) is exact in closed form
-    (:func:`surfacing_for`), and the lab gives that power its own thickness
-    T(S(t)): the solution is the thickness with ``T(S(t)) = t``. Each round
-    tries a thickness, makes the lens of S(t) at its own thickness, and
-    traces it afresh with its toric back (:func:`asworn_power`); it stops
-    when that lens is worn as the wanted power. The next thickness is the one
-    just found, and from the third round the secant method's root of
-    ``T(S(t)) − t`` through the last two tries. The thickness moves the
-    as-worn power by thousandths of a dioptre per millimetre and S(t) moves
-    T by far less than t itself, so one round suffices when the start is the
-    lens's thickness (a minus lens at the lab's minimum centre), and three
-    for a plus lens.
+    On a given front at a given thickness t the surfacing power S(t) is
+    exact in closed form (:func:`surfacing_for`), and the lab gives that
+    power its own front and thickness T(S(t)): the solution is the thickness
+    with ``T(S(t)) = t`` on the front the lab chooses for S(t). Each round
+    makes S(t) for every lens not yet solved, asks the lab once for all
+    the lenses' fronts and thicknesses, and traces each lens it makes afresh
+    with its toric back (:func:`asworn_power`); a lens is solved when that
+    lens, on the front it was solved for, is worn as the wanted power. The
+    next thickness is the one just found, and from a lens's third round the
+    secant method's root of ``T(S(t)) − t`` through its last two tries; a lens
+    the lab would put on another front starts again on that front, from the
+    thickness the lab gives it there. The thickness moves the as-worn power
+    by thousandths of a dioptre per millimetre and S(t) moves T by far less
+    than t itself, so one round suffices when the start is the lens's
+    thickness (a minus lens at the lab's minimum centre).
 
     References
     ----------
@@ -547,20 +613,20 @@ def exact_compensation(wanted, front_d: float, index: float, theta: float, tange
     1962); fixed-point iteration and the secant method as in any
     numerical-analysis text.
     """
-    wanted = PowerMatrix(*(float(v) for v in wanted))
-    thickness, tried = float(start_mm), []
-    for rounds in range(1, _MAX_ROUNDS + 1):
-        surfacing = surfacing_for(wanted, front_d, thickness, index, theta, tangential)
-        own = thickness_of(surfacing)
-        residual = _difference(wanted, asworn_power(worn_lens(front_d, surfacing, own, index, theta, tangential)))
-        if largest_meridional_error(residual) < tolerance_d:
+    rounds = {key: _Rounds(lens, *start[key], tolerance_d) for key, lens in lenses.items()}
+    for _ in range(_MAX_ROUNDS):
+        for solution in rounds.values():
+            if not solution.done:
+                solution.solve()
+        shaped = shape({key: solution.surfacing for key, solution in rounds.items()})
+        for key, solution in rounds.items():
+            solution.take(*shaped[key])
+        if all(solution.done for solution in rounds.values()):
             break
-        tried.append((thickness, own - thickness))
-        thickness = own
-        if len(tried) > 1 and tried[-1][1] != tried[-2][1]:
-            (t_a, g_a), (t_b, g_b) = tried[-2:]
-            thickness = t_b - g_b * (t_b - t_a) / (g_b - g_a)
-    return ExactCompensation(surfacing, own, largest_meridional_error(residual), rounds)
+    if any(solution.made is None for solution in rounds.values()):
+        raise LensNotMakeable(f"the solved powers keep changing the front curves the lab would choose "
+                              f"({_MAX_ROUNDS} rounds)")
+    return {key: solution.made for key, solution in rounds.items()}
 
 
 # --------------------------------------------------------------------------
@@ -736,8 +802,6 @@ def best_form(surfacing, index: float, theta: float, tangential: tuple[float, fl
     ----------
     Atchison (1992), Applied Optics 31:3579 (best form by exact ray trace).
     """
-    from lenslane.plugins.optics.thickness import LensNotMakeable
-
     kept, centres, errors = [], [], []
     for base in sorted(bases_d):
         try:

@@ -10,7 +10,7 @@ from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 
 from lenslane.plugins.optics.asworn import (
-    GAZE_DIRECTIONS, GazeErrors, WornLens, asworn_power, best_form, exact_compensation, form_score, gaze_errors,
+    GAZE_DIRECTIONS, ExactLens, GazeErrors, WornLens, asworn_power, best_form, exact_compensation, form_score, gaze_errors,
     largest_meridional_error, lens_direction, no_roll_axes, off_axis_record, pencil_vergence, surfacing_for,
     trace_chief_ray, worn_lens,
 )
@@ -106,7 +106,8 @@ def test_domain_exact_compensation():
     # +8.00 D, centre 4.5 mm, worn at 14 mm with pantoscopic 8° and face form 10° → surface +3.86 −0.99 × 85.9.
     wanted = vertex_move(power_matrix(4.0, -1.0, 90.0), 12.0, 14.0)
     theta, t = tilt_obliquity(8.0, 10.0, "left")
-    solved = exact_compensation(wanted, 8.0, 1.498, theta, t, lambda surfacing: 4.5, start_mm=4.5)
+    [solved] = exact_compensation({"left": ExactLens(wanted, 1.498, theta, t)},
+                                  lambda surfacings: {"left": (8.0, 4.5)}, {"left": (8.0, 4.5)}).values()
     assert _sphero_cylinder(solved.surfacing) == (3.86, -0.99, 85.9)
     assert solved.residual_d < 1e-9 and solved.rounds == 1
     # The solution, traced afresh, is worn as the wanted power.
@@ -352,15 +353,74 @@ def test_exact_compensation_with_the_lens_geometry(rx, front, index, p, w, eye, 
     wanted = power_matrix(*rx)
     theta, t = tilt_obliquity(p, w, eye)
     thickness_of = _thickness_of(front, index)
-    solved = exact_compensation(wanted, front, index, theta, t, thickness_of, start_mm=start_mm)
+    [solved] = exact_compensation({eye: ExactLens(wanted, index, theta, t)},
+                                  lambda surfacings: {eye: (front, thickness_of(surfacings[eye]))},
+                                  {eye: (front, start_mm)}).values()
     centre = thickness_of(solved.surfacing)
-    assert solved.center_mm == centre
+    assert solved.center_mm == centre and solved.front_d == front
     worn = asworn_power(worn_lens(front, solved.surfacing, centre, index, theta, t))
     assert np.max(np.abs(np.array(worn) - np.array(wanted))) < 1e-9
     assert solved.residual_d < 1e-9
     assert solved.rounds <= 5
     if rx[0] < 0 and start_mm == 2.0:
         assert solved.rounds == 1  # a minus lens at the minimum centre it started from
+
+
+def _worn_as_wanted(solved, wanted, index, theta, t):
+    worn = asworn_power(worn_lens(solved.front_d, solved.surfacing, solved.center_mm, index, theta, t))
+    return np.max(np.abs(np.array(worn) - np.array(wanted))) < 1e-9
+
+
+def test_exact_compensation_ends_on_the_front_the_lab_chooses_for_the_solved_power():
+    # Source: DOMAIN.md "Exact as-worn power" and issue 16 item 2 (front curve, centre thickness and surfacing
+    # power describe one lens). A lab rule that puts this +6 D lens on an 8 D front below +5.0 D of surfacing
+    # sphere-equivalent and on 10 D above: the start (8 D) is not the front of the solved power (about +5.5 D
+    # when tilted 20°); the solution must end on 10 D, worn as wanted there.
+    wanted, index = power_matrix(6.0, 0.0, 180.0), 1.498
+    theta, t = tilt_obliquity(20.0, 0.0, "right")
+
+    def shape(surfacings):
+        surfacing = surfacings["right"]
+        front = 8.0 if 0.5 * (surfacing[0] + surfacing[2]) < 5.0 else 10.0
+        return {"right": (front, _thickness_of(front, index)(surfacing))}
+
+    [solved] = exact_compensation({"right": ExactLens(wanted, index, theta, t)}, shape,
+                                  {"right": (8.0, 2.0)}).values()
+    assert solved.front_d == 10.0 == shape({"right": solved.surfacing})["right"][0]
+    assert solved.center_mm == shape({"right": solved.surfacing})["right"][1]
+    assert _worn_as_wanted(solved, wanted, index, theta, t) and solved.residual_d < 1e-9
+
+
+def test_exact_compensation_solves_a_pair_whose_thicknesses_depend_on_each_other():
+    # Source: DOMAIN.md "Exact as-worn power"; the lab's thickness of one lens may depend on the other's power (a
+    # progressive pair's yoked thinning prism, DOMAIN.md "Multifocal reference points"). Here the right lens is
+    # 0.5 mm thicker for every dioptre of the left lens's power: each lens must be worn as wanted at the
+    # thickness the lab gives the pair's solved powers, not at one it gave an earlier round's.
+    wanted = {"right": power_matrix(-3.0, -1.0, 20.0), "left": power_matrix(5.0, -0.5, 160.0)}
+    index, front = 1.586, 6.0
+    tilts = {eye: tilt_obliquity(10.0, 15.0, eye) for eye in wanted}
+
+    def shape(surfacings):
+        left = _thickness_of(front, index)(surfacings["left"])
+        return {"right": (front, 2.0 + 0.5 * surfacings["left"][0]), "left": (front, left)}
+
+    solved = exact_compensation({eye: ExactLens(wanted[eye], index, *tilts[eye]) for eye in wanted}, shape,
+                                {"right": (front, 2.0), "left": (front, 2.0)})
+    final = shape({eye: solved[eye].surfacing for eye in solved})
+    for eye in wanted:
+        assert solved[eye].center_mm == final[eye][1]
+        assert _worn_as_wanted(solved[eye], wanted[eye], index, *tilts[eye])
+    assert solved["right"].rounds > 1  # its first solution was for the left lens's first power
+
+
+def test_exact_compensation_refuses_fronts_that_keep_changing():
+    # Source: issue 16 item 2 — a lens whose solved power keeps moving the lab's choice of front has no one
+    # consistent front curve, centre thickness and surfacing power: no lens is made.
+    theta, t = tilt_obliquity(10.0, 0.0, "right")
+    fronts = iter([6.0, 8.0] * 20)
+    with pytest.raises(LensNotMakeable, match="keep changing the front curves"):
+        exact_compensation({"right": ExactLens(power_matrix(2.0, 0.0, 180.0), 1.5, theta, t)},
+                           lambda surfacings: {"right": (next(fronts), 2.0)}, {"right": (4.0, 2.0)})
 
 
 # --------------------------------------------------------------------------
