@@ -51,6 +51,8 @@ def make_order(index: int, rng: random.Random) -> dict:
     frame = {"box_width_mm": width, "box_height_mm": height, "bridge_mm": bridge}
     if rng.random() < 0.4:
         frame["outline_mm"] = _outline(rng, width, height, rng.choice([72, 100, 360]))
+    elif index % 3 == 0:  # an effective diameter instead, as practices often send (no draw: the others stay the same)
+        frame["effective_diameter_mm"] = round(0.93 * math.hypot(width, height), 1)
     return {
         "format": "lens-order/1", "order_id": f"BENCH-{index:06d}", "placed_at": "2026-11-30T08:00:00Z",
         "account": f"bench-practice-{index % 7:02d}", "wearer": {"ref": f"BW-{index:06d}", "birth_year": rng.randint(1940, 2004)},
