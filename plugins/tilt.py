@@ -107,8 +107,8 @@ def _exact_pair(view, befores: dict, martins: dict, tilts: dict, index: float, f
     exact = {}
     for eye, before in befores.items():
         theta, tangential = tilts[eye]
-        wanted, front, centre, surfacing = lenses[eye].wanted, solved[eye].front_d, solved[eye].center_mm, \
-            solved[eye].surfacing
+        wanted, made = lenses[eye].wanted, solved[eye]
+        front, centre, surfacing = made.front_d, made.center_mm, made.surfacing
         published = matrix_of(present(power_dict(surfacing, before, form), "surfacing"))
         published_worn = asworn_power(worn_lens(front, published, centre, index, theta, tangential))
         errors = gaze_errors(worn_lens(front, surfacing, centre, index, theta, tangential), wanted, eye,
