@@ -116,10 +116,10 @@ def _exact_pair(view, befores: dict, martins: dict, tilts: dict, index: float, f
         exact[eye] = _Exact(surfacing, {
             "method": "exact",
             "martin_surfacing": power_dict(martins[eye], before, form),
-            "asworn_residual_d": solved[eye].residual_d,
+            "asworn_residual_d": made.residual_d,
             "published_asworn_residual_d": largest_meridional_error(
                 [w - p for w, p in zip(wanted, published_worn)]),
-            "solution_rounds": solved[eye].rounds,
+            "solution_rounds": made.rounds,
             "front_curve_d": front,
             "center_thickness_mm": centre,
             "rotation_distance_mm": geometry.rotation_distance_mm,
