@@ -357,8 +357,8 @@ class Index:
         (UTC times as the records write them), for outcomes and decisions."""
         return self.db.execute(
             "SELECT event, status, count(*) FROM records WHERE ts >= ? AND ts < ? "
-            "AND event IN ('published', 'rejected', 'held', 'skipped', 'decided') GROUP BY event, status",
-            (start, end)).fetchall()
+            "AND event IN (?, ?, ?, ?, ?) GROUP BY event, status",
+            (start, end, *OUTCOMES, "decided")).fetchall()
 
     def search(self, text: str, limit: int) -> list[tuple[str | None, str | None, str, str | None, str | None]]:
         """The inputs whose order id or file name contains ``text`` (in any case), newest first: for each (order
