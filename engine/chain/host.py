@@ -176,7 +176,7 @@ def start_host(config: LabConfig, trace: bool | None = None, plugins: dict[str, 
     for name, plugin in (plugins or {}).items():
         known.append(name)
         if name not in blocked:
-            _register(pm, infos, plugin, _embedded_info(name, plugin))
+            _register(pm, infos, plugin, _embedded_info(name))
     _check_blocked(blocked, known)
     _check_hooks(pm, infos)
     if trace if trace is not None else config.engine.trace_hooks:
@@ -260,7 +260,7 @@ def _load_installed(pm: pluggy.PluginManager, infos: dict[str, PluginInfo], bloc
     return names
 
 
-def _embedded_info(name: str, plugin: object) -> PluginInfo:
+def _embedded_info(name: str) -> PluginInfo:
     """A plugin object handed to :func:`start_host` by the program that embeds the engine (or a test)."""
     return PluginInfo(name, "unpackaged", "unversioned")
 
