@@ -27,8 +27,8 @@ ENTRY_POINT_GROUP = "lenslane.plugins"
 #: The engine's own distribution: the one the built-in plugins come with.
 ENGINE_DISTRIBUTION = "lenslane"
 #: Set (to anything but "" or "0") to load only the built-in plugins, and of the installed ones only those
-#: named in LENSLANE_PLUGINS (comma-separated entry-point names), as pytest's PYTEST_DISABLE_PLUGIN_AUTOLOAD
-#: and PYTEST_PLUGINS do. The engine's own tests set it, so an installed plugin changes none of them.
+#: named in LENSLANE_PLUGINS (comma-separated entry-point names). The engine's own tests set it, so an
+#: installed plugin changes none of them.
 NO_AUTOLOAD_VARIABLE = "LENSLANE_DISABLE_PLUGIN_AUTOLOAD"
 PLUGINS_VARIABLE = "LENSLANE_PLUGINS"
 
