@@ -38,6 +38,16 @@ def cmd_audit_verify(args) -> int:
     from lenslane.audit.index import Index
     from lenslane.audit.verify import verify
 
+    # The files the command line names are read first: one that cannot be read is a mistake in the command.
+    try:
+        checkpoints = read_checkpoints(Path(args.checkpoints)) if args.checkpoints else None
+        key = load_public_key(Path(args.public_key)) if args.public_key else None
+    except OSError as exc:
+        print(f"lenslane: cannot read {exc.filename}: {exc.strerror}", file=sys.stderr)
+        return 2
+    except ValueError as exc:  # the key file is there but holds no Ed25519 public key
+        print(f"lenslane: {exc}", file=sys.stderr)
+        return 2
     lab = Path(args.lab)
     index = Index(lab)
     try:
@@ -48,9 +58,7 @@ def cmd_audit_verify(args) -> int:
         for finding in (report.breaks + report.result_problems)[1:]:
             print(f"also: {finding}")
         ok = report.ok
-        if args.checkpoints:
-            checkpoints = read_checkpoints(Path(args.checkpoints))
-            key = load_public_key(Path(args.public_key)) if args.public_key else None
+        if checkpoints is not None:
             findings = check_checkpoints(index, checkpoints, key)
             if not checkpoints:
                 print(f"checkpoints BROKEN: {args.checkpoints} holds no checkpoint line")

@@ -73,7 +73,10 @@ def load_public_key(path: Path):
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
     from cryptography.hazmat.primitives.serialization import load_pem_public_key
 
-    key = load_pem_public_key(Path(path).read_bytes())
+    try:
+        key = load_pem_public_key(Path(path).read_bytes())
+    except ValueError:  # not PEM, or PEM of no key
+        key = None
     if not isinstance(key, Ed25519PublicKey):
         raise ValueError(f"{path}: not an Ed25519 public key")
     return key

@@ -104,6 +104,22 @@ def test_a_signature_made_with_another_key_fails(busy_lab, capsys, tmp_path):
     assert code == 1 and out[-1].endswith("not signed")
 
 
+def test_a_checkpoint_file_or_key_that_cannot_be_read_is_refused_before_the_log_is_read(busy_lab, capsys, tmp_path):
+    checkpoint(busy_lab, capsys, tmp_path / "kept.txt")
+    (tmp_path / "garbage.pub").write_text("not a key\n", encoding="utf-8")
+    for flags, said in (
+        (["--checkpoints", str(tmp_path / "missing.txt")], f"cannot read {tmp_path / 'missing.txt'}: No such file"),
+        (["--checkpoints", str(tmp_path / "kept.txt"), "--public-key", str(tmp_path / "missing.pub")],
+         f"cannot read {tmp_path / 'missing.pub'}: No such file"),
+        (["--checkpoints", str(tmp_path / "kept.txt"), "--public-key", str(tmp_path / "garbage.pub")],
+         f"{tmp_path / 'garbage.pub'}: not an Ed25519 public key"),
+    ):
+        code = main(["audit", "verify", str(busy_lab.root), *flags])
+        captured = capsys.readouterr()
+        assert code == 2 and captured.out == ""
+        assert captured.err.startswith(f"lenslane: {said}")
+
+
 def test_the_engine_logs_signed_checkpoints_that_verify(make_lab, drop, order_dict, tmp_path, capsys):
     lab = make_lab()
     assert main(["audit", "keygen", str(lab.root / "checkpoint.key")]) == 0
