@@ -13,7 +13,6 @@ $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
 	$(BIN)/python -m pip install --quiet -e '.[test]'
-	$(MAKE) --no-print-directory bytecode
 	touch $(STAMP)
 
 # Compiled once here, so a start-up never compiles the engine's modules again,
@@ -21,7 +20,7 @@ $(STAMP): pyproject.toml
 bytecode:
 	$(BIN)/python -m compileall -q engine plugins config
 
-install: $(STAMP)
+install: $(STAMP) bytecode
 
 run: $(STAMP) bytecode
 	$(BIN)/lenslane init $(LAB)

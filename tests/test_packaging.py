@@ -74,7 +74,7 @@ def test_only_the_lenslane_package_is_installed_with_its_data(installed):
     top = sorted(p.name for p in installed.iterdir() if not p.name.endswith(".dist-info") and p.name != "bin")
     assert top == ["lenslane"]  # no top-level engine, plugins or config module
     for shipped in ("py.typed", "defaults/lenslane.toml", "defaults/lenslane.service", "vocabulary.py",
-                    "testing/fixtures.py", "report/notation.py"):
+                    "testing/fixtures.py", "report/notation.py", "web/templates/order.html"):
         assert (installed / "lenslane" / shipped).is_file(), shipped
     [dist] = installed.glob("lenslane-*.dist-info")
     assert "[pytest11]\nlenslane = lenslane.testing.fixtures" in (dist / "entry_points.txt").read_text()
