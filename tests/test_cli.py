@@ -4,6 +4,7 @@ from __future__ import annotations
 import json
 import os
 import shutil
+import sqlite3
 import subprocess
 import sys
 
@@ -46,6 +47,8 @@ def test_init_is_idempotent_and_never_overwrites_a_config(tmp_path):
     for folder in ("inbox", "outbox", "rejected", "archive"):
         assert (lab / folder).is_dir()
     assert (lab / "audit.jsonl").read_bytes() == b""
+    with sqlite3.connect(lab / "audit.sqlite") as index:  # the log's index, as empty as the log
+        assert index.execute("SELECT count(*) FROM records").fetchone() == (0,)
     assert "[engine]" in (lab / "lenslane.toml").read_text()
     (lab / "lenslane.toml").write_text("# the lab's own\n")
     assert "nothing changed" in lenslane("init", lab).stdout

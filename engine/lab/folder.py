@@ -22,6 +22,7 @@ import time
 from pathlib import Path
 from typing import Any, Callable, ContextManager
 
+from lenslane.audit.index import INDEX_NAME, Index
 from lenslane.audit.log import AUDIT_NAME, AuditLog
 from lenslane.audit.records import received as received_part, run_definition, utc_now
 from lenslane.chain.host import Host
@@ -64,6 +65,9 @@ def init_lab(lab: Path) -> list[str]:
     if not audit.exists():
         audit.touch()
         created.append(AUDIT_NAME)
+    if not (lab / INDEX_NAME).exists():
+        Index(lab).close()  # the log's index, empty as the log is
+        created.append(INDEX_NAME)
     config = lab / CONFIG_NAME
     if not config.exists():
         config.write_text(template_text(), encoding="utf-8")
