@@ -266,13 +266,14 @@ def build_parser() -> argparse.ArgumentParser:
     commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     sub = commands.add_parser("init", help="make a lab folder (idempotent)", description="Make LAB/inbox, outbox, "
-                              "review, held, rejected, archive, work, decisions, an empty audit.jsonl and a commented "
-                              "lenslane.toml. Never overwrites an existing config.")
+                              "review, held, rejected, archive, work, decisions, an empty audit.jsonl with its index "
+                              "(audit.sqlite) and a commented lenslane.toml. Never overwrites an existing config.")
     sub.add_argument("lab", metavar="LAB")
     sub.set_defaults(func=cmd_init)
 
     sub = commands.add_parser("watch", help="process the lab's inbox", description="Watch LAB/inbox and process "
-                              "every order: results to outbox/, bad orders to rejected/, inputs to archive/.")
+                              "every order: results to outbox/ (or review/ when a person must decide), bad orders to "
+                              "rejected/, other versions of a published order to held/, inputs to archive/.")
     sub.add_argument("lab", metavar="LAB")
     sub.add_argument("--once", action="store_true", help="drain the inbox once and exit")
     sub.add_argument("--stats", action="store_true",
@@ -372,7 +373,8 @@ def build_parser() -> argparse.ArgumentParser:
         "result in review/ goes to outbox/ with status ready and an approved block; refuse: it goes to "
         "rejected/ with your reason. replace: the held version is run through the chain as the order's next "
         "revision and supersedes the published result (kept in archive/); discard: the held version is archived. "
-        "Works whether or not `lenslane watch` runs on the lab. Exit codes: 0 decided; 2 a request not well "
+        "Works whether or not `lenslane watch` runs on the lab. Exit codes: 0 decided; 1 the lab could not be "
+        "written (the request stays and is applied later); 2 a request not well "
         "formed; 4 unknown order; 5 not awaiting this decision (decided already, or waiting for another kind); "
         "6 the file does not match the audit log; 7 the running engine did not take the request in time.")
     sub.add_argument("lab", metavar="LAB")
