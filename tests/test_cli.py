@@ -132,3 +132,15 @@ def test_a_bad_config_stops_watch_with_the_key_path(tmp_path):
 def test_every_command_has_help(command):
     out = lenslane(*command, "--help").stdout
     assert "usage: lenslane" in out
+
+
+@pytest.mark.parametrize("command", [["schema"], ["schema", "--result"], ["plugins"]])
+def test_a_reader_that_went_away_gets_no_traceback(command):
+    # `lenslane schema | head -1` with head gone before the command writes: the write fails, the command ends quietly.
+    read, write = os.pipe()
+    os.close(read)  # closed before the child has started, so its first write meets a pipe without a reader
+    child = subprocess.Popen([sys.executable, "-m", "lenslane.cli", *command], stdout=write, stderr=subprocess.PIPE)
+    os.close(write)
+    _, errors = child.communicate(timeout=60)
+    assert errors == b""
+    assert child.returncode == 1
