@@ -41,12 +41,12 @@ from __future__ import annotations
 import math
 from typing import Callable, NamedTuple, Sequence
 
-from lenslane.plugins.optics.power import PowerMatrix, principal_powers
+from lenslane.plugins.optics.power import PowerMatrix
 from lenslane.plugins.optics.raytrace import (
     RayMissedSurface, Vector, dot, intersect_sphere, intersect_torus, point_at, refract, reverse, sphere_normal,
     torus_curvature, torus_normal,
 )
-from lenslane.plugins.optics.surfaces import back_surface_power, back_vertex_power, surface_curvature_per_mm
+from lenslane.plugins.optics.surfaces import back_vertex_power, surface_curvature_per_mm, toric_back_surface
 from lenslane.plugins.optics.thickness import LensNotMakeable
 
 #: From the back vertex to the eye's centre of rotation, mm (about 27 mm; from memory).
@@ -157,8 +157,8 @@ def worn_lens(front_d: float, surfacing, thickness_mm: float, index: float, thet
     Notes
     -----
     The back surface is the one the lab makes for that surfacing power behind
-    that front at that thickness, as
-    :func:`~lenslane.plugins.optics.surfaces.toric_back_surface` makes it: per
+    that front at that thickness,
+    :func:`~lenslane.plugins.optics.surfaces.toric_back_surface`: per
     principal meridian ``F₂ = Fv − F₁ / (1 − (t/n) F₁)``, the profile in the
     meridian of the larger power.
 
@@ -168,12 +168,12 @@ def worn_lens(front_d: float, surfacing, thickness_mm: float, index: float, thet
     principal meridian).
     """
     front_d, thickness_mm, index = float(front_d), float(thickness_mm), float(index)
-    larger, smaller, direction = principal_powers(PowerMatrix(*(float(v) for v in surfacing)))
-    angle = math.radians(direction)
+    back = toric_back_surface(front_d, PowerMatrix(*(float(v) for v in surfacing)), thickness_mm, index)
+    angle = math.radians(back.meridian_a_deg)
     return WornLens(
         surface_curvature_per_mm(front_d, index, "front"),
-        surface_curvature_per_mm(back_surface_power(front_d, larger, thickness_mm, index), index, "back"),
-        surface_curvature_per_mm(back_surface_power(front_d, smaller, thickness_mm, index), index, "back"),
+        surface_curvature_per_mm(back.power_a_d, index, "back"),
+        surface_curvature_per_mm(back.power_b_d, index, "back"),
         (math.cos(angle), math.sin(angle)), thickness_mm, index,
         no_roll_axes(lens_direction(float(theta), (float(tangential[0]), float(tangential[1])))),
     )
