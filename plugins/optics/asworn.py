@@ -7,7 +7,8 @@ about its own axis — the same angles as the thin-lens tilt model
 (:mod:`lenslane.plugins.optics.tilt`), so the two differ in optics only.
 Coordinates: x toward the observer's right, y up, z along the primary line of
 sight toward the eye, B at the origin. The eye's centre of rotation lies on
-the line of sight, :data:`ROTATION_DISTANCE_MM` behind B.
+the line of sight,
+:data:`~lenslane.plugins.optics.front_curve.ROTATION_DISTANCE_MM` behind B.
 
 A pencil from a distant object is measured about its chief ray. The chief ray
 is traced exactly (vector Snell's law); the vergence of the infinitesimal
@@ -41,6 +42,7 @@ from __future__ import annotations
 import math
 from typing import Callable, NamedTuple, Sequence
 
+from lenslane.plugins.optics.front_curve import ROTATION_DISTANCE_MM
 from lenslane.plugins.optics.power import PowerMatrix
 from lenslane.plugins.optics.raytrace import (
     RayMissedSurface, Vector, dot, intersect_sphere, intersect_torus, point_at, refract, reverse, sphere_normal,
@@ -49,8 +51,6 @@ from lenslane.plugins.optics.raytrace import (
 from lenslane.plugins.optics.surfaces import back_vertex_power, surface_curvature_per_mm, toric_back_surface
 from lenslane.plugins.optics.thickness import LensNotMakeable
 
-#: From the back vertex to the eye's centre of rotation, mm (about 27 mm; from memory).
-ROTATION_DISTANCE_MM = 27.0
 #: Gaze angles (degrees) at which the off-axis errors are reported.
 GAZE_ANGLES_DEG = (20.0, 30.0)
 #: The four main gaze directions, as (x, y) for the right eye (x of "nasal" and "temporal" mirror for the left).
