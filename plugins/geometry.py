@@ -389,7 +389,7 @@ def _matrix(surfacing: dict):
 
 class _Eye(NamedTuple):
     """One eye's lens apart from its front curve: power, centre, prism, the stock and rule that apply, and the
-    lens placed on the order's outline (None: placed when it is tried, :func:`_placed`)."""
+    lens placed on the order's outline, for every front curve it is tried on."""
 
     eye: str
     sphere: float
@@ -404,12 +404,11 @@ class _Eye(NamedTuple):
     stock: list[float]
     method: str
     band: int | None
-    placement: LensPlacement | None = None
+    placement: LensPlacement
 
 
-def _prepare(view, eye, surfacing: dict, params: GeometryParams, thinning: float,
-             shared: _Shared | None = None) -> _Eye:
-    """One eye's lens apart from its front curve; with ``shared``, placed on the order's outline as well."""
+def _prepare(view, eye, surfacing: dict, params: GeometryParams, thinning: float, shared: _Shared) -> _Eye:
+    """One eye's lens apart from its front curve, placed on the order's outline."""
     order = view.order
     frame, fit = order.frame, getattr(order.fit, eye)
     sphere, cylinder, axis = surfacing["sphere"], surfacing.get("cylinder", 0.0), surfacing.get("axis", 180)
@@ -429,18 +428,9 @@ def _prepare(view, eye, surfacing: dict, params: GeometryParams, thinning: float
              else params.base_curves_d.get(material, params.other_base_curves_d))
     method = chosen.method if chosen and chosen.method else params.front_curve_method
     matrix, centre = power_matrix(sphere, cylinder, axis), optical_centre(eye, offset)
-    placement = None if shared is None else place_lens(shared.grid, eye, centre, matrix, shared.material.index,
-                                                       prism.amount, prism.base_deg)
+    placement = place_lens(shared.grid, eye, centre, matrix, shared.material.index, prism.amount, prism.base_deg)
     return _Eye(eye, sphere, cylinder, axis, matrix, offset, centre, centre_inputs, prism.amount, prism.base_deg,
                 list(stock), method, band, placement)
-
-
-def _placed(shared: _Shared, lens: _Eye) -> LensPlacement:
-    """The eye's lens on the order's outline, for every front curve it is tried on."""
-    if lens.placement is not None:
-        return lens.placement
-    return place_lens(shared.grid, lens.eye, lens.centre, lens.matrix, shared.material.index, lens.prism_delta,
-                      lens.prism_base_deg)
 
 
 class _Trial(NamedTuple):
@@ -455,7 +445,7 @@ class _Trial(NamedTuple):
 
 def _try(shared: _Shared, lens: _Eye, front_d: float, params: GeometryParams) -> _Trial:
     """Solve the lens on a front curve and judge it: a concave back by the margin, within the hard limits."""
-    placement = _placed(shared, lens)
+    placement = lens.placement
     try:
         solved = edged_lens(placement, front_d, shared.minimums.center_mm, shared.min_edge)
     except LensNotMakeable as exc:
@@ -677,7 +667,7 @@ def _eye_geometry(view, params, shared: _Shared, lens: _Eye, choice: _Choice, th
     solved, front = choice.trial.solved, choice.trial.front_d
     minimums, min_edge, index = shared.minimums, shared.min_edge, shared.material.index
     allowance = params.blank_allowance_mm
-    placement = _placed(shared, lens)
+    placement = lens.placement
     volume = solved.volume_mm3
     blank = blank_diameter_from_farthest_mm(placement.farthest_mm, allowance)
     weight = lens_weight_g(volume, shared.material.density)
