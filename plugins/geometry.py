@@ -360,18 +360,16 @@ def centre_height(order, eye: str, params: GeometryParams) -> tuple[float, dict]
     return height, {**inputs, "reference": "optical centre at the fit height"}
 
 
-def thinning_prism(view, params: GeometryParams, surfacings: dict | None = None) -> float:
+def thinning_prism(view, params: GeometryParams, surfacings: dict) -> float:
     """The yoked base-down thinning prism (Δ) of a progressive pair by the lab's rule; 0 when it does not apply.
 
-    ``surfacings`` (eye → power) stands for the result's surfacing powers when given.
+    ``surfacings``: the pair's surfacing powers (eye → power, None for a lens not made).
     """
     rule = params.thinning_prism
     order = view.order
     if order.lens.design != "progressive" or rule.fraction_of_add == 0.0:
         return 0.0
     adds = [getattr(order.rx, eye).add or 0.0 for eye in view.eyes]
-    if surfacings is None:
-        surfacings = {eye: view.get(f"lenses.{eye}.surfacing") for eye in view.eyes}
     verticals = [_matrix(surfacing).yy for surfacing in surfacings.values() if surfacing is not None]
     if max(adds) >= rule.add_from_d or any(vertical > rule.plus_from_d for vertical in verticals):
         return rule.fraction_of_add * max(adds)
