@@ -165,7 +165,8 @@ class GeometryParams(BaseModel):
     model_config = ConfigDict(extra="forbid", strict=True)
 
     front_curve_method: str = "vogel"
-    """How to choose the front curve when the order requests none: "vogel" or "tscherning"."""
+    """How to choose the front curve when the order requests none: "vogel", "tscherning", "exact_best_form" or a
+    method another plugin registers."""
     rotation_distance_mm: Annotated[float, Field(gt=10, le=40)] = ROTATION_DISTANCE_MM
     """Lens to the eye's centre of rotation, for the best form (mm)."""
     base_curves_d: dict[str, Annotated[list[BaseCurve], Field(min_length=1)]] = Field(
