@@ -19,7 +19,7 @@ from lenslane.plugins.optics.power import PowerMatrix, power_matrix, sphero_cyli
 from lenslane.plugins.optics.raytrace import RayMissedSurface
 from lenslane.plugins.optics.surfaces import back_vertex_power, surface_radius_mm, toric_back_surface
 from lenslane.plugins.optics.thickness import LensShape, LensNotMakeable, solve_center_thickness
-from lenslane.plugins.optics.tilt import exact_thin_factor, tilt_obliquity, tilted_power
+from lenslane.plugins.optics.tilt import exact_thin_factor, martin_factor, tilt_obliquity, tilted_power
 from lenslane.plugins.optics.vertex import vertex_move
 from raytrace_reference import chief_exit, vergence_matrix, worn_singlet
 
@@ -132,7 +132,7 @@ def test_zero_thickness_limit_is_the_tilted_thin_lens(power, p, w, eye, index):
     surfacing = power_matrix(*power)
     theta, t = tilt_obliquity(p, w, eye)
     martin = np.array(tilted_power(surfacing, theta, t, index))
-    harris = martin * exact_thin_factor(theta, index) / (1.0 + math.sin(theta) ** 2 / (2.0 * index))
+    harris = martin * exact_thin_factor(theta, index) / martin_factor(theta, index)
     for front in (2.0, 8.0):
         traced = np.array(asworn_power(_worn(front, surfacing, 0.0, index, p, w, eye)))
         assert np.max(np.abs(traced - harris)) < 1e-9
