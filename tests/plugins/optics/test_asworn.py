@@ -480,6 +480,14 @@ def test_largest_meridional_error_and_score():
     # J₄₅ = E₁₂; the largest meridional error |M| + √(J₀² + J₄₅²) is the larger principal error's size.
     assert largest_meridional_error((0.30, 0.10, -0.10)) == pytest.approx(np.max(np.abs(np.linalg.eigvalsh(
         [[0.30, 0.10], [0.10, -0.10]]))), abs=1e-15)
+    # The form's score: the RMS over the gaze points of that error (a least-squares merit over the field, Atchison
+    # 1992, Applied Optics 31:3579), from each point's M and astigmatic error 2√(J₀² + J₄₅²).
+    elements = np.random.default_rng(5).uniform(-0.5, 0.5, (2, 4, 3))
+    xx, xy, yy = elements[..., 0], elements[..., 1], elements[..., 2]
+    mean, cylinder = 0.5 * (xx + yy), 2.0 * np.hypot(0.5 * (xx - yy), xy)
+    errors = GazeErrors((20.0, 30.0), tuple(GAZE_DIRECTIONS), tuple(map(tuple, mean)), tuple(map(tuple, cylinder)))
+    largest = [np.max(np.abs(np.linalg.eigvalsh([[a, b], [b, c]]))) for a, b, c in elements.reshape(-1, 3)]
+    assert form_score(errors) == pytest.approx(math.sqrt(np.mean(np.square(largest))), abs=1e-12)
 
 
 def test_best_form_chooses_the_least_error_among_stocked_bases():
