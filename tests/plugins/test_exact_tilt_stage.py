@@ -14,14 +14,13 @@ import numpy as np
 import pytest
 
 from lenslane.chain.host import start_host
-from lenslane.chain.pipeline import Pipeline
 from lenslane.config import LabConfig
-from lenslane.contract.intake import read_order
 from lenslane.plugins.optics.asworn import lens_direction, no_roll_axes, trace_chief_ray, worn_lens
 from lenslane.plugins.optics.power import power_matrix, principal_powers
 from lenslane.plugins.optics.surfaces import surface_radius_mm, toric_back_surface
 from lenslane.plugins.optics.tilt import tilt_obliquity
 from optics.raytrace_reference import chief_exit, vergence_matrix, worn_singlet
+from tests.conftest import run_order
 
 OBJECT_MM = 10.0
 
@@ -39,9 +38,7 @@ ORDER = {
 
 
 def _run(stages, data=ORDER):
-    host = start_host(LabConfig(stages=stages))
-    order, parsed = read_order(json.dumps(data).encode(), host.settings.materials)
-    return Pipeline(host).run(order, parsed).result
+    return run_order(start_host(LabConfig(stages=stages)), data)
 
 
 def _change(result, stage, field):
