@@ -759,7 +759,7 @@ class PlannedLens(NamedTuple):
     solved: EdgedLens | LensNotMakeable
 
 
-def lens_planner(view, params: GeometryParams | None = None) -> Callable[[dict], dict[str, PlannedLens]]:
+def lens_planner(view, params: GeometryParams) -> Callable[[dict], dict[str, PlannedLens]]:
     """How this stage would make the order's lenses: surfacing powers (eye → power) → each eye's front curve and
     its solution on it.
 
@@ -770,7 +770,6 @@ def lens_planner(view, params: GeometryParams | None = None) -> Callable[[dict],
     this stage solves on it. The outline and the material, which do not
     depend on the powers, are worked out once.
     """
-    params = params or GeometryParams()
     shared = _shared(view, params, _outline(view, params))
 
     def planned(surfacings: dict) -> dict[str, PlannedLens]:
