@@ -165,6 +165,25 @@ def _frame_across(direction):
     return across, np.cross(direction, across)
 
 
+def _made_reference(lens, front, surfacing, thickness, index):
+    """rayoptics' model of the lens made for a surfacing power (its toric back per principal meridian, Jalie), posed
+    as ``lens`` is worn, and where its back vertex sits in rayoptics' frame."""
+    back = toric_back_surface(front, surfacing, thickness, index)
+    pose = _rotation(lens) @ _turn_about_z(back.meridian_a_deg - 90.0)   # rayoptics' profile lies along its y
+    _, reference, back_vertex = _lens_and_reference(
+        surface_radius_mm(front, index), surface_radius_mm(back.power_a_d, index, "back"),
+        surface_radius_mm(back.power_b_d, index, "back"), thickness, index, pose)
+    return reference, back_vertex
+
+
+def _object_start(lens, ray, back_vertex):
+    """Where rayoptics starts our traced chief ray, on its object plane 10 mm before the front vertex, and the
+    ray's direction there."""
+    incoming = _rotation(lens) @ np.array(ray.incoming)
+    entry = _rotation(lens) @ np.array(ray.front) + back_vertex
+    return tuple((entry - (entry[2] + 10.0) / incoming[2] * incoming)[:2]), tuple(incoming)
+
+
 CASES = {
     # front r, back profile r, back sweep r (0: cylinder), thickness, index, pantoscopic, face form, eye,
     # toric roll (degrees), decentration (mm), measured how far beyond the exit point (mm)
@@ -222,24 +241,17 @@ def test_every_pencil_matches_rayoptics(power, front, thickness, index, p, w, ey
     # vertex): the pencil's vergence where its chief ray meets the vertex sphere, to 1e-6 D. rayoptics starts the
     # chief ray where ours says it enters the lens and must find it leaving through the centre of rotation.
     lens = _worn(front, power_matrix(*power), thickness, index, p, w, eye)
-    back = toric_back_surface(front, power_matrix(*power), thickness, index)
-    pose = _rotation(lens) @ _turn_about_z(back.meridian_a_deg - 90.0)   # rayoptics' profile lies along its y
-    _, reference, back_vertex = _lens_and_reference(
-        surface_radius_mm(front, index), surface_radius_mm(back.power_a_d, index, "back"),
-        surface_radius_mm(back.power_b_d, index, "back"), thickness, index, pose)
+    reference, back_vertex = _made_reference(lens, front, power_matrix(*power), thickness, index)
     chief, on_sphere = _gaze(gaze_deg, towards, eye)
     try:
         ray = trace_chief_ray(lens, lens.to_lens(tuple(on_sphere)), lens.to_lens(tuple(chief)))
     except RayMissedSurface:
         assume(False)  # the gaze passes beyond the lens (a steep biconvex lens at 30°): no pencil to compare
-    rotation = _rotation(lens)
-    incoming = rotation @ np.array(ray.incoming)
-    entry = rotation @ np.array(ray.front) + back_vertex
-    start = entry - (entry[2] + 10.0) / incoming[2] * incoming           # on rayoptics' object plane
-    exit_point, direction = chief_exit(reference, tuple(start[:2]), tuple(incoming))
+    start, incoming = _object_start(lens, ray, back_vertex)
+    exit_point, direction = chief_exit(reference, start, incoming)
     assert np.max(np.abs(direction - chief)) < 1e-9
     assert np.linalg.norm(np.cross(exit_point - back_vertex - on_sphere, chief)) < 1e-7
-    expected = _differenced(reference, behind_mm=ray.beyond, start=tuple(start[:2]), direction=tuple(incoming))
+    expected = _differenced(reference, behind_mm=ray.beyond, start=start, direction=incoming)
     ours = pencil_vergence(lens, tuple(on_sphere), tuple(chief), _frame_across(chief))
     # Where the vertex sphere lies near a focal line of the pencil (a biconvex +12 D lens at 30°: over 1 000 D)
     # the agreement is taken relative to the vergence.
@@ -253,17 +265,11 @@ def test_gaze_errors_match_rayoptics(eye, towards):
     # 2√(J₀² + J₄₅²), E the vergence less the prescription, at 30° of gaze; to 1e-6 D.
     surfacing = power_matrix(-4.0, -2.0, 30.0)
     lens = _worn(5.0, surfacing, 2.0, 1.6, 10.0, 15.0, eye)
-    back = toric_back_surface(5.0, surfacing, 2.0, 1.6)
-    pose = _rotation(lens) @ _turn_about_z(back.meridian_a_deg - 90.0)
-    _, reference, back_vertex = _lens_and_reference(
-        surface_radius_mm(5.0, 1.6), surface_radius_mm(back.power_a_d, 1.6, "back"),
-        surface_radius_mm(back.power_b_d, 1.6, "back"), 2.0, 1.6, pose)
+    reference, back_vertex = _made_reference(lens, 5.0, surfacing, 2.0, 1.6)
     chief, on_sphere = _gaze(30.0, towards, eye)
     ray = trace_chief_ray(lens, lens.to_lens(tuple(on_sphere)), lens.to_lens(tuple(chief)))
-    incoming = _rotation(lens) @ np.array(ray.incoming)
-    entry = _rotation(lens) @ np.array(ray.front) + back_vertex
-    start = entry - (entry[2] + 10.0) / incoming[2] * incoming
-    measured = _differenced(reference, behind_mm=ray.beyond, start=tuple(start[:2]), direction=tuple(incoming))
+    start, incoming = _object_start(lens, ray, back_vertex)
+    measured = _differenced(reference, behind_mm=ray.beyond, start=start, direction=incoming)
     # rayoptics measures in x projected across the ray; Listing's frame is the eye's x and y turned with it.
     listing = np.array(no_roll_axes(tuple(chief))).T[:, :2]
     turn = np.column_stack(_frame_across(chief)).T @ listing
@@ -315,16 +321,10 @@ def test_the_closed_form_surfacing_power_traced_by_rayoptics():
     theta, t = tilt_obliquity(12.0, 20.0, "left")
     surfacing = surfacing_for(wanted, 9.0, 6.0, 1.6, theta, t)
     lens = worn_lens(9.0, surfacing, 6.0, 1.6, theta, t)
-    back = toric_back_surface(9.0, surfacing, 6.0, 1.6)
-    pose = _rotation(lens) @ _turn_about_z(back.meridian_a_deg - 90.0)
-    _, reference, back_vertex = _lens_and_reference(
-        surface_radius_mm(9.0, 1.6), surface_radius_mm(back.power_a_d, 1.6, "back"),
-        surface_radius_mm(back.power_b_d, 1.6, "back"), 6.0, 1.6, pose)
+    reference, back_vertex = _made_reference(lens, 9.0, surfacing, 6.0, 1.6)
     ray = trace_chief_ray(lens, (0.0, 0.0, 0.0), lens.to_lens((0.0, 0.0, 1.0)))
-    incoming = _rotation(lens) @ np.array(ray.incoming)
-    entry = _rotation(lens) @ np.array(ray.front) + back_vertex
-    start = entry - (entry[2] + 10.0) / incoming[2] * incoming
-    measured = vergence_matrix(reference, start=tuple(start[:2]), direction=tuple(incoming))
+    start, incoming = _object_start(lens, ray, back_vertex)
+    measured = vergence_matrix(reference, start=start, direction=incoming)
     assert np.max(np.abs(measured - _matrix(wanted))) < 1e-6
     assert np.max(np.abs(np.array(surfacing) - np.array(wanted))) > 0.1
 
