@@ -21,7 +21,7 @@ from lenslane.plugins.optics.surfaces import back_vertex_power, surface_radius_m
 from lenslane.plugins.optics.thickness import LensShape, LensNotMakeable, solve_center_thickness
 from lenslane.plugins.optics.tilt import exact_thin_factor, martin_factor, tilt_obliquity, tilted_power
 from lenslane.plugins.optics.vertex import vertex_move
-from raytrace_reference import chief_exit, vergence_matrix, worn_singlet
+from raytrace_reference import chief_exit, turn_about_z, vergence_matrix, worn_singlet
 
 
 def _worn(front, surfacing, thickness, index, pantoscopic=0.0, face_form=0.0, eye="right"):
@@ -143,11 +143,6 @@ def test_zero_thickness_limit_is_the_tilted_thin_lens(power, p, w, eye, index):
 # --------------------------------------------------------------------------
 
 
-def _turn_about_z(degrees):
-    a = math.radians(degrees)
-    return np.array([[math.cos(a), -math.sin(a), 0.0], [math.sin(a), math.cos(a), 0.0], [0.0, 0.0, 1.0]])
-
-
 def _lens_and_reference(front_r, back_r, sweep_r, thickness, index, pose, decenter=(0.0, 0.0)):
     """The same lens in our model and in rayoptics' (its back's profile along the lens's own y)."""
     curvature = [0.0 if r == 0.0 else 1.0 / r for r in (front_r, back_r, sweep_r)]
@@ -169,7 +164,7 @@ def _made_reference(lens, front, surfacing, thickness, index):
     """rayoptics' model of the lens made for a surfacing power (its toric back per principal meridian, Jalie), posed
     as ``lens`` is worn, and where its back vertex sits in rayoptics' frame."""
     back = toric_back_surface(front, surfacing, thickness, index)
-    pose = _rotation(lens) @ _turn_about_z(back.meridian_a_deg - 90.0)   # rayoptics' profile lies along its y
+    pose = _rotation(lens) @ turn_about_z(back.meridian_a_deg - 90.0)   # rayoptics' profile lies along its y
     _, reference, back_vertex = _lens_and_reference(
         surface_radius_mm(front, index), surface_radius_mm(back.power_a_d, index, "back"),
         surface_radius_mm(back.power_b_d, index, "back"), thickness, index, pose)
@@ -202,7 +197,7 @@ def test_vergence_matches_rayoptics(case):
     # one ray, the exit chief ray rayoptics found, back through the lens, and carries the pencil along it.
     front_r, back_r, sweep_r, thickness, index, p, w, eye, roll, decenter, behind = CASES[case]
     theta, t = tilt_obliquity(p, w, eye)
-    pose = np.array(no_roll_axes(lens_direction(theta, t))).T @ _turn_about_z(roll)
+    pose = np.array(no_roll_axes(lens_direction(theta, t))).T @ turn_about_z(roll)
     lens, reference, back_vertex = _lens_and_reference(front_r, back_r, sweep_r, thickness, index, pose, decenter)
     expected = vergence_matrix(reference, behind_mm=behind)
     exit_point, direction = chief_exit(reference)
