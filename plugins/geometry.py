@@ -168,7 +168,7 @@ class GeometryParams(BaseModel):
     """How to choose the front curve when the order requests none: "vogel", "tscherning", "exact_best_form" or a
     method another plugin registers."""
     rotation_distance_mm: Annotated[float, Field(gt=10, le=40)] = ROTATION_DISTANCE_MM
-    """Lens to the eye's centre of rotation, for the best form (mm)."""
+    """Lens to the eye's centre of rotation, for the best forms and the exact tilt's off-axis errors (mm)."""
     base_curves_d: dict[str, Annotated[list[BaseCurve], Field(min_length=1)]] = Field(
         default_factory=lambda: {k: list(v) for k, v in DEFAULT_BASES.items()})
     """Stocked base curves per material (true power at the lens index, D); merged over the defaults."""
