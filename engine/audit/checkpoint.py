@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from lenslane.audit.index import Index
-from lenslane.audit.records import OUTCOMES, canonical, utc_now
+from lenslane.audit.records import GENESIS, OUTCOMES, canonical, utc_now
 from lenslane.audit.verify import Finding
 
 CHECKPOINT_EVENT = "checkpoint"
@@ -31,7 +31,7 @@ def make_checkpoint(index: Index, key: Any = None) -> dict[str, Any]:
     """The checkpoint of the log as the index sees it (call :meth:`Index.catch_up` first), signed if ``key``."""
     tail = index.tail()
     counts = index.counts()
-    checkpoint: dict[str, Any] = {"seq": tail.seq if tail else 0, "hash": index.meta("tail_hash") or "0" * 64,
+    checkpoint: dict[str, Any] = {"seq": tail.seq if tail else 0, "hash": index.meta("tail_hash") or GENESIS,
                                   "at": utc_now(), "records": sum(counts.values())}
     checkpoint.update({event: counts.get(event, 0) for event in OUTCOMES})
     if key is not None:

@@ -24,7 +24,7 @@ import os
 import sqlite3
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterable, Iterator, NamedTuple
+from typing import Any, Iterable, NamedTuple
 
 from lenslane.audit.reader import audit_files, iter_lines, file_of, read_at, ROTATED_RE
 from lenslane.audit.records import DEFINE_EVENT, OUTCOMES, REF_LENGTH, define_key
@@ -352,21 +352,13 @@ class Index:
             raise KeyError(ref)
         return record["body"]
 
-    def defines_of_kind(self, kind: str) -> Iterator[dict[str, Any]]:
-        for seq, file, offset, length in self.db.execute(
-                "SELECT r.seq, r.file, r.offset, r.length FROM defines d JOIN records r ON r.seq = d.seq "
-                "WHERE d.kind=? ORDER BY r.seq", (kind,)).fetchall():
-            record = read_at(self.root, file, offset, length)
-            if record is not None:
-                yield record
-
     def outcomes_between(self, start: str, end: str) -> list[tuple[str, str | None, int]]:
         """How many records of each event (and status or action) were written from ``start`` to before ``end``
         (UTC times as the records write them), for outcomes and decisions."""
         return self.db.execute(
             "SELECT event, status, count(*) FROM records WHERE ts >= ? AND ts < ? "
-            "AND event IN ('published', 'rejected', 'held', 'skipped', 'decided') GROUP BY event, status",
-            (start, end)).fetchall()
+            "AND event IN (?, ?, ?, ?, ?) GROUP BY event, status",
+            (start, end, *OUTCOMES, "decided")).fetchall()
 
     def search(self, text: str, limit: int) -> list[tuple[str | None, str | None, str, str | None, str | None]]:
         """The inputs whose order id or file name contains ``text`` (in any case), newest first: for each (order

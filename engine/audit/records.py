@@ -45,12 +45,12 @@ from typing import Any, Callable
 
 import orjson
 
+from lenslane.vocabulary import OUTCOMES
+
 AUDIT_NAME = "audit.jsonl"
 GENESIS = "0" * 64
 TORN_EVENT = "torn-line"
 DEFINE_EVENT = "define"
-#: The events that end one pass of an input through the engine.
-OUTCOMES = ("published", "rejected", "held", "skipped")
 #: The chain's own fields; an event may not carry them.
 CHAIN_FIELDS = frozenset({"seq", "ts", "prev", "hash"})
 #: How many hex digits of a define's sha256 named it in the second format.

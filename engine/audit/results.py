@@ -17,7 +17,7 @@ import os
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Iterator
 
 #: The folders a result file may be accounted in (a path in a record is never followed elsewhere).
 RESULT_PATH_RE = re.compile(r"^(outbox|review|rejected|archive)/[A-Za-z0-9_-][A-Za-z0-9._-]*\.json[A-Za-z0-9._-]*$")
@@ -118,22 +118,28 @@ def check(root: Path, results: ResultFiles) -> Checked:
         else:
             checked.changed.append((path, placed, actual))
     in_flight: dict[str, str] | None = None
+    for path, name in watched_results(root):
+        if path in results.files:
+            continue
+        in_flight = _in_flight(root) if in_flight is None else in_flight
+        why = in_flight.get(name.removesuffix(".json"))
+        if why:
+            checked.in_flight.append((path, why))
+        else:
+            checked.unaccounted.append(path)
+    return checked
+
+
+def watched_results(root: Path) -> Iterator[tuple[str, str]]:
+    """The result files now in the :data:`WATCHED` folders, each as its lab-relative path and its name."""
     for folder in WATCHED:
         try:
-            names = sorted(os.listdir(root / folder))
+            names = sorted(os.listdir(Path(root) / folder))
         except FileNotFoundError:
             continue
         for name in names:
-            path = f"{folder}/{name}"
-            if not name.endswith(".json") or name.startswith(".") or path in results.files:
-                continue
-            in_flight = _in_flight(root) if in_flight is None else in_flight
-            why = in_flight.get(name.removesuffix(".json"))
-            if why:
-                checked.in_flight.append((path, why))
-            else:
-                checked.unaccounted.append(path)
-    return checked
+            if name.endswith(".json") and not name.startswith("."):
+                yield f"{folder}/{name}", name
 
 
 def _in_flight(root: Path) -> dict[str, str]:

@@ -10,13 +10,12 @@ define against the defines before it.
 from __future__ import annotations
 
 import hashlib
-import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from lenslane.audit.index import Index, Place
-from lenslane.audit.results import WATCHED, Placed, ResultFiles, check as check_results, present_in
+from lenslane.audit.results import Placed, ResultFiles, check as check_results, present_in, watched_results
 from lenslane.audit.reader import (
     ROTATED_RE, Line, audit_files, file_of, iter_lines, parse_record, read_tail, rotated_name,
 )
@@ -366,7 +365,6 @@ def _walk(root: Path, report: VerifyReport, index: Index, start_line: Line | Non
         walker.add(line, first_of_file and line.record is not None)
         if line.record is not None:
             first_of_file = False
-        if line.record is not None:
             for problem in results.add(line.record, line.where):
                 report.breaks.append(Finding(line.where, line.record["seq"], "damaged", problem))
     walker.finish(files[-1].name if files else None)
@@ -399,20 +397,14 @@ def _check_results(root: Path, results: ResultFiles, report: VerifyReport, index
 
 def _placed_before(root: Path, results: ResultFiles, index: Index) -> None:
     """Results in outbox/ and review/ placed by records before the walk: what the last of them says they are."""
-    for folder in WATCHED:
-        try:
-            names = os.listdir(root / folder)
-        except FileNotFoundError:
+    for path, name in watched_results(root):
+        if path in results.files:
             continue
-        for name in names:
-            path = f"{folder}/{name}"
-            if path in results.files or not name.endswith(".json") or name.startswith("."):
-                continue
-            for place in reversed(index.places_of_order(name.removesuffix(".json"))):
-                record = index.read(place)
-                if record is not None and record.get("event") in ("published", "decided") and record.get("result") == path:
-                    results.files[path] = Placed(str(record.get("result_sha256")), record["seq"], f"seq {record['seq']}")
-                    break
+        for place in reversed(index.places_of_order(name.removesuffix(".json"))):
+            record = index.read(place)
+            if record is not None and record.get("event") in ("published", "decided") and record.get("result") == path:
+                results.files[path] = Placed(str(record.get("result_sha256")), record["seq"], f"seq {record['seq']}")
+                break
 
 
 def _known_before(index: Index, path: str) -> bool:

@@ -27,8 +27,8 @@ ENTRY_POINT_GROUP = "lenslane.plugins"
 #: The engine's own distribution: the one the built-in plugins come with.
 ENGINE_DISTRIBUTION = "lenslane"
 #: Set (to anything but "" or "0") to load only the built-in plugins, and of the installed ones only those
-#: named in LENSLANE_PLUGINS (comma-separated entry-point names), as pytest's PYTEST_DISABLE_PLUGIN_AUTOLOAD
-#: and PYTEST_PLUGINS do. The engine's own tests set it, so an installed plugin changes none of them.
+#: named in LENSLANE_PLUGINS (comma-separated entry-point names). The engine's own tests set it, so an
+#: installed plugin changes none of them.
 NO_AUTOLOAD_VARIABLE = "LENSLANE_DISABLE_PLUGIN_AUTOLOAD"
 PLUGINS_VARIABLE = "LENSLANE_PLUGINS"
 
@@ -176,7 +176,7 @@ def start_host(config: LabConfig, trace: bool | None = None, plugins: dict[str, 
     for name, plugin in (plugins or {}).items():
         known.append(name)
         if name not in blocked:
-            _register(pm, infos, plugin, _embedded_info(name, plugin))
+            _register(pm, infos, plugin, _embedded_info(name))
     _check_blocked(blocked, known)
     _check_hooks(pm, infos)
     if trace if trace is not None else config.engine.trace_hooks:
@@ -260,7 +260,7 @@ def _load_installed(pm: pluggy.PluginManager, infos: dict[str, PluginInfo], bloc
     return names
 
 
-def _embedded_info(name: str, plugin: object) -> PluginInfo:
+def _embedded_info(name: str) -> PluginInfo:
     """A plugin object handed to :func:`start_host` by the program that embeds the engine (or a test)."""
     return PluginInfo(name, "unpackaged", "unversioned")
 

@@ -12,8 +12,8 @@ from __future__ import annotations
 import copy
 import math
 import time
+import traceback
 from dataclasses import dataclass, field
-from types import TracebackType
 from typing import Any
 
 from pydantic import ValidationError
@@ -145,21 +145,13 @@ class Pipeline:
         otherwise a wrapper raised on its own, and the innermost one is named.
         """
         message = f"{type(exc).__name__}: {exc}"
-        codes = [frame.f_code for frame, _ in _frames(exc.__traceback__)]
+        codes = [frame.f_code for frame, _ in traceback.walk_tb(exc.__traceback__)]
         if core.lenslane_run_stage.__code__ in codes:
             return StageFailure(stage.name, message)
         wrappers = [self.wrappers[code] for code in codes if code in self.wrappers]
         if wrappers:
             return HookFailure(wrappers[-1], "lenslane_run_stage", message, stage.name)
         return StageFailure(stage.name, message)
-
-
-def _frames(tb: TracebackType | None) -> list[tuple[Any, int]]:
-    found = []
-    while tb is not None:
-        found.append((tb.tb_frame, tb.tb_lineno))
-        tb = tb.tb_next
-    return found
 
 
 def _apply(stage: Stage, change: Change, state: dict[str, Any], shown: dict[str, Any],

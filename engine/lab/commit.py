@@ -28,11 +28,11 @@ if TYPE_CHECKING:
 
 @dataclass
 class Pending:
-    """An order whose output file is written, waiting for the group commit."""
+    """An order whose output file is written, waiting for the group commit (with its one audit record)."""
 
     work_name: str
     claim: str
-    events: list[dict[str, Any]]
+    record: dict[str, Any]
     final: FinalRecord
     processed: "Processed"
     recorded_in_log: bool = False
@@ -177,7 +177,7 @@ class GroupCommit:
         if self.audit is None:
             self.open_audit()
         try:
-            self.audit.append([event for pending in unrecorded for event in pending.events])
+            self.audit.append([pending.record for pending in unrecorded])
         except (OSError, AuditError) as exc:
             raise OutputBlocked("audit", self.audit.path, exc, unrecorded[0].work_name) from exc
         for pending in unrecorded:

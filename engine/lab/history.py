@@ -4,9 +4,9 @@ Two questions, asked at every order: was this order id already published, and
 with which content (a resent copy is skipped, a different order under the same
 id is held); and, for an input still in ``work/`` after a crash, was its final
 record already written (then only its move out of ``work/`` is left). Both are
-answered by the audit index (:class:`lenslane.audit.history.History`), never by
-reading the whole log; the ``note_*`` calls the lab makes after each commit
-cover what the log does not hold yet.
+answered by the audit index (:class:`lenslane.audit.index.Index`), never by
+reading the whole log; the ``note_*`` calls the lab makes as it publishes and
+records cover what the log does not hold yet.
 """
 from __future__ import annotations
 
@@ -14,13 +14,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from lenslane.audit.history import History as AuditHistory
 from lenslane.audit.index import Index
 from lenslane.audit.log import AUDIT_NAME, audit_files
 from lenslane.audit.reader import read_tail
-from lenslane.vocabulary import OUTCOMES
-
-FINAL_EVENTS = OUTCOMES
 
 
 @dataclass(frozen=True)
@@ -43,24 +39,21 @@ class History:
 
     def __init__(self, root: Path):
         self.root = Path(root)
-        self.audit: AuditHistory | None = None
+        self.index: Index | None = None
+        self._published: dict[str, str | None] = {}  # order id → content, published in a batch not yet in the log
         self._final: dict[str, FinalRecord] = {}  # recorded in this run, input not yet moved
 
     def use(self, index: Index) -> None:
         """Answer from ``index`` (the audit log's, opened or reopened); what was noted stays noted."""
-        if self.audit is None:
-            self.audit = AuditHistory(index)
-        else:
-            self.audit.index = index
+        self.index = index
 
     def load(self) -> None:
         """Get ready for a new run: forget what was noted (the log now holds all it will); ask the index anew."""
         self._final.clear()
-        if self.audit is not None:
-            self.audit = AuditHistory(self.audit.index)
+        self._published.clear()
 
     def is_published(self, order_id: str) -> bool:
-        return self.audit is not None and self.audit.is_published(order_id)
+        return self.index is not None and (order_id in self._published or self.index.is_published(order_id))
 
     def published_content(self, order_id: str) -> str | None:
         """The content sha256 of the published version of ``order_id``; ``None`` if never published.
@@ -69,12 +62,15 @@ class History:
         """
         if not self.is_published(order_id):
             return None
-        return self.audit.published_content(order_id) or ""
+        if order_id in self._published:
+            return self._published[order_id] or ""
+        return self.index.published_content(order_id) or ""
 
     def final_record(self, claim: str) -> FinalRecord | None:
+        """The final record of the input claimed as ``claim``, if the log holds one (or this run wrote it)."""
         if claim in self._final:
             return self._final[claim]
-        record = self.audit.final_record(claim) if self.audit is not None else None
+        record = self.index.final_of_claim(claim) if self.index is not None else None
         if record is None or not isinstance(record.get("input"), str):
             return None
         final = FinalRecord(record["input"], record["event"], record.get("order_id"), record.get("status"),
@@ -83,15 +79,14 @@ class History:
         return final
 
     def note_published(self, order_id: str, content_sha256: str | None) -> None:
-        """An order is published (its records are on their way to the log in this batch)."""
-        if self.audit is not None:
-            self.audit.note_published(order_id, content_sha256)
+        """An order is published (its record is on its way to the log in this batch)."""
+        if self.index is not None:
+            self._published[order_id] = content_sha256
 
     def note_final(self, claim: str, record: FinalRecord) -> None:
         """A claim's final record is on disk (and in the index); its input is still to be moved."""
         self._final[claim] = record
-        if self.audit is not None:
-            self.audit.note_recorded([record.order_id])
+        self._published.pop(record.order_id, None)  # the index answers for it now
 
     def note_moved(self, claim: str) -> None:
         """A claim's input has left ``work/``: nothing more is asked about it."""
@@ -116,4 +111,4 @@ class History:
         return total
 
 
-__all__ = ["AUDIT_NAME", "FINAL_EVENTS", "FinalRecord", "History"]
+__all__ = ["AUDIT_NAME", "FinalRecord", "History"]

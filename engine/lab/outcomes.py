@@ -142,8 +142,9 @@ class Outcomes:
             "content_sha256": examined.content_sha256})
 
     def settle(self, claimed: Claimed, received: dict[str, Any], outcome: str, order_id: str | None,
-               fields: dict[str, Any], *, report: dict[str, Any] | None = None, status: str | None = None, reasons: list[dict[str, str]] | None = None) -> Processed:
-        """The one ending: choose where the input goes, write the report if any, queue the records."""
+               fields: dict[str, Any], *, report: dict[str, Any] | None = None, status: str | None = None,
+               reasons: list[dict[str, str]] | None = None) -> Processed:
+        """The one ending: choose where the input goes, write the report if any, queue the record."""
         kind = KINDS[outcome]
         folder = os.path.join(self.root, kind.folder)
         name = printable(claimed.name)
@@ -167,7 +168,7 @@ class Outcomes:
         final = {"event": outcome, "order_id": order_id, "received": received, **fields,
                  "input": printable(destination), "run": self.run}
         processed = Processed(name, outcome, order_id, status, reasons, redo=claimed.redo)
-        self.commit.defer(Pending(claimed.work_name, claimed.claim, [final],
+        self.commit.defer(Pending(claimed.work_name, claimed.claim, final,
                                   FinalRecord(destination, outcome, order_id, status), processed))
         return processed
 

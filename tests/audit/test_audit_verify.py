@@ -24,7 +24,7 @@ def rewrite(lab: Lab, lines: list[bytes]) -> None:
     (lab.root / AUDIT_NAME).write_bytes(b"\n".join(lines) + b"\n")
 
 
-def middle_change_line(lines: list[bytes]) -> int:
+def middle_order_line(lines: list[bytes]) -> int:
     """The index of an order's record (with its changes) in the middle of the log."""
     changes = [i for i, line in enumerate(lines) if json.loads(line)["event"] == "published"]
     return changes[len(changes) // 2]
@@ -42,7 +42,7 @@ def test_an_intact_log_exits_0_with_a_one_line_summary(busy_lab, capsys):
 
 def test_an_edited_line_in_the_middle_is_named(busy_lab, capsys):
     lines = log_lines(busy_lab)
-    index = middle_change_line(lines)
+    index = middle_order_line(lines)
     lines[index] = lines[index].replace(b'"status":"ready"', b'"status":"review"', 1)
     assert lines[index] != log_lines(busy_lab)[index]
     rewrite(busy_lab, lines)
@@ -54,7 +54,7 @@ def test_an_edited_line_in_the_middle_is_named(busy_lab, capsys):
 
 def test_an_edit_with_a_recomputed_hash_breaks_the_link_to_the_next_record(busy_lab, capsys):
     lines = log_lines(busy_lab)
-    index = middle_change_line(lines)
+    index = middle_order_line(lines)
     record = json.loads(lines[index])
     record["changes"].reverse()  # the story told in another order
     record["hash"] = record_hash(record)
@@ -67,7 +67,7 @@ def test_an_edit_with_a_recomputed_hash_breaks_the_link_to_the_next_record(busy_
 
 def test_a_removed_record_is_named(busy_lab, capsys):
     lines = log_lines(busy_lab)
-    index = middle_change_line(lines)
+    index = middle_order_line(lines)
     del lines[index]
     rewrite(busy_lab, lines)
     code, out = verify_cli(busy_lab, capsys)
@@ -78,7 +78,7 @@ def test_a_removed_record_is_named(busy_lab, capsys):
 
 def test_reordered_records_are_named(busy_lab, capsys):
     lines = log_lines(busy_lab)
-    index = middle_change_line(lines)
+    index = middle_order_line(lines)
     lines[index], lines[index + 1] = lines[index + 1], lines[index]
     rewrite(busy_lab, lines)
     code, out = verify_cli(busy_lab, capsys)
@@ -89,7 +89,7 @@ def test_reordered_records_are_named(busy_lab, capsys):
 
 def test_an_inserted_record_is_named_even_when_it_is_chained(busy_lab, capsys):
     lines = log_lines(busy_lab)
-    index = middle_change_line(lines)
+    index = middle_order_line(lines)
     before = json.loads(lines[index])
     forged = {**before, "status": "ready", "seq": before["seq"] + 1, "prev": before["hash"]}
     forged["hash"] = record_hash(forged)
@@ -103,7 +103,7 @@ def test_an_inserted_record_is_named_even_when_it_is_chained(busy_lab, capsys):
 
 def test_a_copied_record_is_named(busy_lab, capsys):
     lines = log_lines(busy_lab)
-    index = middle_change_line(lines)
+    index = middle_order_line(lines)
     lines.insert(index + 1, lines[index])
     rewrite(busy_lab, lines)
     code, out = verify_cli(busy_lab, capsys)
@@ -112,7 +112,7 @@ def test_a_copied_record_is_named(busy_lab, capsys):
 
 def test_a_line_cut_short_in_the_middle_is_a_failure(busy_lab, capsys):
     lines = log_lines(busy_lab)
-    index = middle_change_line(lines)
+    index = middle_order_line(lines)
     lines[index] = lines[index][:60]
     rewrite(busy_lab, lines)
     code, out = verify_cli(busy_lab, capsys)
@@ -147,7 +147,7 @@ def test_a_torn_tail_from_a_crash_is_tolerated_reported_and_closed_at_restart(bu
 def test_a_fake_torn_line_cannot_hide_an_edit(busy_lab, capsys):
     # Replace a record by garbage and add a torn-line record that accounts for it exactly.
     lines = log_lines(busy_lab)
-    index = middle_change_line(lines)
+    index = middle_order_line(lines)
     previous = json.loads(lines[index - 1])
     garbage = b'{"changes":[["0123456789abcdef",[1.0'
     torn = {"event": "torn-line", "after_seq": previous["seq"], "size": len(garbage) + 1,

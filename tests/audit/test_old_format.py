@@ -29,13 +29,24 @@ from lenslane.report import order_story
 OLD_LAB = Path(__file__).parent / "fixtures" / "old_lab"
 
 
+def copied_lab(fixture: Path, tmp_path: Path, host, folders: tuple[str, ...]) -> Lab:
+    """A copy of a fixture lab folder to work in, with the empty folders git does not keep."""
+    root = tmp_path / fixture.name
+    shutil.copytree(fixture, root)
+    for name in folders:
+        (root / name).mkdir(exist_ok=True)
+    return Lab(root, host)
+
+
+def fixture_records(fixture: Path) -> list[dict]:
+    """The whole records of a fixture lab's audit files (a torn line left out)."""
+    return [json.loads(line) for path in sorted(fixture.glob("audit*.jsonl")) for line in open(path, "rb")
+            if line.startswith(b"{") and line.endswith(b"}\n")]
+
+
 @pytest.fixture
 def old_lab(tmp_path, default_host):
-    root = tmp_path / "old_lab"
-    shutil.copytree(OLD_LAB, root)
-    for name in ("inbox", "work"):
-        (root / name).mkdir(exist_ok=True)
-    return Lab(root, default_host)
+    return copied_lab(OLD_LAB, tmp_path, default_host, ("inbox", "work"))
 
 
 def run(capsys, *argv: str) -> tuple[int, str]:
@@ -44,8 +55,7 @@ def run(capsys, *argv: str) -> tuple[int, str]:
 
 
 def test_the_fixture_is_in_the_first_format():
-    records = [json.loads(line) for path in sorted(OLD_LAB.glob("audit*.jsonl")) for line in open(path, "rb")
-               if line.startswith(b"{") and line.endswith(b"}\n")]
+    records = fixture_records(OLD_LAB)
     events = {r["event"] for r in records}
     assert {"received", "change", "flag", "published", "rejected", "held", "skipped", TORN_EVENT} <= events
     torn = [r for r in records if r["event"] == TORN_EVENT][0]
@@ -81,16 +91,11 @@ SHAPES_LAB = Path(__file__).parent / "fixtures" / "shapes_lab"
 @pytest.fixture
 def shapes_lab(tmp_path, default_host):
     """``fixtures/shapes_lab``, written by the second format (``fixtures/make_shapes_lab.py``), index included."""
-    root = tmp_path / "shapes_lab"
-    shutil.copytree(SHAPES_LAB, root)
-    for name in ("inbox", "work", "review", "decisions"):
-        (root / name).mkdir(exist_ok=True)
-    return Lab(root, default_host)
+    return copied_lab(SHAPES_LAB, tmp_path, default_host, ("inbox", "work", "review", "decisions"))
 
 
 def test_the_fixture_is_in_the_second_format():
-    records = [json.loads(line) for path in sorted(SHAPES_LAB.glob("audit*.jsonl")) for line in open(path, "rb")
-               if line.startswith(b"{") and line.endswith(b"}\n")]
+    records = fixture_records(SHAPES_LAB)
     published = [r for r in records if r["event"] == "published"]
     assert published and all(isinstance(r["run"], str) and all(isinstance(c[0], str) and isinstance(c[1], list)
                                                                 for c in r["changes"]) for r in published)
