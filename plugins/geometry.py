@@ -165,9 +165,10 @@ class GeometryParams(BaseModel):
     model_config = ConfigDict(extra="forbid", strict=True)
 
     front_curve_method: str = "vogel"
-    """How to choose the front curve when the order requests none: "vogel" or "tscherning"."""
+    """How to choose the front curve when the order requests none: "vogel", "tscherning", "exact_best_form" or a
+    method another plugin registers."""
     rotation_distance_mm: Annotated[float, Field(gt=10, le=40)] = ROTATION_DISTANCE_MM
-    """Lens to the eye's centre of rotation, for the best form (mm)."""
+    """Lens to the eye's centre of rotation, for the best forms and the exact tilt's off-axis errors (mm)."""
     base_curves_d: dict[str, Annotated[list[BaseCurve], Field(min_length=1)]] = Field(
         default_factory=lambda: {k: list(v) for k, v in DEFAULT_BASES.items()})
     """Stocked base curves per material (true power at the lens index, D); merged over the defaults."""
@@ -360,18 +361,16 @@ def centre_height(order, eye: str, params: GeometryParams) -> tuple[float, dict]
     return height, {**inputs, "reference": "optical centre at the fit height"}
 
 
-def thinning_prism(view, params: GeometryParams, surfacings: dict | None = None) -> float:
+def thinning_prism(view, params: GeometryParams, surfacings: dict) -> float:
     """The yoked base-down thinning prism (Δ) of a progressive pair by the lab's rule; 0 when it does not apply.
 
-    ``surfacings`` (eye → power) stands for the result's surfacing powers when given.
+    ``surfacings``: the pair's surfacing powers (eye → power, None for a lens not made).
     """
     rule = params.thinning_prism
     order = view.order
     if order.lens.design != "progressive" or rule.fraction_of_add == 0.0:
         return 0.0
     adds = [getattr(order.rx, eye).add or 0.0 for eye in view.eyes]
-    if surfacings is None:
-        surfacings = {eye: view.get(f"lenses.{eye}.surfacing") for eye in view.eyes}
     verticals = [_matrix(surfacing).yy for surfacing in surfacings.values() if surfacing is not None]
     if max(adds) >= rule.add_from_d or any(vertical > rule.plus_from_d for vertical in verticals):
         return rule.fraction_of_add * max(adds)
@@ -389,7 +388,7 @@ def _matrix(surfacing: dict):
 
 class _Eye(NamedTuple):
     """One eye's lens apart from its front curve: power, centre, prism, the stock and rule that apply, and the
-    lens placed on the order's outline (None: placed when it is tried, :func:`_placed`)."""
+    lens placed on the order's outline, for every front curve it is tried on."""
 
     eye: str
     sphere: float
@@ -404,12 +403,11 @@ class _Eye(NamedTuple):
     stock: list[float]
     method: str
     band: int | None
-    placement: LensPlacement | None = None
+    placement: LensPlacement
 
 
-def _prepare(view, eye, surfacing: dict, params: GeometryParams, thinning: float,
-             shared: _Shared | None = None) -> _Eye:
-    """One eye's lens apart from its front curve; with ``shared``, placed on the order's outline as well."""
+def _prepare(view, eye, surfacing: dict, params: GeometryParams, thinning: float, shared: _Shared) -> _Eye:
+    """One eye's lens apart from its front curve, placed on the order's outline."""
     order = view.order
     frame, fit = order.frame, getattr(order.fit, eye)
     sphere, cylinder, axis = surfacing["sphere"], surfacing.get("cylinder", 0.0), surfacing.get("axis", 180)
@@ -429,18 +427,9 @@ def _prepare(view, eye, surfacing: dict, params: GeometryParams, thinning: float
              else params.base_curves_d.get(material, params.other_base_curves_d))
     method = chosen.method if chosen and chosen.method else params.front_curve_method
     matrix, centre = power_matrix(sphere, cylinder, axis), optical_centre(eye, offset)
-    placement = None if shared is None else place_lens(shared.grid, eye, centre, matrix, shared.material.index,
-                                                       prism.amount, prism.base_deg)
+    placement = place_lens(shared.grid, eye, centre, matrix, shared.material.index, prism.amount, prism.base_deg)
     return _Eye(eye, sphere, cylinder, axis, matrix, offset, centre, centre_inputs, prism.amount, prism.base_deg,
                 list(stock), method, band, placement)
-
-
-def _placed(shared: _Shared, lens: _Eye) -> LensPlacement:
-    """The eye's lens on the order's outline, for every front curve it is tried on."""
-    if lens.placement is not None:
-        return lens.placement
-    return place_lens(shared.grid, lens.eye, lens.centre, lens.matrix, shared.material.index, lens.prism_delta,
-                      lens.prism_base_deg)
 
 
 class _Trial(NamedTuple):
@@ -455,7 +444,7 @@ class _Trial(NamedTuple):
 
 def _try(shared: _Shared, lens: _Eye, front_d: float, params: GeometryParams) -> _Trial:
     """Solve the lens on a front curve and judge it: a concave back by the margin, within the hard limits."""
-    placement = _placed(shared, lens)
+    placement = lens.placement
     try:
         solved = edged_lens(placement, front_d, shared.minimums.center_mm, shared.min_edge)
     except LensNotMakeable as exc:
@@ -677,7 +666,7 @@ def _eye_geometry(view, params, shared: _Shared, lens: _Eye, choice: _Choice, th
     solved, front = choice.trial.solved, choice.trial.front_d
     minimums, min_edge, index = shared.minimums, shared.min_edge, shared.material.index
     allowance = params.blank_allowance_mm
-    placement = _placed(shared, lens)
+    placement = lens.placement
     volume = solved.volume_mm3
     blank = blank_diameter_from_farthest_mm(placement.farthest_mm, allowance)
     weight = lens_weight_g(volume, shared.material.density)
@@ -770,7 +759,7 @@ class PlannedLens(NamedTuple):
     solved: EdgedLens | LensNotMakeable
 
 
-def lens_planner(view, params: GeometryParams | None = None) -> Callable[[dict], dict[str, PlannedLens]]:
+def lens_planner(view, params: GeometryParams) -> Callable[[dict], dict[str, PlannedLens]]:
     """How this stage would make the order's lenses: surfacing powers (eye → power) → each eye's front curve and
     its solution on it.
 
@@ -781,7 +770,6 @@ def lens_planner(view, params: GeometryParams | None = None) -> Callable[[dict],
     this stage solves on it. The outline and the material, which do not
     depend on the powers, are worked out once.
     """
-    params = params or GeometryParams()
     shared = _shared(view, params, _outline(view, params))
 
     def planned(surfacings: dict) -> dict[str, PlannedLens]:

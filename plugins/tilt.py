@@ -4,11 +4,16 @@ A tilted lens acts along the line of sight as ``k Sᵀ F S`` (Martin's formula o
 the power matrix). When the order gives a pantoscopic or face-form angle, the
 surfacing power becomes the exact inverse ``F = S⁻ᵀ F_w S⁻¹ / k`` of the wanted
 power ``F_w`` (the surfacing power so far, after vertex compensation), with the
-lens index from the order or the lab's material table. Pantoscopic tilt and
-face form are compensated for the designs the lab lists for each: a lab that
-lowers single-vision optical centres for pantoscopic tilt leaves single vision
-out of ``pantoscopic_apply_to`` and may still compensate its face form. Whatever happens, the result says what was and was not applied,
-and why.
+lens index from the order or the lab's material table. With ``method = "exact"``
+the surfacing power is instead the one whose lens, traced with real rays
+through its front curve, toric back and centre thickness (the geometry stage's
+own for that power), is worn as the wanted power
+(:mod:`lenslane.plugins.optics.asworn`); where no lens can be made for it,
+Martin's formula is used with a warning. Pantoscopic tilt and face form are
+compensated for the designs the lab lists for each: a lab that lowers
+single-vision optical centres for pantoscopic tilt leaves single vision out of
+``pantoscopic_apply_to`` and may still compensate its face form. Whatever
+happens, the result says what was and was not applied, and why.
 """
 from __future__ import annotations
 
@@ -262,5 +267,6 @@ def run(view, params: TiltParams):
 def lenslane_stages():
     return [Stage(
         name="tilt", run=run, writes=("lenses.*.surfacing",), params=TiltParams,
-        description="surfacing power for pantoscopic tilt and face form (inverse of Martin's formula)",
+        description="surfacing power for pantoscopic tilt and face form (inverse of Martin's formula, or exact by "
+                    "real-ray trace)",
     )]

@@ -49,10 +49,7 @@ def _fit_checks(view, params: ValidateParams):
     frame = order.frame
     pds = {}
     # The outline's points (the right lens's view), worked out once for every height placed on it.
-    placed = frame.outline_mm is not None and any(
-        getattr(order.fit, eye).height_mm is not None or getattr(order.fit, eye).segment_height_mm is not None
-        for eye in view.eyes)
-    points = outline_points(frame.outline_mm) if placed else None
+    points = outline_points(frame.outline_mm) if frame.outline_mm is not None else None
     for eye in view.eyes:
         fit = getattr(order.fit, eye)
         pds[eye] = fit.pd_mm

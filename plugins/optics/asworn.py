@@ -7,7 +7,8 @@ about its own axis — the same angles as the thin-lens tilt model
 (:mod:`lenslane.plugins.optics.tilt`), so the two differ in optics only.
 Coordinates: x toward the observer's right, y up, z along the primary line of
 sight toward the eye, B at the origin. The eye's centre of rotation lies on
-the line of sight, :data:`ROTATION_DISTANCE_MM` behind B.
+the line of sight,
+:data:`~lenslane.plugins.optics.front_curve.ROTATION_DISTANCE_MM` behind B.
 
 A pencil from a distant object is measured about its chief ray. The chief ray
 is traced exactly (vector Snell's law); the vergence of the infinitesimal
@@ -41,16 +42,15 @@ from __future__ import annotations
 import math
 from typing import Callable, NamedTuple, Sequence
 
-from lenslane.plugins.optics.power import PowerMatrix, principal_powers
+from lenslane.plugins.optics.front_curve import ROTATION_DISTANCE_MM
+from lenslane.plugins.optics.power import PowerMatrix
 from lenslane.plugins.optics.raytrace import (
     RayMissedSurface, Vector, dot, intersect_sphere, intersect_torus, point_at, refract, reverse, sphere_normal,
     torus_curvature, torus_normal,
 )
-from lenslane.plugins.optics.surfaces import back_surface_power, back_vertex_power, surface_curvature_per_mm
+from lenslane.plugins.optics.surfaces import back_vertex_power, surface_curvature_per_mm, toric_back_surface
 from lenslane.plugins.optics.thickness import LensNotMakeable
 
-#: From the back vertex to the eye's centre of rotation, mm (about 27 mm; from memory).
-ROTATION_DISTANCE_MM = 27.0
 #: Gaze angles (degrees) at which the off-axis errors are reported.
 GAZE_ANGLES_DEG = (20.0, 30.0)
 #: The four main gaze directions, as (x, y) for the right eye (x of "nasal" and "temporal" mirror for the left).
@@ -157,8 +157,8 @@ def worn_lens(front_d: float, surfacing, thickness_mm: float, index: float, thet
     Notes
     -----
     The back surface is the one the lab makes for that surfacing power behind
-    that front at that thickness, as
-    :func:`~lenslane.plugins.optics.surfaces.toric_back_surface` makes it: per
+    that front at that thickness,
+    :func:`~lenslane.plugins.optics.surfaces.toric_back_surface`: per
     principal meridian ``F₂ = Fv − F₁ / (1 − (t/n) F₁)``, the profile in the
     meridian of the larger power.
 
@@ -168,12 +168,12 @@ def worn_lens(front_d: float, surfacing, thickness_mm: float, index: float, thet
     principal meridian).
     """
     front_d, thickness_mm, index = float(front_d), float(thickness_mm), float(index)
-    larger, smaller, direction = principal_powers(PowerMatrix(*(float(v) for v in surfacing)))
-    angle = math.radians(direction)
+    back = toric_back_surface(front_d, PowerMatrix(*(float(v) for v in surfacing)), thickness_mm, index)
+    angle = math.radians(back.meridian_a_deg)
     return WornLens(
         surface_curvature_per_mm(front_d, index, "front"),
-        surface_curvature_per_mm(back_surface_power(front_d, larger, thickness_mm, index), index, "back"),
-        surface_curvature_per_mm(back_surface_power(front_d, smaller, thickness_mm, index), index, "back"),
+        surface_curvature_per_mm(back.power_a_d, index, "back"),
+        surface_curvature_per_mm(back.power_b_d, index, "back"),
         (math.cos(angle), math.sin(angle)), thickness_mm, index,
         no_roll_axes(lens_direction(float(theta), (float(tangential[0]), float(tangential[1])))),
     )
@@ -516,8 +516,8 @@ class _Rounds:
     """One lens's solution so far: the front and thickness it is being solved on, the surfacing power made for
     them, the thicknesses tried with how far the lab's thickness was from each, and the lens the lab last made."""
 
-    def __init__(self, lens: ExactLens, front_d: float, thickness_mm: float, tolerance_d: float):
-        self.lens, self.tolerance_d = lens, tolerance_d
+    def __init__(self, lens: ExactLens, front_d: float, thickness_mm: float):
+        self.lens = lens
         self.front_d, self.thickness_mm = float(front_d), float(thickness_mm)
         self.surfacing: PowerMatrix | None = None
         self.rounds, self.tried = 0, []
@@ -526,7 +526,7 @@ class _Rounds:
     @property
     def done(self) -> bool:
         """The lens the lab makes for the surfacing power is worn as the wanted power."""
-        return self.made is not None and self.made.residual_d < self.tolerance_d
+        return self.made is not None and self.made.residual_d < RESIDUAL_TOLERANCE_D
 
     def solve(self) -> None:
         """The surfacing power, exact in closed form, for the front and thickness being tried."""
@@ -556,8 +556,8 @@ class _Rounds:
             self.thickness_mm = t_b - g_b * (t_b - t_a) / (g_b - g_a)
 
 
-def exact_compensation(lenses: dict[str, ExactLens], shape: Shaping, start: dict[str, tuple[float, float]], *,
-                       tolerance_d: float = RESIDUAL_TOLERANCE_D) -> dict[str, ExactCompensation]:
+def exact_compensation(lenses: dict[str, ExactLens], shape: Shaping,
+                       start: dict[str, tuple[float, float]]) -> dict[str, ExactCompensation]:
     """The surfacing powers whose real-ray as-worn powers equal the wanted powers, solved together with the front
     curves and centre thicknesses the lab gives them.
 
@@ -573,16 +573,14 @@ def exact_compensation(lenses: dict[str, ExactLens], shape: Shaping, start: dict
     start : dict of (float, float)
         Each lens's first front curve (D) and thickness (mm) tried: the lab's
         for an estimate of the surfacing powers (Martin's formula's).
-    tolerance_d : float
-        A lens is solved when its residual is below this.
 
     Returns
     -------
     dict of ExactCompensation
         Per lens: the surfacing power, the front curve and centre thickness
         the lab gives that power, the residual (the largest meridional error
-        of ``wanted − as-worn`` for that lens, D) and the surfacing powers
-        solved for it.
+        of ``wanted − as-worn`` for that lens, D) and how many surfacing
+        powers were solved for it (its rounds).
 
     Raises
     ------
@@ -613,7 +611,7 @@ def exact_compensation(lenses: dict[str, ExactLens], shape: Shaping, start: dict
     1962); fixed-point iteration and the secant method as in any
     numerical-analysis text.
     """
-    rounds = {key: _Rounds(lens, *start[key], tolerance_d) for key, lens in lenses.items()}
+    rounds = {key: _Rounds(lens, *start[key]) for key, lens in lenses.items()}
     for _ in range(_MAX_ROUNDS):
         for solution in rounds.values():
             if not solution.done:
@@ -762,9 +760,8 @@ def off_axis_record(errors: GazeErrors) -> dict:
 
 def best_form(surfacing, index: float, theta: float, tangential: tuple[float, float], eye: str,
               bases_d: Sequence[float], thickness_of: Callable[[float], float],
-              rotation_distance_mm: float = ROTATION_DISTANCE_MM,
-              angles_deg: Sequence[float] = GAZE_ANGLES_DEG) -> BestForm:
-    """Among stocked bases, the front curve whose lens has the least off-axis error.
+              rotation_distance_mm: float = ROTATION_DISTANCE_MM) -> BestForm:
+    """Among stocked bases, the front curve whose lens has the least off-axis error at :data:`GAZE_ANGLES_DEG`.
 
     Parameters
     ----------
@@ -783,7 +780,6 @@ def best_form(surfacing, index: float, theta: float, tangential: tuple[float, fl
         :class:`~lenslane.plugins.optics.thickness.LensNotMakeable` and is
         left out.
     rotation_distance_mm : float
-    angles_deg : sequence of float
 
     Returns
     -------
@@ -811,7 +807,7 @@ def best_form(surfacing, index: float, theta: float, tangential: tuple[float, fl
         lens = worn_lens(base, surfacing, centre, index, theta, tangential)
         kept.append(float(base))
         centres.append(centre)
-        errors.append(gaze_errors(lens, asworn_power(lens), eye, rotation_distance_mm, angles_deg))
+        errors.append(gaze_errors(lens, asworn_power(lens), eye, rotation_distance_mm))
     if not kept:
         raise ValueError("no stocked base gives a lens that can be made")
     scores = tuple(form_score(e) for e in errors)

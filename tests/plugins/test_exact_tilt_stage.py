@@ -14,14 +14,13 @@ import numpy as np
 import pytest
 
 from lenslane.chain.host import start_host
-from lenslane.chain.pipeline import Pipeline
 from lenslane.config import LabConfig
-from lenslane.contract.intake import read_order
 from lenslane.plugins.optics.asworn import lens_direction, no_roll_axes, trace_chief_ray, worn_lens
 from lenslane.plugins.optics.power import power_matrix, principal_powers
 from lenslane.plugins.optics.surfaces import surface_radius_mm, toric_back_surface
 from lenslane.plugins.optics.tilt import tilt_obliquity
-from optics.raytrace_reference import chief_exit, vergence_matrix, worn_singlet
+from optics.raytrace_reference import chief_exit, turn_about_z, vergence_matrix, worn_singlet
+from tests.conftest import run_order
 
 OBJECT_MM = 10.0
 
@@ -39,9 +38,7 @@ ORDER = {
 
 
 def _run(stages, data=ORDER):
-    host = start_host(LabConfig(stages=stages))
-    order, parsed = read_order(json.dumps(data).encode(), host.settings.materials)
-    return Pipeline(host).run(order, parsed).result
+    return run_order(start_host(LabConfig(stages=stages)), data)
 
 
 def _change(result, stage, field):
@@ -62,10 +59,8 @@ def _traced_by_rayoptics(surfacing, front_d, centre_mm, index, eye):
     matrix = power_matrix(surfacing["sphere"], surfacing["cylinder"], surfacing["axis"])
     back = toric_back_surface(front_d, matrix, centre_mm, index)
     theta, t = tilt_obliquity(ORDER["fit"]["pantoscopic_deg"], ORDER["fit"]["face_form_deg"], eye)
-    roll = math.radians(back.meridian_a_deg - 90.0)  # the rayoptics toroid's profile lies along the lens's y
-    turn = np.array([[math.cos(roll), -math.sin(roll), 0.0], [math.sin(roll), math.cos(roll), 0.0], [0, 0, 1.0]])
     rotation = np.array(no_roll_axes(lens_direction(theta, t))).T
-    pose = rotation @ turn
+    pose = rotation @ turn_about_z(back.meridian_a_deg - 90.0)  # the rayoptics toroid's profile lies along its y
     opm = worn_singlet(surface_radius_mm(front_d, index), surface_radius_mm(back.power_a_d, index, "back"),
                        surface_radius_mm(back.power_b_d, index, "back"), centre_mm, index, pose,
                        object_distance_mm=OBJECT_MM)
@@ -178,10 +173,9 @@ def test_rayoptics_tracer_sees_a_principal_power_per_meridian():
     # back the surfacing power of a toric lens built by toric_back_surface, so its use above measures the lens.
     surfacing = {"sphere": -3.0, "cylinder": -1.5, "axis": 30}
     back = toric_back_surface(5.0, power_matrix(-3.0, -1.5, 30), 2.0, 1.6)
-    roll = math.radians(back.meridian_a_deg - 90.0)
-    turn = np.array([[math.cos(roll), -math.sin(roll), 0.0], [math.sin(roll), math.cos(roll), 0.0], [0, 0, 1.0]])
     opm = worn_singlet(surface_radius_mm(5.0, 1.6), surface_radius_mm(back.power_a_d, 1.6, "back"),
-                       surface_radius_mm(back.power_b_d, 1.6, "back"), 2.0, 1.6, turn)
+                       surface_radius_mm(back.power_b_d, 1.6, "back"), 2.0, 1.6,
+                       turn_about_z(back.meridian_a_deg - 90.0))
     larger, smaller, direction = principal_powers(power_matrix(surfacing["sphere"], surfacing["cylinder"], 30))
     eig = np.linalg.eigvalsh(vergence_matrix(opm))
     assert eig[1] == pytest.approx(larger, abs=1e-6) and eig[0] == pytest.approx(smaller, abs=1e-6)

@@ -1,7 +1,6 @@
 """The ``vertex`` and ``tilt`` stages through the pipeline: results, change records, policies and flags."""
 from __future__ import annotations
 
-import copy
 import json
 import math
 
@@ -15,27 +14,10 @@ from pathlib import Path
 
 from lenslane.config import ConfigError, LabConfig
 from lenslane.chain.host import start_host
-from lenslane.contract.intake import read_order
-from lenslane.chain.pipeline import Pipeline
+from lenslane.testing import sample_order
+from tests.conftest import run_order
 
 SAMPLE = Path(__file__).resolve().parents[2] / "inbox_samples" / "progressive-minus-tilt-vertex-prism.json"
-
-# An invented practice; a mild single-vision order with no fit measurements.
-BASE_ORDER = {
-    "format": "lens-order/1",
-    "order_id": "TST-VT-0001",
-    "account": "test-practice",
-    "rx": {"right": {"sphere": -1.00, "cylinder": -0.50, "axis": 90}, "left": {"sphere": -1.25}},
-    "lens": {"design": "single_vision", "material": "resin-1.50"},
-    "frame": {"box_width_mm": 52.0, "box_height_mm": 38.0, "bridge_mm": 18.0},
-    "fit": {"right": {"pd_mm": 32.0}, "left": {"pd_mm": 32.0}},
-}
-
-
-def run_order(host, data):
-    """Validate ``data`` and run it through the host's chain; the result document."""
-    order, parsed = read_order(json.dumps(data).encode(), host.settings.materials)
-    return Pipeline(host).run(order, parsed).result
 
 
 def _host(**stages):
@@ -118,7 +100,7 @@ def test_random_orders_match_an_independent_implementation(sphere, cylinder, axi
     # Source: ORDER_FORMAT.md compensation model, re-implemented in this test with numpy; compared to 0.01 D
     # and 1° as the acceptance check does (the axis only where the cylinder is large enough to have one).
     # The generator keeps every cylinder here: dropping small ones is the lab's rule, tested with the generator.
-    data = copy.deepcopy(BASE_ORDER)
+    data = sample_order()
     data["rx"] = {eye: {"sphere": sphere, "cylinder": cylinder, "axis": axis}}
     if refraction is not None:
         data["rx"]["vertex_mm"] = refraction
@@ -381,7 +363,7 @@ def test_left_eye_only_order(default_host):
 def test_a_flag_never_shows_a_negative_zero(default_host):
     # A plano meridian stays plano under vertex compensation (F(1 − dF)⁻¹ with F = 0 is 0, from the
     # contract's formula); the flag shows its change as 0.0, never as −0.0.
-    order = copy.deepcopy(BASE_ORDER)
+    order = sample_order()
     order["rx"]["left"] = {"sphere": 0.0, "cylinder": -1.0, "axis": 169}
     order["fit"]["vertex_mm"] = 13.5
     order["rx"]["vertex_mm"] = 12.0

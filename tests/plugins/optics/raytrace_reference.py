@@ -16,6 +16,8 @@ formula of the engine.
 """
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from rayoptics.elem.profiles import YToroid
 from rayoptics.elem.surface import DecenterData
@@ -144,6 +146,12 @@ def lens_normal(opm: OpticalModel, step_mm: float = 1e-3) -> np.ndarray:
     normal = np.cross(across, up)
     normal /= np.linalg.norm(normal)
     return normal if normal[2] > 0 else -normal
+
+
+def turn_about_z(degrees: float) -> np.ndarray:
+    """The rotation by an angle (degrees) about the line of sight, counter-clockwise seen facing the wearer."""
+    a = math.radians(degrees)
+    return np.array([[math.cos(a), -math.sin(a), 0.0], [math.sin(a), math.cos(a), 0.0], [0.0, 0.0, 1.0]])
 
 
 def worn_singlet(front_radius_mm: float, back_radius_mm: float, back_sweep_radius_mm: float, thickness_mm: float,

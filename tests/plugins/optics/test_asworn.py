@@ -19,9 +19,9 @@ from lenslane.plugins.optics.power import PowerMatrix, power_matrix, sphero_cyli
 from lenslane.plugins.optics.raytrace import RayMissedSurface
 from lenslane.plugins.optics.surfaces import back_vertex_power, surface_radius_mm, toric_back_surface
 from lenslane.plugins.optics.thickness import LensShape, LensNotMakeable, solve_center_thickness
-from lenslane.plugins.optics.tilt import exact_thin_factor, tilt_obliquity, tilted_power
+from lenslane.plugins.optics.tilt import exact_thin_factor, martin_factor, tilt_obliquity, tilted_power
 from lenslane.plugins.optics.vertex import vertex_move
-from raytrace_reference import chief_exit, vergence_matrix, worn_singlet
+from raytrace_reference import chief_exit, turn_about_z, vergence_matrix, worn_singlet
 
 
 def _worn(front, surfacing, thickness, index, pantoscopic=0.0, face_form=0.0, eye="right"):
@@ -132,7 +132,7 @@ def test_zero_thickness_limit_is_the_tilted_thin_lens(power, p, w, eye, index):
     surfacing = power_matrix(*power)
     theta, t = tilt_obliquity(p, w, eye)
     martin = np.array(tilted_power(surfacing, theta, t, index))
-    harris = martin * exact_thin_factor(theta, index) / (1.0 + math.sin(theta) ** 2 / (2.0 * index))
+    harris = martin * exact_thin_factor(theta, index) / martin_factor(theta, index)
     for front in (2.0, 8.0):
         traced = np.array(asworn_power(_worn(front, surfacing, 0.0, index, p, w, eye)))
         assert np.max(np.abs(traced - harris)) < 1e-9
@@ -141,11 +141,6 @@ def test_zero_thickness_limit_is_the_tilted_thin_lens(power, p, w, eye, index):
 # --------------------------------------------------------------------------
 # Against rayoptics: tilted, decentred, toric lenses, on and off the line of sight
 # --------------------------------------------------------------------------
-
-
-def _turn_about_z(degrees):
-    a = math.radians(degrees)
-    return np.array([[math.cos(a), -math.sin(a), 0.0], [math.sin(a), math.cos(a), 0.0], [0.0, 0.0, 1.0]])
 
 
 def _lens_and_reference(front_r, back_r, sweep_r, thickness, index, pose, decenter=(0.0, 0.0)):
@@ -163,6 +158,25 @@ def _frame_across(direction):
     across = np.array([1.0, 0.0, 0.0]) - direction[0] * direction
     across /= np.linalg.norm(across)
     return across, np.cross(direction, across)
+
+
+def _made_reference(lens, front, surfacing, thickness, index):
+    """rayoptics' model of the lens made for a surfacing power (its toric back per principal meridian, Jalie), posed
+    as ``lens`` is worn, and where its back vertex sits in rayoptics' frame."""
+    back = toric_back_surface(front, surfacing, thickness, index)
+    pose = _rotation(lens) @ turn_about_z(back.meridian_a_deg - 90.0)   # rayoptics' profile lies along its y
+    _, reference, back_vertex = _lens_and_reference(
+        surface_radius_mm(front, index), surface_radius_mm(back.power_a_d, index, "back"),
+        surface_radius_mm(back.power_b_d, index, "back"), thickness, index, pose)
+    return reference, back_vertex
+
+
+def _object_start(lens, ray, back_vertex):
+    """Where rayoptics starts our traced chief ray, on its object plane 10 mm before the front vertex, and the
+    ray's direction there."""
+    incoming = _rotation(lens) @ np.array(ray.incoming)
+    entry = _rotation(lens) @ np.array(ray.front) + back_vertex
+    return tuple((entry - (entry[2] + 10.0) / incoming[2] * incoming)[:2]), tuple(incoming)
 
 
 CASES = {
@@ -183,7 +197,7 @@ def test_vergence_matches_rayoptics(case):
     # one ray, the exit chief ray rayoptics found, back through the lens, and carries the pencil along it.
     front_r, back_r, sweep_r, thickness, index, p, w, eye, roll, decenter, behind = CASES[case]
     theta, t = tilt_obliquity(p, w, eye)
-    pose = np.array(no_roll_axes(lens_direction(theta, t))).T @ _turn_about_z(roll)
+    pose = np.array(no_roll_axes(lens_direction(theta, t))).T @ turn_about_z(roll)
     lens, reference, back_vertex = _lens_and_reference(front_r, back_r, sweep_r, thickness, index, pose, decenter)
     expected = vergence_matrix(reference, behind_mm=behind)
     exit_point, direction = chief_exit(reference)
@@ -222,24 +236,17 @@ def test_every_pencil_matches_rayoptics(power, front, thickness, index, p, w, ey
     # vertex): the pencil's vergence where its chief ray meets the vertex sphere, to 1e-6 D. rayoptics starts the
     # chief ray where ours says it enters the lens and must find it leaving through the centre of rotation.
     lens = _worn(front, power_matrix(*power), thickness, index, p, w, eye)
-    back = toric_back_surface(front, power_matrix(*power), thickness, index)
-    pose = _rotation(lens) @ _turn_about_z(back.meridian_a_deg - 90.0)   # rayoptics' profile lies along its y
-    _, reference, back_vertex = _lens_and_reference(
-        surface_radius_mm(front, index), surface_radius_mm(back.power_a_d, index, "back"),
-        surface_radius_mm(back.power_b_d, index, "back"), thickness, index, pose)
+    reference, back_vertex = _made_reference(lens, front, power_matrix(*power), thickness, index)
     chief, on_sphere = _gaze(gaze_deg, towards, eye)
     try:
         ray = trace_chief_ray(lens, lens.to_lens(tuple(on_sphere)), lens.to_lens(tuple(chief)))
     except RayMissedSurface:
         assume(False)  # the gaze passes beyond the lens (a steep biconvex lens at 30°): no pencil to compare
-    rotation = _rotation(lens)
-    incoming = rotation @ np.array(ray.incoming)
-    entry = rotation @ np.array(ray.front) + back_vertex
-    start = entry - (entry[2] + 10.0) / incoming[2] * incoming           # on rayoptics' object plane
-    exit_point, direction = chief_exit(reference, tuple(start[:2]), tuple(incoming))
+    start, incoming = _object_start(lens, ray, back_vertex)
+    exit_point, direction = chief_exit(reference, start, incoming)
     assert np.max(np.abs(direction - chief)) < 1e-9
     assert np.linalg.norm(np.cross(exit_point - back_vertex - on_sphere, chief)) < 1e-7
-    expected = _differenced(reference, behind_mm=ray.beyond, start=tuple(start[:2]), direction=tuple(incoming))
+    expected = _differenced(reference, behind_mm=ray.beyond, start=start, direction=incoming)
     ours = pencil_vergence(lens, tuple(on_sphere), tuple(chief), _frame_across(chief))
     # Where the vertex sphere lies near a focal line of the pencil (a biconvex +12 D lens at 30°: over 1 000 D)
     # the agreement is taken relative to the vergence.
@@ -253,17 +260,11 @@ def test_gaze_errors_match_rayoptics(eye, towards):
     # 2√(J₀² + J₄₅²), E the vergence less the prescription, at 30° of gaze; to 1e-6 D.
     surfacing = power_matrix(-4.0, -2.0, 30.0)
     lens = _worn(5.0, surfacing, 2.0, 1.6, 10.0, 15.0, eye)
-    back = toric_back_surface(5.0, surfacing, 2.0, 1.6)
-    pose = _rotation(lens) @ _turn_about_z(back.meridian_a_deg - 90.0)
-    _, reference, back_vertex = _lens_and_reference(
-        surface_radius_mm(5.0, 1.6), surface_radius_mm(back.power_a_d, 1.6, "back"),
-        surface_radius_mm(back.power_b_d, 1.6, "back"), 2.0, 1.6, pose)
+    reference, back_vertex = _made_reference(lens, 5.0, surfacing, 2.0, 1.6)
     chief, on_sphere = _gaze(30.0, towards, eye)
     ray = trace_chief_ray(lens, lens.to_lens(tuple(on_sphere)), lens.to_lens(tuple(chief)))
-    incoming = _rotation(lens) @ np.array(ray.incoming)
-    entry = _rotation(lens) @ np.array(ray.front) + back_vertex
-    start = entry - (entry[2] + 10.0) / incoming[2] * incoming
-    measured = _differenced(reference, behind_mm=ray.beyond, start=tuple(start[:2]), direction=tuple(incoming))
+    start, incoming = _object_start(lens, ray, back_vertex)
+    measured = _differenced(reference, behind_mm=ray.beyond, start=start, direction=incoming)
     # rayoptics measures in x projected across the ray; Listing's frame is the eye's x and y turned with it.
     listing = np.array(no_roll_axes(tuple(chief))).T[:, :2]
     turn = np.column_stack(_frame_across(chief)).T @ listing
@@ -315,16 +316,10 @@ def test_the_closed_form_surfacing_power_traced_by_rayoptics():
     theta, t = tilt_obliquity(12.0, 20.0, "left")
     surfacing = surfacing_for(wanted, 9.0, 6.0, 1.6, theta, t)
     lens = worn_lens(9.0, surfacing, 6.0, 1.6, theta, t)
-    back = toric_back_surface(9.0, surfacing, 6.0, 1.6)
-    pose = _rotation(lens) @ _turn_about_z(back.meridian_a_deg - 90.0)
-    _, reference, back_vertex = _lens_and_reference(
-        surface_radius_mm(9.0, 1.6), surface_radius_mm(back.power_a_d, 1.6, "back"),
-        surface_radius_mm(back.power_b_d, 1.6, "back"), 6.0, 1.6, pose)
+    reference, back_vertex = _made_reference(lens, 9.0, surfacing, 6.0, 1.6)
     ray = trace_chief_ray(lens, (0.0, 0.0, 0.0), lens.to_lens((0.0, 0.0, 1.0)))
-    incoming = _rotation(lens) @ np.array(ray.incoming)
-    entry = _rotation(lens) @ np.array(ray.front) + back_vertex
-    start = entry - (entry[2] + 10.0) / incoming[2] * incoming
-    measured = vergence_matrix(reference, start=tuple(start[:2]), direction=tuple(incoming))
+    start, incoming = _object_start(lens, ray, back_vertex)
+    measured = vergence_matrix(reference, start=start, direction=incoming)
     assert np.max(np.abs(measured - _matrix(wanted))) < 1e-6
     assert np.max(np.abs(np.array(surfacing) - np.array(wanted))) > 0.1
 
@@ -480,6 +475,14 @@ def test_largest_meridional_error_and_score():
     # J₄₅ = E₁₂; the largest meridional error |M| + √(J₀² + J₄₅²) is the larger principal error's size.
     assert largest_meridional_error((0.30, 0.10, -0.10)) == pytest.approx(np.max(np.abs(np.linalg.eigvalsh(
         [[0.30, 0.10], [0.10, -0.10]]))), abs=1e-15)
+    # The form's score: the RMS over the gaze points of that error (a least-squares merit over the field, Atchison
+    # 1992, Applied Optics 31:3579), from each point's M and astigmatic error 2√(J₀² + J₄₅²).
+    elements = np.random.default_rng(5).uniform(-0.5, 0.5, (2, 4, 3))
+    xx, xy, yy = elements[..., 0], elements[..., 1], elements[..., 2]
+    mean, cylinder = 0.5 * (xx + yy), 2.0 * np.hypot(0.5 * (xx - yy), xy)
+    errors = GazeErrors((20.0, 30.0), tuple(GAZE_DIRECTIONS), tuple(map(tuple, mean)), tuple(map(tuple, cylinder)))
+    largest = [np.max(np.abs(np.linalg.eigvalsh([[a, b], [b, c]]))) for a, b, c in elements.reshape(-1, 3)]
+    assert form_score(errors) == pytest.approx(math.sqrt(np.mean(np.square(largest))), abs=1e-12)
 
 
 def test_best_form_chooses_the_least_error_among_stocked_bases():
