@@ -496,12 +496,10 @@ def _own_choice(view, shared: _Shared, lens: _Eye, params: GeometryParams) -> _C
     fit = view.order.fit
     request = FrontCurveRequest(lens.sphere, lens.cylinder, lens.axis, index, params.rotation_distance_mm, lens.eye,
                                 fit.vertex_mm, fit.pantoscopic_deg, fit.face_form_deg)
-    if lens.method == EXACT_BEST_FORM:
-        best = _exact_best_form(view, shared, lens, params, inputs)
-        if best is not None:
-            return best
     method = front_curve_method(lens.method)
     try:
+        if method.name == EXACT_BEST_FORM:
+            return _exact_best_form(view, shared, lens, params, inputs)
         wanted = front_curve(method.name, request)
     except NoBestForm as exc:
         flags.append(Flag(
@@ -531,9 +529,10 @@ def _own_choice(view, shared: _Shared, lens: _Eye, params: GeometryParams) -> _C
                    sentence)
 
 
-def _exact_best_form(view, shared: _Shared, lens: _Eye, params: GeometryParams, inputs: dict) -> _Choice | None:
+def _exact_best_form(view, shared: _Shared, lens: _Eye, params: GeometryParams, inputs: dict) -> _Choice:
     """Among the stocked bases that make the lens (a concave back, within the hard limits), the one whose lens has
-    the least off-axis error by real-ray trace; None when no base makes it (the rule's fallback then applies)."""
+    the least off-axis error by real-ray trace; :class:`NoBestForm` when no base makes it (Vogel's rule then
+    stands in, as for any method without a best form)."""
     fit = view.order.fit
     theta, tangential = tilt_obliquity(fit.pantoscopic_deg or 0.0, fit.face_form_deg or 0.0, lens.eye)
     trials: dict[float, _Trial] = {}
@@ -547,8 +546,8 @@ def _exact_best_form(view, shared: _Shared, lens: _Eye, params: GeometryParams, 
     try:
         best = best_form(lens.matrix, shared.material.index, theta, tangential, lens.eye, lens.stock, thickness_of,
                          params.rotation_distance_mm)
-    except ValueError:
-        return None
+    except ValueError as exc:  # no stocked base makes the lens: there is no lens to judge
+        raise NoBestForm(f"the exact best form has no lens to judge: {exc}") from None
     chosen = best.bases_d.index(best.base_d)
     inputs = {**inputs, "index": shared.material.index, "rotation_distance_mm": params.rotation_distance_mm,
               "obliquity_deg": math.degrees(theta),

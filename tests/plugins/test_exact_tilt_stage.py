@@ -153,6 +153,22 @@ def test_exact_best_form_chooses_the_least_error_base_and_records_it():
         assert tilt["inputs"]["front_curve_d"] == geometry["after"]["front_curve_d"]
 
 
+def test_exact_best_form_says_when_no_stocked_base_makes_the_lens():
+    # Common practice: a strong plus lens in a high index may be steeper than every stocked base allows; with no
+    # lens to judge, the best form gives way to Vogel's rule with a note saying why, never a wrong reason.
+    data = copy.deepcopy(ORDER)
+    data["rx"] = {"right": {"sphere": 9.0}, "left": {"sphere": 9.0}, "vertex_mm": 12.0}
+    data["lens"]["material"] = "resin-1.74"
+    result = _run({"geometry": {"front_curve_method": "exact_best_form"}}, data)
+    notes = [f for f in result["flags"] if f["code"] == "front-curve-no-best-form"]
+    assert {f["eye"] for f in notes} == {"right", "left"}
+    for note in notes:
+        assert note["message"].startswith("the exact best form has no lens to judge: no stocked base gives a lens "
+                                          "that can be made; Vogel's rule is used instead.")
+    geometry = _change(result, "geometry", "lenses.right.geometry")
+    assert "Vogel's rule" in geometry["method"] and "candidates" not in geometry["inputs"]["front_curve_d"]
+
+
 def test_exact_falls_back_to_martin_with_a_warning_when_no_lens_can_be_made():
     # Source: DOMAIN.md "Surfaces, thickness": a front curve steeper than the lens is wide makes no lens; the
     # exact method needs the lens's shape, so it says so and keeps Martin's compensation.
