@@ -21,7 +21,6 @@ Safety:
 """
 from __future__ import annotations
 
-import dataclasses
 import hashlib
 import hmac
 import secrets
@@ -30,6 +29,9 @@ from typing import Any
 from urllib.parse import urlsplit
 
 from flask import Flask, abort, redirect, request
+
+from lenslane import decide
+from lenslane.decide import QueueItem
 from lenslane.web.lab_view import counts_today, search
 from lenslane.web.page import order_page_data, templates, valid_order_id
 
@@ -52,32 +54,9 @@ _HEADERS = {
 }
 
 
-def _decisions():
-    """The decision mechanism (``lenslane.decide``), or None while this installation has none."""
-    try:
-        from lenslane import decide
-    except ImportError:
-        return None
-    return decide
-
-
-def _plain(item: Any) -> dict[str, Any]:
-    """A queue item as a dict, whatever its class (dataclass, named tuple, pydantic model or dict)."""
-    if dataclasses.is_dataclass(item):
-        return dataclasses.asdict(item)
-    for method in ("model_dump", "_asdict"):
-        if hasattr(item, method):
-            return dict(getattr(item, method)())
-    return dict(item) if isinstance(item, dict) else dict(vars(item))
-
-
-def _awaiting(item: dict[str, Any]) -> dict[str, Any]:
-    """What the page says about one queue item: its kind, the actions that fit it, what to decide."""
-    kind = "held" if item.get("kind") == "held" else "review"
-    actions = item.get("actions") or (("approve", "refuse") if kind == "review" else ("replace", "discard"))
-    return {**item, "kind": kind, "summary": item.get("decide") or "", "flags": item.get("flags") or [],
-            "differences": item.get("differences") or [],
-            "actions": [(action, ACTION_WORDS.get(action, action)) for action in actions]}
+def _awaiting(item: QueueItem) -> dict[str, Any]:
+    """What the page says about one queue item: the item, and each action that fits it with what it does."""
+    return {**item.to_dict(), "actions": [(action, ACTION_WORDS[action]) for action in item.actions]}
 
 
 def _host_name(host: str) -> str:
@@ -140,8 +119,7 @@ def create_app(lab_root: Path, token: str | None = None, loopback: bool = True) 
 
     @app.get("/")
     def queue_page():
-        decide = _decisions()
-        items = None if decide is None else [_awaiting(_plain(item)) for item in decide.queue(lab_root)]
+        items = [_awaiting(item) for item in decide.queue(lab_root)]
         return page("queue.html", items=items, counts=counts_today(lab_root))
 
     @app.get("/search")
@@ -150,14 +128,7 @@ def create_app(lab_root: Path, token: str | None = None, loopback: bool = True) 
         return page("search.html", query=query, hits=search(lab_root, query) if query.strip() else None)
 
     def awaiting_decision(order_id: str) -> dict[str, Any] | None:
-        decide = _decisions()
-        if decide is None:
-            return None
-        for item in decide.queue(lab_root):
-            plain = _plain(item)
-            if plain.get("order_id") == order_id:
-                return _awaiting(plain)
-        return None
+        return next((_awaiting(item) for item in decide.queue(lab_root) if item.order_id == order_id), None)
 
     @app.get("/orders/<order_id>")
     def order_page(order_id: str):
@@ -181,10 +152,7 @@ def create_app(lab_root: Path, token: str | None = None, loopback: bool = True) 
         action, by, note = request.form.get("action", ""), request.form.get("by", "").strip(), request.form.get("note", "").strip()
         error = None
         awaiting = awaiting_decision(order_id)
-        decide = _decisions()
-        if decide is None:
-            error = "This installation has no decision mechanism (lenslane.decide); nothing was recorded."
-        elif not by or not note:
+        if not by or not note:
             error = "A decision needs the name of the person who makes it and a note of why; nothing was recorded."
         elif awaiting is None:
             error = f"Order {order_id} is not awaiting a decision; nothing was recorded."
