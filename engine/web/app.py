@@ -29,6 +29,7 @@ from typing import Any
 from urllib.parse import urlsplit
 
 from flask import Flask, abort, redirect, request
+from werkzeug.exceptions import HTTPException
 
 from lenslane import decide
 from lenslane.decide import QueueItem
@@ -44,6 +45,13 @@ ACTION_WORDS = {
     "refuse": "move the result to rejected/ with your reason",
     "replace": "run the new version through the chain as the order's next revision",
     "discard": "archive the new version; the published result stays",
+}
+#: What the error pages this server raises itself say (any other error says what HTTP calls it).
+_ERROR_TEXTS = {
+    403: ("Refused", "The form did not come from this page (its token is missing or wrong); nothing was recorded. "
+                     "Open the order page again and decide there."),
+    404: ("Not found", "There is no such page."),
+    421: ("Refused", "This server answers only to its loopback address (127.0.0.1, localhost or [::1])."),
 }
 _HEADERS = {
     "Content-Security-Policy": "default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
@@ -108,14 +116,11 @@ def create_app(lab_root: Path, token: str | None = None, loopback: bool = True) 
         response.headers.update(_HEADERS)
         return response
 
-    @app.errorhandler(404)
-    def not_found(_error):
-        return page("message.html", 404, title="Not found", text="There is no such page.")
-
-    @app.errorhandler(421)
-    def wrong_host(_error):
-        return page("message.html", 421, title="Refused",
-                    text="This server answers only to its loopback address (127.0.0.1, localhost or [::1]).")
+    @app.errorhandler(HTTPException)
+    def error_page(error: HTTPException):
+        """Every error is a page of the lab's own, with the caution like any other."""
+        title, text = _ERROR_TEXTS.get(error.code, (error.name, error.description))
+        return page("message.html", error.code or 500, title=title, text=text)
 
     @app.get("/")
     def queue_page():
@@ -168,11 +173,5 @@ def create_app(lab_root: Path, token: str | None = None, loopback: bool = True) 
         data = order_page_data(lab_root, order_id)
         return page("order.html", 409 if awaiting is None else 400, page=data, awaiting=awaiting,
                     csrf=csrf_for(order_id), error=error)
-
-    @app.errorhandler(403)
-    def forbidden(_error):
-        return page("message.html", 403, title="Refused",
-                    text="The form did not come from this page (its token is missing or wrong); nothing was recorded. "
-                         "Open the order page again and decide there.")
 
     return app

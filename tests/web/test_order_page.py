@@ -131,6 +131,17 @@ def test_an_order_page_and_an_unknown_order(client):
     assert web.get("/orders/..%2F..%2Fetc%2Fpasswd").status_code == 404
 
 
+def test_every_error_page_carries_the_caution(client):
+    web, _, _ = client
+    for response, status in ((web.get("/orders/NOPE-1"), 404), (web.get("/no/such/page"), 404),
+                             (web.get("/orders/DP-1000/decide"), 405),
+                             (web.post("/orders/DP-1000/decide", data={"note": "x" * 70_000}), 413),
+                             (web.post("/orders/DP-1000/decide", data={}), 403),
+                             (web.get("/", headers={"Host": "lab.example"}), 421)):
+        assert response.status_code == status
+        assert CAUTION in response.get_data(as_text=True), status
+
+
 def test_loopback_server_answers_only_to_loopback_names(client):
     web, _, _ = client
     assert web.get("/", headers={"Host": "127.0.0.1:8470"}).status_code == 200
