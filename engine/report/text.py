@@ -7,7 +7,6 @@ from typing import Any
 from lenslane.report.notation import inputs_text, power_text, value_text
 
 
-
 def render_text(story: dict[str, Any]) -> str:
     """The story for a person to read."""
     if not story["found"]:
@@ -16,11 +15,11 @@ def render_text(story: dict[str, Any]) -> str:
     lines = [f"Order {story['order_id']} — from the audit log of {story['lab']}",
              "Processed once." if count == 1 else f"Processed {count} times; each is told below, oldest first."]
     decisions = list(story.get("decisions") or [])
-    for number_, processing in enumerate(story["processings"], start=1):
+    for number, processing in enumerate(story["processings"], start=1):
         while decisions and processing["seq"] and decisions[0]["seq"] < processing["seq"][0]:
             lines += [""] + _render_decision(decisions.pop(0))
         lines.append("")
-        lines += _render_processing(processing, number_, count)
+        lines += _render_processing(processing, number, count)
     for decision in decisions:
         lines += [""] + _render_decision(decision)
     lines += ["", story["caution"]]
