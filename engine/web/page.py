@@ -24,6 +24,7 @@ from lenslane.plugins.optics.outline import DEFAULT_EXPONENT
 from lenslane.report.notation import geometry_text, inputs_text, number, value_text
 from lenslane.report.pictures import eye_pictures
 from lenslane.report.story import order_story
+from lenslane.report.text import OUTCOME_MEANINGS, REFUSED_ON_READING, UNFINISHED
 from lenslane.vocabulary import CAUTION, EYES, WHAT_TO_DECIDE
 
 #: What an order is once a person's decision came after its last processing.
@@ -31,7 +32,8 @@ DECIDED = {"approve": "approved", "refuse": "refused", "replace": "replaced", "d
 
 templates = Environment(loader=PackageLoader("lenslane.web", "templates"), autoescape=select_autoescape(default=True),
                         trim_blocks=True, lstrip_blocks=True)
-templates.globals.update(caution=CAUTION, version=__version__)
+templates.globals.update(caution=CAUTION, version=__version__, outcome_meanings=OUTCOME_MEANINGS,
+                         refused_on_reading=REFUSED_ON_READING, unfinished=UNFINISHED)
 
 
 def valid_order_id(order_id: str) -> bool:
