@@ -9,6 +9,13 @@ lab, and print orders per second for both, the ratio engine/floor, the
 per-stage time shares from the pipeline's own timing, and the engine's peak RSS.
 Never part of the test suite's pass/fail.
 
+It also prints what each side's time an order is made of — CPU, and the
+rest, mostly waiting for the disk — and the file system's fsync latency
+(a new small file, as the floor writes one): the floor waits for two fsyncs
+an order, the engine's group commit for one flush a batch, so the ratio
+depends on that latency, and the line says at which latency the floor would
+take half the engine's time.
+
 The floor also runs once before the engine, on a third copy, and the ratio is
 taken against the mean of the two floor runs: the cost of creating a file drifts
 on some file systems (ext4 without a journal, for one, skips inodes deleted in
@@ -22,6 +29,7 @@ import argparse
 import json
 import os
 import platform
+import resource
 import shutil
 import statistics
 import subprocess
@@ -48,6 +56,29 @@ def timed(argv: list[str]) -> tuple[float, float, str]:
     return elapsed, usage.ru_maxrss / 1024.0, out
 
 
+def children_cpu_s() -> float:
+    """CPU seconds (user and system) of this process's children waited for so far."""
+    usage = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return usage.ru_utime + usage.ru_stime
+
+
+def fsync_ms(folder: Path, samples: int = 200) -> float:
+    """The median time (ms) to fsync a new 60-byte file in ``folder``, as the floor does for each result."""
+    times = []
+    for number in range(samples):
+        path = folder / f"fsync-probe-{number}"
+        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
+        try:
+            os.write(fd, b"x" * 60)
+            started = time.perf_counter()
+            os.fsync(fd)
+            times.append(time.perf_counter() - started)
+        finally:
+            os.close(fd)
+        path.unlink()
+    return 1000 * statistics.median(times)
+
+
 def bench(count: int, workdir: Path, settings: dict[str, str] | None = None) -> dict:
     """Drain ``count`` orders; ``settings`` replaces lines of the lab's config (a commented default by its setting)."""
     source = workdir / f"orders-{count}"
@@ -70,9 +101,14 @@ def bench(count: int, workdir: Path, settings: dict[str, str] | None = None) -> 
 
     floor = lambda lab: timed([sys.executable, str(HERE / "floor.py"), str(lab)])  # noqa: E731
     load_before = os.getloadavg()[0]
+    cpu = [children_cpu_s()]
     before_s, _, _ = floor(floor_labs[0])
+    cpu.append(children_cpu_s())
     engine_s, engine_rss, out = timed([*lenslane, "watch", str(engine_lab), "--once", "--stats"])
+    cpu.append(children_cpu_s())
     after_s, floor_rss, _ = floor(floor_labs[1])
+    cpu.append(children_cpu_s())
+    fsync_latency_ms = fsync_ms(workdir)
     load_after = os.getloadavg()[0]
     floor_s = (before_s + after_s) / 2
     published = len(os.listdir(engine_lab / "outbox"))
@@ -84,7 +120,8 @@ def bench(count: int, workdir: Path, settings: dict[str, str] | None = None) -> 
             "floor_before_s": before_s, "floor_after_s": after_s,
             "engine_rate": count / engine_s, "floor_rate": count / floor_s, "ratio": engine_s / floor_s,
             "engine_peak_rss_mb": engine_rss, "floor_peak_rss_mb": floor_rss, "stats": stats,
-            "load": (load_before, load_after)}
+            "engine_cpu_s": cpu[2] - cpu[1], "floor_cpu_s": (cpu[1] - cpu[0] + cpu[3] - cpu[2]) / 2,
+            "fsync_ms": fsync_latency_ms, "load": (load_before, load_after)}
 
 
 def report(row: dict) -> None:
@@ -96,6 +133,17 @@ def report(row: dict) -> None:
           f"(floor {row['floor_peak_rss_mb']:.0f} MB), published {row['published']}; "
           f"load average {row['load'][0]:.2f} before, {row['load'][1]:.2f} after (other work on the machine "
           "moves every figure)")
+    per_order = lambda seconds: 1000 * seconds / row["orders"]  # noqa: E731
+    engine_ms, floor_ms = per_order(row["engine_s"]), per_order(row["floor_s"])
+    engine_cpu_ms, floor_cpu_ms = per_order(row["engine_cpu_s"]), per_order(row["floor_cpu_s"])
+    # The floor without its two fsyncs an order, and the fsync latency at which it would take half the engine's
+    # time (the engine's own waits, one flush for a batch of orders, are left out: they hardly grow with it).
+    floor_besides_ms = floor_ms - 2 * row["fsync_ms"]
+    even_ms = (engine_ms / 2 - floor_besides_ms) / 2
+    print(f"  an order: engine {engine_ms:.2f} ms ({engine_cpu_ms:.2f} CPU, {engine_ms - engine_cpu_ms:.2f} the rest), "
+          f"floor {floor_ms:.2f} ms ({floor_cpu_ms:.2f} CPU, {floor_ms - floor_cpu_ms:.2f} the rest); fsync of a "
+          f"small new file here {row['fsync_ms']:.2f} ms (median); the floor would take half the engine's time "
+          f"at an fsync of {even_ms:.2f} ms")
     stage_seconds = row["stats"].get("stage_seconds", {})
     chain = sum(stage_seconds.values())
     if chain:
