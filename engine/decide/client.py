@@ -15,8 +15,9 @@ import threading
 import time
 from pathlib import Path
 
-from lenslane.decide import requests
 from lenslane.audit.log import AuditError
+from lenslane.audit.records import AUDIT_NAME
+from lenslane.decide import requests
 from lenslane.decide.model import EXIT_BLOCKED, EXIT_NOT_TAKEN, EXIT_USAGE, DecisionError, DecisionResult
 from lenslane.lab.files import LabLocked, lock_lab
 
@@ -39,7 +40,7 @@ def decide(lab_root: Path, order_id: str, action: str, by: str, note: str, held_
         Not applied; ``message`` says why and ``exit_code`` which case it is.
     """
     root = Path(lab_root)
-    if not (root / "audit.jsonl").exists() and not (root / "outbox").is_dir():
+    if not (root / AUDIT_NAME).exists() and not (root / "outbox").is_dir():
         raise DecisionError(f"{root} is not a lab folder (lenslane init makes one)", EXIT_USAGE)
     request = requests.new_request(order_id, action, by, note, held_file)
     path = requests.write_request(root, request)

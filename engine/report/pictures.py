@@ -106,6 +106,11 @@ class Section(NamedTuple):
     ends: tuple[str, str]
 
 
+def _matrix(power: dict[str, Any]) -> PowerMatrix:
+    """The power matrix of a result's sphero-cylinder (a missing cylinder is none, a missing axis 180)."""
+    return power_matrix(power["sphere"], power.get("cylinder") or 0.0, power.get("axis") or 180)
+
+
 def _index_of(result: dict[str, Any], eye: str) -> float:
     """The index the geometry stage used for this eye (its change record's inputs), else the order's."""
     for change in reversed(result.get("changes") or []):
@@ -151,9 +156,8 @@ def lens_model(result: dict[str, Any], eye: str, exponent_without_ed: float = DE
     # The wedge is the prescribed prism and any thinning prism the geometry added, as one resultant.
     prism = resultant_prism([(float(p.get("amount") or 0.0), float(p.get("base_deg") or 0.0))
                              for p in (lens.get("prism") or {}, geometry.get("thinning_prism") or {})], eye)
-    shape = LensShape(float(geometry["front_curve_d"]),
-                      power_matrix(surfacing["sphere"], surfacing.get("cylinder") or 0.0, surfacing.get("axis") or 180),
-                      _index_of(result, eye), prism.amount, prism.base_deg)
+    shape = LensShape(float(geometry["front_curve_d"]), _matrix(surfacing), _index_of(result, eye), prism.amount,
+                      prism.base_deg)
     centre = tuple(float(v) for v in geometry.get("optical_centre_mm") or (0.0, 0.0))
     outline = outline_points(radii, eye)
     center_thickness = float(geometry["center_thickness_mm"])
@@ -502,7 +506,7 @@ def sections_picture(model: LensModel, prefix: str) -> Picture:
         centre_front, centre_back = shift, shift + model.center_thickness_mm
         body.append(f'<line x1="0" y1="{_f(centre_front - 1.5)}" x2="0" y2="{_f(centre_back + 1.5)}" stroke="#000" '
                     f'stroke-width="0.2" stroke-dasharray="0.4 0.6"/>')
-        body.append(_text(0.8, centre_back + depth * 0 + 3.6, f"centre {number(model.center_thickness_mm, 1)} mm",
+        body.append(_text(0.8, centre_back + 3.6, f"centre {number(model.center_thickness_mm, 1)} mm",
                           css="section-centre"))
         body.append(_text(front[0][0], shift + depth + 7.5, f"← {cut.ends[0]}", css="side"))
         body.append(_text(front[-1][0], shift + depth + 7.5, f"{cut.ends[1]} →", "end", css="side"))
@@ -539,9 +543,8 @@ def _power_cross(matrix: PowerMatrix, x0: float, title: str, dashed: bool) -> li
 
 def powers_picture(rx: dict[str, Any], surfacing: dict[str, Any], eye: str) -> Picture:
     """The prescription's power cross beside the surfacing power's (the power to produce after compensation)."""
-    wanted = power_matrix(rx["sphere"], rx.get("cylinder") or 0.0, rx.get("axis") or 180)
-    made = power_matrix(surfacing["sphere"], surfacing.get("cylinder") or 0.0, surfacing.get("axis") or 180)
-    body = _power_cross(wanted, 0.0, "prescription", False) + _power_cross(made, 46.0, "surfacing", True)
+    body = (_power_cross(_matrix(rx), 0.0, "prescription", False)
+            + _power_cross(_matrix(surfacing), 46.0, "surfacing", True))
     body.append(_text(0.0, 22.5, power_text(rx, add=False), "middle", css="power"))
     body.append(_text(46.0, 22.5, power_text(surfacing, add=False), "middle", css="power"))
     caption = (f"{eye.capitalize()} lens: the principal meridians and their powers (D) of the prescription (solid) "
@@ -632,8 +635,7 @@ def eye_pictures(result: dict[str, Any], eye: str, exponent_without_ed: float = 
         pictures += [outline_picture(model), thickness_map_picture(model, f"{prefix}-{eye}"),
                      sections_picture(model, f"{prefix}-{eye}")]
     rx, surfacing = lens.get("rx"), lens.get("surfacing")
-    if rx and surfacing and power_matrix(rx["sphere"], rx.get("cylinder") or 0.0, rx.get("axis") or 180) != \
-            power_matrix(surfacing["sphere"], surfacing.get("cylinder") or 0.0, surfacing.get("axis") or 180):
+    if rx and surfacing and _matrix(rx) != _matrix(surfacing):
         pictures.append(powers_picture(rx, surfacing, eye))
     off_axis = _off_axis_of(result, eye)
     if off_axis:

@@ -222,7 +222,8 @@ def _check_result_files(lab_root: Path, stories: list[dict[str, Any]],
                         decisions: list[dict[str, Any]] | None = None) -> None:
     """Say, for the last result placed at each path, whether the file is still what was placed there."""
     latest: dict[str, dict[str, Any]] = {}
-    placed = [(s["processings_seq"], s["outcome"]) for s in stories] + [(d["seq"], d) for d in decisions or []]
+    placed = ([(s["seq"][1] if s["seq"] else 0, s["outcome"]) for s in stories]
+              + [(d["seq"], d) for d in decisions or []])
     inputs = {story["outcome"].get("input"): story["outcome"] for story in stories if story["outcome"].get("input")}
     for _, outcome in sorted(placed, key=lambda item: item[0] or 0):
         for move in outcome.get("moves") or ():
@@ -263,11 +264,7 @@ def order_story(lab_root: Path, order_id: str, index: Index | None = None) -> di
         if own:
             index.close()
     decisions = [_decision_item(record) for record in records]
-    for story in stories:
-        story["processings_seq"] = story["seq"][1] if story["seq"] else 0
     _check_result_files(Path(lab_root), stories, decisions)
-    for story in stories:
-        del story["processings_seq"]
     return {"order_id": order_id, "lab": str(lab_root), "found": bool(stories or decisions),
             "processings": stories, "decisions": decisions, "caution": CAUTION}
 

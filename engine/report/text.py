@@ -6,6 +6,14 @@ from typing import Any
 
 from lenslane.report.notation import inputs_text, power_text, value_text
 
+#: What a pass that ended without publishing came to; the order page says the same.
+OUTCOME_MEANINGS = {"rejected": "rejected, not made", "held": "held for a person, not processed",
+                    "skipped": "skipped, already published with the same content"}
+#: What a pass without a recorded outcome is; the order page says the same.
+UNFINISHED = ("not recorded — the engine stopped before it finished this pass; an unfinished order is redone when "
+              "the engine next starts")
+#: Why no stage ran for a rejected pass; the order page says the same.
+REFUSED_ON_READING = "the order was refused when it was read"
 
 
 def render_text(story: dict[str, Any]) -> str:
@@ -16,11 +24,11 @@ def render_text(story: dict[str, Any]) -> str:
     lines = [f"Order {story['order_id']} — from the audit log of {story['lab']}",
              "Processed once." if count == 1 else f"Processed {count} times; each is told below, oldest first."]
     decisions = list(story.get("decisions") or [])
-    for number_, processing in enumerate(story["processings"], start=1):
+    for number, processing in enumerate(story["processings"], start=1):
         while decisions and processing["seq"] and decisions[0]["seq"] < processing["seq"][0]:
             lines += [""] + _render_decision(decisions.pop(0))
         lines.append("")
-        lines += _render_processing(processing, number_, count)
+        lines += _render_processing(processing, number, count)
     for decision in decisions:
         lines += [""] + _render_decision(decision)
     lines += ["", story["caution"]]
@@ -51,7 +59,7 @@ def _render_processing(p: dict[str, Any], index: int, count: int) -> list[str]:
     if p["stages"]:
         lines += _render_stages(p["stages"])
     elif p["outcome"]["event"] == "rejected":
-        lines.append("Stages:   none ran; the order was refused when it was read")
+        lines.append(f"Stages:   none ran; {REFUSED_ON_READING}")
     elif p["outcome"]["event"] in ("held", "skipped"):
         lines.append("Stages:   none ran; see the outcome")
     lines += _render_flags(p["flags"])
@@ -136,16 +144,13 @@ def _render_outcome(outcome: dict[str, Any]) -> list[str]:
                  f"Result:   {outcome['result']}, sha256 {outcome['result_sha256']}{now}"]
         return lines + ([f"Input:    now {outcome['input']}"] if outcome.get("input") else [])
     if outcome["event"] is not None:
-        meaning = {"rejected": "rejected, not made", "held": "held for a person, not processed",
-                   "skipped": "skipped, already published with the same content"}.get(outcome["event"],
-                                                                                     outcome["event"])
+        meaning = OUTCOME_MEANINGS.get(outcome["event"], outcome["event"])
         lines = [f"Outcome:  {meaning}, recorded {outcome['recorded_at']}" + (":" if outcome.get("reasons") else "")]
         lines += [f"  {reason.get('field')}: {reason.get('message')}" for reason in outcome.get("reasons", [])]
         if outcome.get("input"):
             lines.append(f"Input:    now {outcome['input']}")
         return lines
-    return ["Outcome:  not recorded — the engine stopped before it finished this pass; "
-            "an unfinished order is redone when the engine next starts"]
+    return [f"Outcome:  {UNFINISHED}"]
 
 
 def render_configurations(configs: list[dict[str, Any]]) -> str:

@@ -21,7 +21,6 @@ Safety:
 """
 from __future__ import annotations
 
-import dataclasses
 import hashlib
 import hmac
 import secrets
@@ -30,6 +29,10 @@ from typing import Any
 from urllib.parse import urlsplit
 
 from flask import Flask, abort, redirect, request
+from werkzeug.exceptions import HTTPException
+
+from lenslane import decide
+from lenslane.decide import QueueItem
 from lenslane.web.lab_view import counts_today, search
 from lenslane.web.page import order_page_data, templates, valid_order_id
 
@@ -43,6 +46,13 @@ ACTION_WORDS = {
     "replace": "run the new version through the chain as the order's next revision",
     "discard": "archive the new version; the published result stays",
 }
+#: What the error pages this server raises itself say (any other error says what HTTP calls it).
+_ERROR_TEXTS = {
+    403: ("Refused", "The form did not come from this page (its token is missing or wrong); nothing was recorded. "
+                     "Open the order page again and decide there."),
+    404: ("Not found", "There is no such page."),
+    421: ("Refused", "This server answers only to its loopback address (127.0.0.1, localhost or [::1])."),
+}
 _HEADERS = {
     "Content-Security-Policy": "default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
                                "form-action 'self'; frame-ancestors 'none'; base-uri 'none'",
@@ -52,32 +62,9 @@ _HEADERS = {
 }
 
 
-def _decisions():
-    """The decision mechanism (``lenslane.decide``), or None while this installation has none."""
-    try:
-        from lenslane import decide
-    except ImportError:
-        return None
-    return decide
-
-
-def _plain(item: Any) -> dict[str, Any]:
-    """A queue item as a dict, whatever its class (dataclass, named tuple, pydantic model or dict)."""
-    if dataclasses.is_dataclass(item):
-        return dataclasses.asdict(item)
-    for method in ("model_dump", "_asdict"):
-        if hasattr(item, method):
-            return dict(getattr(item, method)())
-    return dict(item) if isinstance(item, dict) else dict(vars(item))
-
-
-def _awaiting(item: dict[str, Any]) -> dict[str, Any]:
-    """What the page says about one queue item: its kind, the actions that fit it, what to decide."""
-    kind = "held" if item.get("kind") == "held" else "review"
-    actions = item.get("actions") or (("approve", "refuse") if kind == "review" else ("replace", "discard"))
-    return {**item, "kind": kind, "summary": item.get("decide") or "", "flags": item.get("flags") or [],
-            "differences": item.get("differences") or [],
-            "actions": [(action, ACTION_WORDS.get(action, action)) for action in actions]}
+def _awaiting(item: QueueItem) -> dict[str, Any]:
+    """What the page says about one queue item: the item, and each action that fits it with what it does."""
+    return {**item.to_dict(), "actions": [(action, ACTION_WORDS[action]) for action in item.actions]}
 
 
 def _host_name(host: str) -> str:
@@ -129,19 +116,15 @@ def create_app(lab_root: Path, token: str | None = None, loopback: bool = True) 
         response.headers.update(_HEADERS)
         return response
 
-    @app.errorhandler(404)
-    def not_found(_error):
-        return page("message.html", 404, title="Not found", text="There is no such page.")
-
-    @app.errorhandler(421)
-    def wrong_host(_error):
-        return page("message.html", 421, title="Refused",
-                    text="This server answers only to its loopback address (127.0.0.1, localhost or [::1]).")
+    @app.errorhandler(HTTPException)
+    def error_page(error: HTTPException):
+        """Every error is a page of the lab's own, with the caution like any other."""
+        title, text = _ERROR_TEXTS.get(error.code, (error.name, error.description))
+        return page("message.html", error.code or 500, title=title, text=text)
 
     @app.get("/")
     def queue_page():
-        decide = _decisions()
-        items = None if decide is None else [_awaiting(_plain(item)) for item in decide.queue(lab_root)]
+        items = [_awaiting(item) for item in decide.queue(lab_root)]
         return page("queue.html", items=items, counts=counts_today(lab_root))
 
     @app.get("/search")
@@ -150,14 +133,7 @@ def create_app(lab_root: Path, token: str | None = None, loopback: bool = True) 
         return page("search.html", query=query, hits=search(lab_root, query) if query.strip() else None)
 
     def awaiting_decision(order_id: str) -> dict[str, Any] | None:
-        decide = _decisions()
-        if decide is None:
-            return None
-        for item in decide.queue(lab_root):
-            plain = _plain(item)
-            if plain.get("order_id") == order_id:
-                return _awaiting(plain)
-        return None
+        return next((_awaiting(item) for item in decide.queue(lab_root) if item.order_id == order_id), None)
 
     @app.get("/orders/<order_id>")
     def order_page(order_id: str):
@@ -181,10 +157,7 @@ def create_app(lab_root: Path, token: str | None = None, loopback: bool = True) 
         action, by, note = request.form.get("action", ""), request.form.get("by", "").strip(), request.form.get("note", "").strip()
         error = None
         awaiting = awaiting_decision(order_id)
-        decide = _decisions()
-        if decide is None:
-            error = "This installation has no decision mechanism (lenslane.decide); nothing was recorded."
-        elif not by or not note:
+        if not by or not note:
             error = "A decision needs the name of the person who makes it and a note of why; nothing was recorded."
         elif awaiting is None:
             error = f"Order {order_id} is not awaiting a decision; nothing was recorded."
@@ -200,11 +173,5 @@ def create_app(lab_root: Path, token: str | None = None, loopback: bool = True) 
         data = order_page_data(lab_root, order_id)
         return page("order.html", 409 if awaiting is None else 400, page=data, awaiting=awaiting,
                     csrf=csrf_for(order_id), error=error)
-
-    @app.errorhandler(403)
-    def forbidden(_error):
-        return page("message.html", 403, title="Refused",
-                    text="The form did not come from this page (its token is missing or wrong); nothing was recorded. "
-                         "Open the order page again and decide there.")
 
     return app

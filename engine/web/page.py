@@ -20,21 +20,20 @@ from markupsafe import Markup
 
 from lenslane import __version__
 from lenslane.contract.models import ORDER_ID_RE
-from lenslane.vocabulary import CAUTION
 from lenslane.plugins.optics.outline import DEFAULT_EXPONENT
 from lenslane.report.notation import geometry_text, inputs_text, number, value_text
-from lenslane.report.story import order_story
-from lenslane.vocabulary import WHAT_TO_DECIDE
 from lenslane.report.pictures import eye_pictures
+from lenslane.report.story import order_story
+from lenslane.report.text import OUTCOME_MEANINGS, REFUSED_ON_READING, UNFINISHED
+from lenslane.vocabulary import CAUTION, EYES, WHAT_TO_DECIDE
 
 #: What an order is once a person's decision came after its last processing.
 DECIDED = {"approve": "approved", "refuse": "refused", "replace": "replaced", "discard": "new version discarded"}
-#: The flag levels, most pressing first.
-LEVELS = ("review", "warning", "info")
 
 templates = Environment(loader=PackageLoader("lenslane.web", "templates"), autoescape=select_autoescape(default=True),
                         trim_blocks=True, lstrip_blocks=True)
-templates.globals.update(caution=CAUTION, version=__version__)
+templates.globals.update(caution=CAUTION, version=__version__, outcome_meanings=OUTCOME_MEANINGS,
+                         refused_on_reading=REFUSED_ON_READING, unfinished=UNFINISHED)
 
 
 def valid_order_id(order_id: str) -> bool:
@@ -107,7 +106,7 @@ def _order_facts(order: dict[str, Any] | None) -> list[tuple[str, str]]:
     per_eye = [f"{eye} PD {number(fit[eye]['pd_mm'], 1)} mm"
                + (f", height {number(fit[eye]['height_mm'], 1)} mm" if fit[eye].get("height_mm") is not None else "")
                + (f", segment {number(fit[eye]['segment_height_mm'], 1)} mm" if fit[eye].get("segment_height_mm") else "")
-               for eye in ("right", "left") if isinstance(fit.get(eye), dict) and "pd_mm" in fit[eye]]
+               for eye in EYES if isinstance(fit.get(eye), dict) and "pd_mm" in fit[eye]]
     worn = [f"{label} {_told(key, fit[key], {})}" for key, label in
             (("vertex_mm", "vertex"), ("pantoscopic_deg", "pantoscopic tilt"), ("face_form_deg", "face form"))
             if fit.get(key) is not None]
@@ -135,16 +134,6 @@ def _pictures(processing: dict[str, Any], order: dict[str, Any] | None, source: 
     return {"eyes": eyes, "note": f"drawn from the audit log's final lens and the order in {source}"}
 
 
-def _flags_by_level(flags: list[dict[str, Any]]) -> list[dict[str, Any]]:
-    groups = []
-    for level in LEVELS + tuple(sorted({f["level"] for f in flags} - set(LEVELS))):
-        found = [f for f in flags if f["level"] == level]
-        if found:
-            groups.append({"level": level, "decide": WHAT_TO_DECIDE.get(level, "decide as the message says"),
-                           "flags": found})
-    return groups
-
-
 def _told(field: str, value: Any, assumptions: dict[str, None]) -> str:
     """A value in the trade's notation; a geometry without its model's assumptions, which are collected."""
     if isinstance(value, dict) and "assumptions" in value:
@@ -169,7 +158,8 @@ def _with_texts(processing: dict[str, Any]) -> dict[str, Any]:
     lenses_text = {eye: {part: _told(part, value, assumptions) for part, value in lens.items()}
                    for eye, lens in processing["lenses"].items()}
     return {**processing, "stages": stages, "lenses_text": lenses_text, "assumptions": list(assumptions),
-            "flag_groups": _flags_by_level(processing["flags"])}
+            "flag_groups": [{"level": level, "decide": WHAT_TO_DECIDE[level], "flags": flags}
+                            for level, flags in processing["flags_by_level"].items() if flags]}
 
 
 def order_page_data(lab_root: Path, order_id: str) -> dict[str, Any]:
@@ -186,8 +176,7 @@ def order_page_data(lab_root: Path, order_id: str) -> dict[str, Any]:
     later = [d for d in decisions if (d.get("seq") or 0) > last_pass]
     return {"order_id": order_id, "lab": str(lab_root), "found": story["found"], "processings": processings,
             "decided": DECIDED.get(later[-1].get("action")) if later else None,
-            "latest": processings[-1] if processings else None, "caution": story["caution"],
-            "decisions": decisions,
+            "latest": processings[-1] if processings else None, "decisions": decisions,
             "made_at": datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")}
 
 

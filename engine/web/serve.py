@@ -12,6 +12,8 @@ import os
 import sys
 from pathlib import Path
 
+from lenslane.audit.records import AUDIT_NAME
+
 TOKEN_VARIABLE = "LENSLANE_SERVE_TOKEN"
 MIN_TOKEN_LENGTH = 16
 DEFAULT_HOST = "127.0.0.1"
@@ -56,7 +58,7 @@ def serve(lab_root: Path, host: str = DEFAULT_HOST, port: int = DEFAULT_PORT) ->
     from lenslane.web.app import create_app
 
     lab_root = Path(lab_root)
-    if not (lab_root / "audit.jsonl").is_file():
+    if not (lab_root / AUDIT_NAME).is_file():
         raise ServeRefused(f"{lab_root} is not a lab folder (make one with `lenslane init {lab_root}`)")
     token = access_token(host)
     app = create_app(lab_root, token=token, loopback=token is None)

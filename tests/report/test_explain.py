@@ -215,3 +215,8 @@ def test_explain_shows_the_exact_tilt_compensation_beside_martins(make_lab, drop
     changes = [c for s in json.loads(out)["processings"][0]["stages"] for c in s["changes"]
                if c["field"].endswith("surfacing") and s["stage"] == "tilt"]
     assert all(c["inputs"]["asworn_residual_d"] < 1e-9 and "martin_surfacing" in c["inputs"] for c in changes)
+    # Each lens's line gives the value its record holds, in the trade's notation.
+    assert len(changes) == 2
+    for change in changes:
+        said = f"Martin's formula would give {power_text(change['inputs']['martin_surfacing'])}; "
+        assert any(said in line for line in compare), said

@@ -98,7 +98,6 @@ def test_queue_search_and_order_page_in_a_browser(server, browser_page):
 
 
 def test_queue_order_approve_in_a_browser(server, browser_page):
-    pytest.importorskip("lenslane.decide", reason="waits for the decision mechanism (issue 14) to be on main")
     base, lab, results = server
     page = browser_page
     page.goto(base)
