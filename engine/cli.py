@@ -179,7 +179,7 @@ def cmd_preview(args) -> int:
 def cmd_plugins(args) -> int:
     host = _host(Path(args.lab) if args.lab else None)
     chain = [link.stage.name for link in host.chain]
-    rows = [("stage", "position", "enabled", "from", "version", "plugin")]
+    rows = [("stage", "position", "enabled", "from", "version", "plugin", "what it does")]
     for name, info in host.stages.items():
         if name in chain:
             position, enabled = str(chain.index(name) + 1), "yes"
@@ -187,7 +187,7 @@ def cmd_plugins(args) -> int:
             position, enabled = str(host.config.engine.chain.index(name) + 1), "no (disabled)"
         else:
             position, enabled = "-", "no (not in engine.chain)"
-        rows.append((name, position, enabled, info.origin, info.version, info.plugin.name))
+        rows.append((name, position, enabled, info.origin, info.version, info.plugin.name, info.stage.description))
     rows[1:] = sorted(rows[1:], key=lambda r: (r[1] == "-", int(r[1]) if r[1] != "-" else 0, r[0]))
     _print_table(rows)
     with_stages = {info.plugin.name for info in host.stages.values()}

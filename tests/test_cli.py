@@ -112,6 +112,8 @@ def test_plugins_lists_the_chain_with_origin_and_version():
     out = lenslane("plugins").stdout
     for stage in ("validate", "normalize", "prism"):
         assert any(line.startswith(stage) and "built-in" in line for line in out.splitlines())
+    [prism] = [line for line in out.splitlines() if line.startswith("prism ")]
+    assert prism.endswith("  resultant prescribed prism per eye")  # the stage's own one line
 
 
 def test_schema_prints_the_input_and_the_result_schema():

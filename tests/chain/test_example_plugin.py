@@ -90,8 +90,9 @@ def test_plugins_lists_the_example_with_its_distribution_and_version(lab, exampl
     listed = run_lenslane(["plugins", "--lab", str(lab)], example_site, lab.parent)
     assert listed.returncode == 0, listed.stderr
     row = [line.split() for line in listed.stdout.splitlines() if line.startswith("edger_limits ")][0]
-    # stage, position, enabled, from, version, plugin (the entry-point name)
-    assert row == ["edger_limits", "4", "yes", "lenslane-edger-limits", "1.0.0", "edger_limits"]
+    # stage, position, enabled, from, version, plugin (the entry-point name), then the stage's own description
+    assert row[:6] == ["edger_limits", "4", "yes", "lenslane-edger-limits", "1.0.0", "edger_limits"]
+    assert " ".join(row[6:]) == "this lab's edger: flags frames it cannot handle, routes each lens"
     built_in = [line.split() for line in listed.stdout.splitlines() if line.startswith("normalize ")][0]
     assert built_in[3] == "built-in"
 
