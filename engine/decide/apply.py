@@ -39,12 +39,8 @@ from lenslane.decide.model import (
 )
 from lenslane.lab.files import claim_tag, create_durably, free_name, fsync_dir, printable, rename_noreplace, write_durably
 from lenslane.lab.folder import (
-    ERRORS_SUFFIX, HELD_SUFFIX, Lab, StageWontStop, note_published, result_bytes, story_fields,
+    ERRORS_SUFFIX, HELD_SUFFIX, Lab, StageWontStop, note_published, report_bytes, result_bytes, story_fields,
 )
-
-def _report(data: dict[str, Any]) -> bytes:
-    return json.dumps(data, ensure_ascii=False, indent=1).encode("utf-8", "backslashreplace") + b"\n"
-
 
 class Applier:
     """Applies the requests waiting in ``decisions/`` to a lab whose lock this process holds."""
@@ -114,7 +110,7 @@ class Applier:
         else:
             name = free_name(self.root / "rejected", f"{order_id}.json", claim_tag(request["request"]), ERRORS_SUFFIX)
             reasons = [{"field": "(decision)", "message": f"refused by {request['by']}: {request['note']}"}]
-            create_durably(self.root / "rejected" / f"{name}{ERRORS_SUFFIX}", _report(
+            create_durably(self.root / "rejected" / f"{name}{ERRORS_SUFFIX}", report_bytes(
                 {"file": f"{order_id}.json", "rejected": True, "order_id": order_id, "problems": reasons,
                  "input": f"rejected/{name}"}))
             decided.update(reasons=reasons, moves=[{"from": path, "to": f"rejected/{name}", "sha256": placed.sha256}])
@@ -172,7 +168,7 @@ class Applier:
                                     request["requested_at"], None, examined.parsed), "from": held}
         if result is None:
             target = free_name(self.root / "rejected", name, claim_tag(request["request"]), ERRORS_SUFFIX)
-            create_durably(self.root / "rejected" / f"{target}{ERRORS_SUFFIX}", _report(
+            create_durably(self.root / "rejected" / f"{target}{ERRORS_SUFFIX}", report_bytes(
                 {"file": printable(name), "rejected": True, "problems": reasons, "input": f"rejected/{target}"}))
             moves.append({"from": held, "to": f"rejected/{target}", "sha256": log.held[held]})
             events.append({"event": "rejected", "order_id": order_id, "received": received, "reasons": reasons,

@@ -36,7 +36,9 @@ from lenslane.lab.errors import Interrupted, OrderTimeLimit, OutputBlocked, Stag
 from lenslane.lab.examine import Examined, examine, examine_claimed
 from lenslane.lab.files import claim_key, printable
 from lenslane.lab.history import History
-from lenslane.lab.outcomes import ERRORS_SUFFIX, HELD_SUFFIX, Claimed, Outcomes, Processed, result_bytes, story_fields
+from lenslane.lab.outcomes import (
+    ERRORS_SUFFIX, HELD_SUFFIX, Claimed, Outcomes, Processed, report_bytes, result_bytes, story_fields,
+)
 from lenslane.lab.recovery import recover
 
 #: review/ holds results that wait for a person and decisions/ the requests of ``lenslane decide`` (lenslane.decide).
@@ -49,7 +51,7 @@ DECISION_STEPS = ("decision-written", "decision-recorded", "decision-moved", "de
 
 __all__ = ["DECISION_STEPS", "ERRORS_SUFFIX", "FOLDERS", "HELD_SUFFIX", "STEPS", "Interrupted", "Lab", "OrderTimeLimit",
            "OutputBlocked", "Processed", "StageWontStop", "Wait", "init_lab", "is_order_name", "note_published",
-           "result_bytes", "story_fields"]
+           "report_bytes", "result_bytes", "story_fields"]
 
 
 def init_lab(lab: Path) -> list[str]:

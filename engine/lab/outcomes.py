@@ -78,7 +78,8 @@ def story_fields(result: dict[str, Any]) -> dict[str, Any]:
     return {"changes": result["changes"], "flags": result["flags"]}
 
 
-def _report_bytes(report: dict[str, Any]) -> bytes:
+def report_bytes(report: dict[str, Any]) -> bytes:
+    """The bytes of a report written beside an input (``<name>.errors.json``, ``<name>.held.json``)."""
     return json.dumps(report, ensure_ascii=False, indent=1).encode("utf-8", "backslashreplace") + b"\n"
 
 
@@ -149,8 +150,8 @@ class Outcomes:
         folder = os.path.join(self.root, kind.folder)
         name = printable(claimed.name)
 
-        def report_bytes(target: str) -> bytes:
-            return _report_bytes({"file": name, **(report or {}), "input": printable(f"{kind.folder}/{target}")})
+        def report_for(target: str) -> bytes:
+            return report_bytes({"file": name, **(report or {}), "input": printable(f"{kind.folder}/{target}")})
 
         def taken(target: str) -> bool:
             """An input is there or on its way there, or a report of other bytes (a redo's own is the same)."""
@@ -158,13 +159,13 @@ class Outcomes:
             return (self.commit.is_destination(f"{kind.folder}/{target}")
                     or os.path.lexists(os.path.join(folder, target))
                     or (report is not None and os.path.lexists(report_path)
-                        and not holds(report_path, report_bytes(target))))
+                        and not holds(report_path, report_for(target))))
 
         target = free_name(folder, claimed.name, claim_tag(claimed.claim), kind.report_suffix, taken)
         destination = f"{kind.folder}/{target}"
         if report is not None:
             self._write_report(kind.step, os.path.join(folder, f"{target}{kind.report_suffix}"),
-                               report_bytes(target), claimed)
+                               report_for(target), claimed)
         final = {"event": outcome, "order_id": order_id, "received": received, **fields,
                  "input": printable(destination), "run": self.run}
         processed = Processed(name, outcome, order_id, status, reasons, redo=claimed.redo)
