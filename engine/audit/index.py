@@ -24,7 +24,7 @@ import os
 import sqlite3
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterable, NamedTuple
+from typing import Any, Iterable, Iterator, NamedTuple
 
 from lenslane.audit.reader import audit_files, iter_lines, file_of, read_at, ROTATED_RE
 from lenslane.audit.records import DEFINE_EVENT, OUTCOMES, REF_LENGTH, define_key
@@ -404,3 +404,15 @@ class Index:
             tables[table] = sorted(self.db.execute(f"SELECT * FROM {table}").fetchall(), key=repr)
         tables["meta"] = sorted(row for row in self.db.execute("SELECT * FROM meta") if not str(row[0]).startswith("verified"))
         return tables
+
+
+@contextlib.contextmanager
+def level_index(lab_root: Path, index: Index | None = None) -> Iterator[Index]:
+    """The lab's audit index, level with its log, for a block: ``index`` when the caller has it open (and keeps it
+    level: the engine's own), else one opened and brought level for the block and closed after it."""
+    if index is not None:
+        yield index
+        return
+    with contextlib.closing(Index(Path(lab_root))) as own:
+        own.catch_up()
+        yield own

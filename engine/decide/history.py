@@ -5,12 +5,11 @@ Only the order's own records are read, found through the audit index
 """
 from __future__ import annotations
 
-import contextlib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from lenslane.audit.index import Index
+from lenslane.audit.index import Index, level_index
 from lenslane.audit.results import Placed, ResultFiles
 
 
@@ -36,10 +35,7 @@ class OrderLog:
 
 def order_log(lab_root: Path, order_id: str, index: Index | None = None) -> OrderLog:
     """What the log says about ``order_id``; ``index``: the lab's audit index, when the caller has it open."""
-    with contextlib.ExitStack() as stack:
-        if index is None:
-            index = stack.enter_context(contextlib.closing(Index(Path(lab_root))))
-            index.catch_up()
+    with level_index(lab_root, index) as index:
         return _order_log(index, order_id)
 
 

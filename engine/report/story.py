@@ -14,12 +14,11 @@ the first format, a record per event, is told the same way.
 """
 from __future__ import annotations
 
-import contextlib
 import hashlib
 from pathlib import Path
 from typing import Any
 
-from lenslane.audit.index import Index
+from lenslane.audit.index import Index, level_index
 from lenslane.audit.records import unpack
 from lenslane.vocabulary import CAUTION, EYES, LEVELS, OUTCOMES, WHAT_TO_DECIDE
 
@@ -254,15 +253,9 @@ def order_story(lab_root: Path, order_id: str, index: Index | None = None) -> di
     ``.json``), which finds an order refused before its id could be read.
     ``index``: the lab's audit index, if the caller has it open.
     """
-    own = index is None
-    index = Index(Path(lab_root)) if own else index
     records: list[dict[str, Any]] = []
-    try:
-        index.catch_up()
+    with level_index(lab_root, index) as index:
         stories = [_story_of(p) for p in _processings(index, order_id, records)]
-    finally:
-        if own:
-            index.close()
     decisions = [_decision_item(record) for record in records]
     _check_result_files(Path(lab_root), stories, decisions)
     return {"order_id": order_id, "lab": str(lab_root), "found": bool(stories or decisions),
@@ -272,8 +265,7 @@ def order_story(lab_root: Path, order_id: str, index: Index | None = None) -> di
 def configurations(lab_root: Path, story: dict[str, Any]) -> list[dict[str, Any]]:
     """The configuration in force for each pass of a story (each once), from the log's define records."""
     seen, out = set(), []
-    with contextlib.closing(Index(Path(lab_root))) as index:
-        index.catch_up()
+    with level_index(lab_root) as index:
         for processing in story["processings"]:
             engine = processing["engine"]
             ref = engine.get("config_ref")

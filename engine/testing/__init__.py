@@ -18,14 +18,14 @@ plugin :mod:`lenslane.testing.fixtures`, registered through pytest's
 """
 from __future__ import annotations
 
-import contextlib
 import copy
 import json
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from lenslane.audit.log import Index, iter_records, unpack
+from lenslane.audit.index import level_index
+from lenslane.audit.log import iter_records, unpack
 from lenslane.chain.host import Host, start_host
 from lenslane.chain.pipeline import Pipeline
 from lenslane.config import CONFIG_NAME, LabConfig
@@ -165,8 +165,7 @@ class TemporaryLab:
         Each pass of an order is one record; its ``changes``, ``flags`` and ``run`` come filled in
         from the log's ``define`` records, as the stages made them.
         """
-        with contextlib.closing(Index(self.root)) as index:
-            index.catch_up()
+        with level_index(self.root) as index:
             return [unpack(r, index.body) for r in iter_records(self.root)
                     if order_id is None or r.get("order_id") == order_id]
 

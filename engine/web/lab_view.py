@@ -8,13 +8,12 @@ first one's record per event).
 """
 from __future__ import annotations
 
-import contextlib
 from collections import Counter
 from datetime import date, datetime, time, timedelta, timezone
 from pathlib import Path
 from typing import NamedTuple
 
-from lenslane.audit.index import Index
+from lenslane.audit.index import level_index
 
 #: At most this many search hits are listed.
 SEARCH_LIMIT = 100
@@ -34,8 +33,7 @@ def counts_today(lab_root: Path, today: date | None = None) -> dict[str, int]:
     published orders held for a person.
     """
     today = today or date.today()
-    with contextlib.closing(Index(Path(lab_root))) as index:
-        index.catch_up()
+    with level_index(lab_root) as index:
         tally = index.outcomes_between(_utc_start(today), _utc_start(today + timedelta(days=1)))
     counted: Counter[str] = Counter()
     for event, status, n in tally:
@@ -69,8 +67,7 @@ def search(lab_root: Path, text: str) -> list[Hit]:
     wanted = text.strip()
     if not wanted:
         return []
-    with contextlib.closing(Index(Path(lab_root))) as index:
-        index.catch_up()
+    with level_index(lab_root) as index:
         found = index.search(wanted, SEARCH_LIMIT)
     return [Hit(order_id, name or "", "unfinished" if event == "received" else status or event, ts or "")
             for order_id, name, event, status, ts in found]
