@@ -14,7 +14,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from lenslane import Change, Flag
 from lenslane.report.notation import number, power_text
-from lenslane.plugins.optics.power import PowerMatrix, power_matrix, sphero_cylinder
+from lenslane.plugins.optics.power import PowerMatrix, matrix_of, sphero_cylinder
 from lenslane.plugins.optics.tolerance import MeridianChange, axis_shift_deg, axis_tolerance, principal_meridian_changes
 from lenslane.vocabulary import CAUTION, Design
 
@@ -40,11 +40,6 @@ class CompensationParams(BaseModel):
 # --------------------------------------------------------------------------
 # Powers: dicts of the result, matrices of the optics, words of the trade
 # --------------------------------------------------------------------------
-
-
-def matrix_of(power: Mapping[str, Any]) -> PowerMatrix:
-    """The power matrix of a result power dict ``{"sphere", "cylinder", "axis"}``."""
-    return power_matrix(power["sphere"], power.get("cylinder", 0.0), power.get("axis", 180.0))
 
 
 def power_dict(matrix: PowerMatrix, before: Mapping[str, Any], form: str) -> dict[str, Any]:

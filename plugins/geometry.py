@@ -24,7 +24,7 @@ from lenslane.plugins.optics.front_curve import (
 from lenslane.plugins.optics.outline import (
     DEFAULT_EXPONENT, blank_diameter_from_farthest_mm, decentration, modelled_outline, optical_centre,
 )
-from lenslane.plugins.optics.power import power_matrix, principal_powers, spherical_equivalent
+from lenslane.plugins.optics.power import matrix_of, power_matrix, principal_powers, spherical_equivalent
 from lenslane.plugins.optics.prism import resultant_prism
 from lenslane.plugins.optics.surfaces import back_surface_power, front_surface_power
 from lenslane.plugins.optics.tilt import tilt_obliquity
@@ -371,14 +371,10 @@ def thinning_prism(view, params: GeometryParams, surfacings: dict) -> float:
     if order.lens.design != "progressive" or rule.fraction_of_add == 0.0:
         return 0.0
     adds = [getattr(order.rx, eye).add or 0.0 for eye in view.eyes]
-    verticals = [_matrix(surfacing).yy for surfacing in surfacings.values() if surfacing is not None]
+    verticals = [matrix_of(surfacing).yy for surfacing in surfacings.values() if surfacing is not None]
     if max(adds) >= rule.add_from_d or any(vertical > rule.plus_from_d for vertical in verticals):
         return rule.fraction_of_add * max(adds)
     return 0.0
-
-
-def _matrix(surfacing: dict):
-    return power_matrix(surfacing["sphere"], surfacing.get("cylinder", 0.0), surfacing.get("axis", 180))
 
 
 # --------------------------------------------------------------------------

@@ -20,7 +20,7 @@ from typing import Annotated
 from pydantic import BaseModel, ConfigDict, Field
 
 from lenslane import Flag, Stage, hookimpl
-from lenslane.plugins.optics.power import power_matrix, principal_powers, spherical_equivalent
+from lenslane.plugins.optics.power import matrix_of, principal_powers, spherical_equivalent
 from lenslane.plugins.optics.prentice import (
     READING_DEPTH_MM, prentice_prism, transverse_chromatic_aberration, vertical_imbalance,
 )
@@ -66,10 +66,6 @@ class SafetyParams(BaseModel):
     """Transverse chromatic aberration over this (Δ): warning."""
 
 
-def _matrix(power: dict):
-    return power_matrix(power["sphere"], power.get("cylinder", 0.0), power.get("axis", 180))
-
-
 def _order_year(order) -> int:
     if order.placed_at:
         return int(order.placed_at[:4])
@@ -80,7 +76,7 @@ def _power_checks(view, params: SafetyParams, eye: str):
     surfacing = view.get(f"lenses.{eye}.surfacing") or view.get(f"lenses.{eye}.rx")
     if surfacing is None:
         return
-    matrix = _matrix(surfacing)
+    matrix = matrix_of(surfacing)
     larger, smaller, larger_direction = principal_powers(matrix)
     strongest = smaller if abs(smaller) > abs(larger) else larger  # max(..., key=abs): the first on a tie
     if abs(strongest) > params.high_power_d:
@@ -145,7 +141,7 @@ def _pair_checks(view, params: SafetyParams):
             None, {"right_se_d": right_se, "left_se_d": left_se, "difference_d": difference,
                    "limit_d": params.anisometropia_d},
         )
-    right_matrix, left_matrix = _matrix(right), _matrix(left)
+    right_matrix, left_matrix = matrix_of(right), matrix_of(left)
     depth = params.reading_depth_mm
     imbalance = vertical_imbalance(right_matrix, left_matrix, depth)
     if imbalance > params.vertical_imbalance_delta:

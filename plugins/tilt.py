@@ -24,14 +24,14 @@ from pydantic import Field, model_serializer
 
 from lenslane import Flag, Stage, hookimpl
 from lenslane.plugins.compensation import (
-    CompensationParams, Design, matrix_of, no_surfacing, not_applied, power_dict, propose, trade_notation,
+    CompensationParams, Design, no_surfacing, not_applied, power_dict, propose, trade_notation,
 )
 from lenslane.contract.precision import present
 from lenslane.plugins.geometry import GeometryParams, PlannedLens, lens_planner
 from lenslane.plugins.optics.asworn import (
     ExactLens, asworn_power, exact_compensation, gaze_errors, largest_meridional_error, off_axis_record, worn_lens,
 )
-from lenslane.plugins.optics.power import PowerMatrix
+from lenslane.plugins.optics.power import PowerMatrix, matrix_of
 from lenslane.plugins.optics.raytrace import RayMissedSurface
 from lenslane.plugins.optics.thickness import LensNotMakeable
 from lenslane.plugins.optics.tilt import compensate_tilt, martin_factor, tangential_meridian_deg, tilt_obliquity

@@ -15,9 +15,9 @@ from pydantic import Field
 
 from lenslane import Flag, Stage, hookimpl
 from lenslane.plugins.compensation import (
-    CompensationParams, matrix_of, no_surfacing, not_applied, power_dict, propose, trade_notation,
+    CompensationParams, no_surfacing, not_applied, power_dict, propose, trade_notation,
 )
-from lenslane.plugins.optics.power import principal_powers
+from lenslane.plugins.optics.power import matrix_of, principal_powers
 from lenslane.plugins.optics.vertex import vertex_change_m, vertex_move
 
 METHOD = "vertex distance compensation on the power matrix, F_w = F (I − d F)⁻¹"

@@ -26,7 +26,7 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from lenslane.plugins.optics.outline import DEFAULT_EXPONENT, modelled_outline, outline_extent, outline_points
-from lenslane.plugins.optics.power import PowerMatrix, power_matrix, principal_powers
+from lenslane.plugins.optics.power import PowerMatrix, matrix_of, principal_powers
 from lenslane.plugins.optics.prism import resultant_prism
 from lenslane.plugins.optics.surfaces import sag_mm, surface_curvature_per_mm
 from lenslane.plugins.optics.thickness import LensShape, thickness_mm
@@ -106,11 +106,6 @@ class Section(NamedTuple):
     ends: tuple[str, str]
 
 
-def _matrix(power: dict[str, Any]) -> PowerMatrix:
-    """The power matrix of a result's sphero-cylinder (a missing cylinder is none, a missing axis 180)."""
-    return power_matrix(power["sphere"], power.get("cylinder") or 0.0, power.get("axis") or 180)
-
-
 def _index_of(result: dict[str, Any], eye: str) -> float:
     """The index the geometry stage used for this eye (its change record's inputs), else the order's."""
     for change in reversed(result.get("changes") or []):
@@ -156,7 +151,7 @@ def lens_model(result: dict[str, Any], eye: str, exponent_without_ed: float = DE
     # The wedge is the prescribed prism and any thinning prism the geometry added, as one resultant.
     prism = resultant_prism([(float(p.get("amount") or 0.0), float(p.get("base_deg") or 0.0))
                              for p in (lens.get("prism") or {}, geometry.get("thinning_prism") or {})], eye)
-    shape = LensShape(float(geometry["front_curve_d"]), _matrix(surfacing), _index_of(result, eye), prism.amount,
+    shape = LensShape(float(geometry["front_curve_d"]), matrix_of(surfacing), _index_of(result, eye), prism.amount,
                       prism.base_deg)
     centre = tuple(float(v) for v in geometry.get("optical_centre_mm") or (0.0, 0.0))
     outline = outline_points(radii, eye)
@@ -543,8 +538,8 @@ def _power_cross(matrix: PowerMatrix, x0: float, title: str, dashed: bool) -> li
 
 def powers_picture(rx: dict[str, Any], surfacing: dict[str, Any], eye: str) -> Picture:
     """The prescription's power cross beside the surfacing power's (the power to produce after compensation)."""
-    body = (_power_cross(_matrix(rx), 0.0, "prescription", False)
-            + _power_cross(_matrix(surfacing), 46.0, "surfacing", True))
+    body = (_power_cross(matrix_of(rx), 0.0, "prescription", False)
+            + _power_cross(matrix_of(surfacing), 46.0, "surfacing", True))
     body.append(_text(0.0, 22.5, power_text(rx, add=False), "middle", css="power"))
     body.append(_text(46.0, 22.5, power_text(surfacing, add=False), "middle", css="power"))
     caption = (f"{eye.capitalize()} lens: the principal meridians and their powers (D) of the prescription (solid) "
@@ -635,7 +630,7 @@ def eye_pictures(result: dict[str, Any], eye: str, exponent_without_ed: float = 
         pictures += [outline_picture(model), thickness_map_picture(model, f"{prefix}-{eye}"),
                      sections_picture(model, f"{prefix}-{eye}")]
     rx, surfacing = lens.get("rx"), lens.get("surfacing")
-    if rx and surfacing and _matrix(rx) != _matrix(surfacing):
+    if rx and surfacing and matrix_of(rx) != matrix_of(surfacing):
         pictures.append(powers_picture(rx, surfacing, eye))
     off_axis = _off_axis_of(result, eye)
     if off_axis:

@@ -10,7 +10,7 @@ References
 from __future__ import annotations
 
 import math
-from typing import NamedTuple
+from typing import Any, Mapping, NamedTuple
 
 
 class SpheroCylinder(NamedTuple):
@@ -64,6 +64,20 @@ def power_matrix(sphere: float, cylinder: float = 0.0, axis: float = 180.0) -> P
     alpha = math.radians(axis)
     s, c = math.sin(alpha), math.cos(alpha)
     return PowerMatrix(sphere + cylinder * s * s, -cylinder * s * c + 0.0, sphere + cylinder * c * c)
+
+
+def matrix_of(power: Mapping[str, Any]) -> PowerMatrix:
+    """The power matrix of a sphero-cylinder written as an order or a result writes it, ``{"sphere", "cylinder",
+    "axis"}`` (no cylinder: none; no axis: 180).
+
+    Examples
+    --------
+    >>> matrix_of({"sphere": -1.0, "cylinder": -2.0, "axis": 90}) == power_matrix(-1.0, -2.0, 90)
+    True
+    >>> matrix_of({"sphere": 2.5}) == power_matrix(2.5)
+    True
+    """
+    return power_matrix(power["sphere"], power.get("cylinder") or 0.0, power.get("axis") or 180.0)
 
 
 def principal_powers(matrix: PowerMatrix) -> tuple[float, float, float]:
