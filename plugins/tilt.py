@@ -29,7 +29,8 @@ from lenslane.plugins.compensation import (
 from lenslane.contract.precision import present
 from lenslane.plugins.geometry import GeometryParams, PlannedLens, lens_planner
 from lenslane.plugins.optics.asworn import (
-    ExactLens, asworn_power, exact_compensation, gaze_errors, largest_meridional_error, off_axis_record, worn_lens,
+    ExactLens, NotSettled, asworn_power, exact_compensation, gaze_errors, largest_meridional_error, off_axis_record,
+    worn_lens,
 )
 from lenslane.plugins.optics.power import PowerMatrix, matrix_of
 from lenslane.plugins.optics.raytrace import RayMissedSurface
@@ -224,6 +225,10 @@ def run(view, params: TiltParams):
             yield Flag("tilt-exact-not-possible", "warning",
                        f"The exact tilt compensation needs the lenses' shape, and no lens can be made for these "
                        f"powers and this frame ({exc}); Martin's formula is used instead.", None, {})
+        except NotSettled as exc:
+            yield Flag("tilt-exact-not-possible", "warning",
+                       f"The exact tilt compensation did not settle ({exc}); Martin's formula is used instead.",
+                       None, {})
     for eye, before in befores.items():
         if before is None:
             yield no_surfacing("tilt", eye)

@@ -57,6 +57,9 @@ GAZE_ANGLES_DEG = (20.0, 30.0)
 GAZE_DIRECTIONS = {"up": (0.0, 1.0), "down": (0.0, -1.0), "nasal": (1.0, 0.0), "temporal": (-1.0, 0.0)}
 #: The exact compensation stops when the as-worn power is this close to the wanted one (D, every element).
 RESIDUAL_TOLERANCE_D = 1e-9
+#: A solution still further than this from the wanted power after the last round is not taken (D): half the step
+#: the contract rounds a power to, so a solution within it publishes the power a perfect one would, or one step off.
+SETTLED_D = 0.005
 _MAX_ROUNDS = 12
 
 Matrix = tuple[tuple[float, float], tuple[float, float]]
@@ -65,6 +68,10 @@ Basis = tuple[Vector, Vector]
 _ORIGIN = (0.0, 0.0, 0.0)
 _SIGHT = (0.0, 0.0, 1.0)
 _EYE_BASIS = ((1.0, 0.0, 0.0), (0.0, 1.0, 0.0))
+
+
+class NotSettled(ValueError):
+    """The exact compensation's rounds ended with a lens not yet worn as the wanted power (see :data:`SETTLED_D`)."""
 
 
 class WornLens(NamedTuple):
@@ -586,6 +593,9 @@ def exact_compensation(lenses: dict[str, ExactLens], shape: Shaping,
     ------
     LensNotMakeable
         The solved powers keep changing the front curves the lab chooses.
+    NotSettled
+        After the last round a lens is still :data:`SETTLED_D` or more from
+        the wanted power.
 
     Notes
     -----
@@ -624,6 +634,12 @@ def exact_compensation(lenses: dict[str, ExactLens], shape: Shaping,
     if any(solution.made is None for solution in rounds.values()):
         raise LensNotMakeable(f"the solved powers keep changing the front curves the lab would choose "
                               f"({_MAX_ROUNDS} rounds)")
+    unsettled = {key: solution.made.residual_d for key, solution in rounds.items()
+                 if solution.made.residual_d >= SETTLED_D}
+    if unsettled:
+        raise NotSettled(f"after {_MAX_ROUNDS} rounds the lens is still worn "
+                         + ", ".join(f"{residual:.3f} D" for residual in unsettled.values())
+                         + " from the wanted power (the lab's thickness does not settle for the solved power)")
     return {key: solution.made for key, solution in rounds.items()}
 
 

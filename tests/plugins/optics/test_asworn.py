@@ -10,8 +10,8 @@ from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 
 from lenslane.plugins.optics.asworn import (
-    GAZE_DIRECTIONS, ExactLens, GazeErrors, WornLens, asworn_power, best_form, exact_compensation, form_score, gaze_errors,
-    largest_meridional_error, lens_direction, no_roll_axes, off_axis_record, pencil_vergence, surfacing_for,
+    GAZE_DIRECTIONS, ExactLens, GazeErrors, NotSettled, WornLens, asworn_power, best_form, exact_compensation,
+    form_score, gaze_errors, largest_meridional_error, lens_direction, no_roll_axes, off_axis_record, pencil_vergence, surfacing_for,
     trace_chief_ray, worn_lens,
 )
 from lenslane.plugins.optics.front_curve import tscherning_front_curves
@@ -359,6 +359,24 @@ def test_exact_compensation_with_the_lens_geometry(rx, front, index, p, w, eye, 
     assert solved.rounds <= 5
     if rx[0] < 0 and start_mm == 2.0:
         assert solved.rounds == 1  # a minus lens at the minimum centre it started from
+
+
+def test_exact_compensation_refuses_a_solution_that_does_not_settle():
+    # Source: DOMAIN.md "Exact as-worn power" (the lens is right when its traced as-worn power equals the wanted
+    # power). A lab whose thickness for a power swings between 2 and 7 mm, round after round, never gives the lens
+    # the solved power was made for: the last lens made is not worn as wanted, and that is said, never returned.
+    wanted, index = power_matrix(8.0, 0.0, 180.0), 1.498
+    theta, t = tilt_obliquity(15.0, 0.0, "right")
+    swings = iter([2.0, 7.0] * 20)
+    with pytest.raises(NotSettled, match=r"after 12 rounds the lens is still worn \d+\.\d{3} D from the wanted"):
+        exact_compensation({"right": ExactLens(wanted, index, theta, t)},
+                           lambda surfacings: {"right": (10.0, next(swings))}, {"right": (10.0, 4.0)})
+    # The same lab with a thickness that does settle: solved, and worn as wanted.
+    thickness_of = _thickness_of(10.0, index)
+    [solved] = exact_compensation({"right": ExactLens(wanted, index, theta, t)},
+                                  lambda surfacings: {"right": (10.0, thickness_of(surfacings["right"]))},
+                                  {"right": (10.0, 4.0)}).values()
+    assert solved.residual_d < 1e-9
 
 
 def _worn_as_wanted(solved, wanted, index, theta, t):
