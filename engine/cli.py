@@ -36,7 +36,7 @@ def cmd_schema(args) -> int:
 
 def cmd_audit_verify(args) -> int:
     from lenslane.audit.checkpoint import check_checkpoints, load_public_key, read_checkpoints
-    from lenslane.audit.index import Index
+    from lenslane.audit.index import level_index
     from lenslane.audit.verify import verify
 
     # The files the command line names are read first: one that cannot be read is a mistake in the command.
@@ -50,8 +50,7 @@ def cmd_audit_verify(args) -> int:
         print(f"lenslane: {exc}", file=sys.stderr)
         return 2
     lab = Path(args.lab)
-    index = Index(lab)
-    try:
+    with level_index(lab) as index:
         report = verify(lab, full=args.full, index=index)
         print(report.summary())
         for note in report.notes:
@@ -74,8 +73,6 @@ def cmd_audit_verify(args) -> int:
                 print(f"checkpoints hold: {len(checkpoints)} checkpoint(s) in {args.checkpoints}, the last at seq "
                       f"{max(c.fields['seq'] for c in checkpoints)}{signed}")
         return 0 if ok else 1
-    finally:
-        index.close()
 
 
 def cmd_audit_reindex(args) -> int:

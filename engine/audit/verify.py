@@ -12,9 +12,8 @@ from __future__ import annotations
 import hashlib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
 
-from lenslane.audit.index import Index, Place
+from lenslane.audit.index import Index, Place, level_index
 from lenslane.audit.results import Placed, ResultFiles, check as check_results, present_in, watched_results
 from lenslane.audit.reader import (
     ROTATED_RE, Line, audit_files, file_of, iter_lines, parse_record, read_tail, rotated_name,
@@ -288,13 +287,11 @@ def verify(lab_root: Path, full: bool = False, index: Index | None = None) -> Ve
     edited, removed, reordered or inserted, a line in the middle is damaged, a
     define record does not match its sha256 or a reference has no define before
     it, or a published result in ``outbox/`` no longer has the sha256 the log
-    recorded. When intact, the last record becomes the next check's starting point.
+    recorded. When intact, the last record becomes the next check's starting point. ``index``: the lab's audit
+    index, level with its log, when the caller has it open.
     """
     root = Path(lab_root)
-    own_index = index is None
-    index = Index(root) if own_index else index
-    try:
-        index.catch_up()
+    with level_index(root, index) as index:
         report = VerifyReport()
         start_line, start = None, None
         verified = None if full else index.verified()
@@ -319,9 +316,6 @@ def verify(lab_root: Path, full: bool = False, index: Index | None = None) -> Ve
             if last is not None and last.seq == report.last_seq:
                 index.set_verified(last, index.meta("tail_hash"))
         return report
-    finally:
-        if own_index:
-            index.close()
 
 
 def _check_files(root: Path, index: Index, before: int, report: VerifyReport) -> None:
