@@ -19,8 +19,9 @@ from pathlib import Path
 from typing import Any
 
 from lenslane.audit.index import Index
-from lenslane.audit.records import GENESIS, OUTCOMES, canonical, utc_now
+from lenslane.audit.records import GENESIS, canonical, utc_now
 from lenslane.audit.verify import Finding
+from lenslane.vocabulary import OUTCOMES
 
 CHECKPOINT_EVENT = "checkpoint"
 #: The fields a signature covers (a log line may add its own: level, timestamp…).

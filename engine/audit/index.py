@@ -27,7 +27,8 @@ from pathlib import Path
 from typing import Any, Iterable, Iterator, NamedTuple
 
 from lenslane.audit.reader import audit_files, iter_lines, file_of, read_at, ROTATED_RE
-from lenslane.audit.records import DEFINE_EVENT, OUTCOMES, REF_LENGTH, define_key
+from lenslane.audit.records import DEFINE_EVENT, REF_LENGTH, define_key
+from lenslane.vocabulary import OUTCOMES
 
 INDEX_NAME = "audit.sqlite"
 #: 2: records' time, status and action, defines by key with their numbers, order ids and names by trigram.

@@ -7,11 +7,10 @@ what a record is lives in :mod:`lenslane.audit.records`.
 """
 from lenslane.audit.index import INDEX_NAME, Index
 from lenslane.audit.reader import Line, audit_files, iter_lines, iter_records, parse_record, rotated_name
-from lenslane.audit.records import (
-    AUDIT_NAME, DEFINE_EVENT, GENESIS, OUTCOMES, TORN_EVENT, canonical, record_hash, unpack,
-)
+from lenslane.audit.records import AUDIT_NAME, DEFINE_EVENT, GENESIS, TORN_EVENT, canonical, record_hash, unpack
 from lenslane.audit.verify import Finding, VerifyReport, verify
 from lenslane.audit.writer import AuditError, AuditLog
+from lenslane.vocabulary import OUTCOMES  # the events that end a pass, which the log records
 
 __all__ = [
     "AUDIT_NAME", "DEFINE_EVENT", "GENESIS", "INDEX_NAME", "OUTCOMES", "TORN_EVENT", "AuditError", "AuditLog",

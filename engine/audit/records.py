@@ -45,7 +45,6 @@ from typing import Any, Callable
 
 import orjson
 
-from lenslane.vocabulary import OUTCOMES
 
 AUDIT_NAME = "audit.jsonl"
 GENESIS = "0" * 64
