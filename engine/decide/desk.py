@@ -14,7 +14,6 @@ or refused), a warning is logged at once and then every few minutes.
 """
 from __future__ import annotations
 
-import time
 from typing import Any, Callable
 
 from lenslane.audit.log import AuditError

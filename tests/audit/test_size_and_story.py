@@ -1,13 +1,12 @@
 """What one order costs in the log, who it came from, and a torn line that outlives rotations."""
 from __future__ import annotations
 
-import copy
 import json
 import os
 import sys
 from pathlib import Path
 
-from lenslane.audit.records import AUDIT_NAME, DEFINE_EVENT, TORN_EVENT
+from lenslane.audit.records import AUDIT_NAME, DEFINE_EVENT
 from lenslane.audit.verify import verify
 from lenslane.audit.writer import AuditLog
 from lenslane.cli import main

@@ -2,7 +2,6 @@
 required, and what it may hold. The table is compared with the schema, so neither can change alone."""
 from __future__ import annotations
 
-import re
 from typing import Any
 
 from lenslane.contract.models import LensOrder

@@ -21,7 +21,7 @@ import pytest
 from lenslane.audit.log import iter_records, verify
 from tests.system.crashing import CRASH_EXIT_CODE
 from tests.system.driver import (
-    FAST_WATCH, Watch, count, drop, make_lab, names, order, order_bytes, run_crashing, run_once, sha256_of,
+    FAST_WATCH, Watch, count, drop, make_lab, names, order_bytes, run_crashing, run_once, sha256_of,
     temp_leftovers, wait_until, write_backlog,
 )
 
