@@ -35,7 +35,7 @@ from lenslane.chain.pipeline import StageFailure
 from lenslane.decide import requests
 from lenslane.decide.history import OrderLog, order_log
 from lenslane.decide.model import (
-    ACTIONS, EXIT_MISMATCH, EXIT_NOT_AWAITING, EXIT_UNKNOWN, EXIT_USAGE, DecisionError, DecisionResult,
+    ACTION_DONE, ACTIONS, EXIT_MISMATCH, EXIT_NOT_AWAITING, EXIT_UNKNOWN, EXIT_USAGE, DecisionError, DecisionResult,
 )
 from lenslane.lab.files import claim_tag, create_durably, free_name, fsync_dir, printable, rename_noreplace, write_durably
 from lenslane.lab.folder import (
@@ -283,7 +283,7 @@ class Applier:
         if other:
             kind = ("held: another version of it waits in " + ", ".join(other) + "; decide replace or discard"
                     if ACTIONS[action] == "review" else f"in review ({other[0]}); decide approve or refuse")
-            return DecisionError(f"order {order_id} cannot be {_past(action)}: it is {kind}", EXIT_NOT_AWAITING)
+            return DecisionError(f"order {order_id} cannot be {ACTION_DONE[action]}: it is {kind}", EXIT_NOT_AWAITING)
         if request.get("held_file") and ACTIONS[action] == "held":
             return DecisionError(f"order {order_id} has no held version held/{request['held_file']} waiting",
                                  EXIT_NOT_AWAITING)
@@ -299,13 +299,9 @@ class Applier:
         return DecisionError(f"order {order_id} is not awaiting a decision: it was {state}", EXIT_NOT_AWAITING)
 
 
-def _past(action: str) -> str:
-    return {"approve": "approved", "refuse": "refused", "replace": "replaced", "discard": "discarded"}[action]
-
-
 def _result_of(record: dict[str, Any], message: str | None = None) -> DecisionResult:
     if message is None:
-        message = f"{_past(record['action'])} (already recorded, audit seq {record['seq']})"
+        message = f"{ACTION_DONE[record['action']]} (already recorded, audit seq {record['seq']})"
     return DecisionResult(order_id=record["order_id"], action=record["action"], by=record["by"], note=record["note"],
                           decided_at=record["decided_at"], request=record["request"], seq=record["seq"],
                           message=message, result=record.get("result"), result_sha256=record.get("result_sha256"),

@@ -14,14 +14,12 @@ from pathlib import Path
 from typing import Any
 
 from lenslane.decide import requests
-from lenslane.decide.model import QueueItem
+from lenslane.decide.model import ACTION_MEANINGS, QueueItem
 from lenslane.lab.folder import HELD_SUFFIX
 
 ABSENT = "(absent)"
-DECIDE_REVIEW = ("approve: publish it to outbox/ with status ready, the flags acknowledged; "
-                 "refuse: move it to rejected/ with your reason")
-DECIDE_HELD = ("replace: run this version through the chain as the order's next revision, superseding the "
-               "published result; discard: archive this version, the published result stays")
+DECIDE_REVIEW = "; ".join(f"{action}: {ACTION_MEANINGS[action]}" for action in ("approve", "refuse"))
+DECIDE_HELD = "; ".join(f"{action}: {ACTION_MEANINGS[action]}" for action in ("replace", "discard"))
 
 
 def _utc(timestamp: float) -> str:

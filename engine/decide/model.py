@@ -6,6 +6,15 @@ from typing import Any
 
 #: Each action, and what the order must be waiting for.
 ACTIONS = {"approve": "review", "refuse": "review", "replace": "held", "discard": "held"}
+#: What each action does, in the lab's words (the queue, the web page and their help say it the same way).
+ACTION_MEANINGS = {
+    "approve": "publish the result to outbox/ with status ready, its flags acknowledged",
+    "refuse": "move the result to rejected/ with your reason",
+    "replace": "run the new version through the chain as the order's next revision, superseding the published result",
+    "discard": "archive the new version; the published result stays",
+}
+#: Each action as done.
+ACTION_DONE = {"approve": "approved", "refuse": "refused", "replace": "replaced", "discard": "discarded"}
 
 EXIT_OK = 0
 EXIT_BLOCKED = 1  # the lab could not be written (disk full…); the request stays and is applied later

@@ -32,20 +32,13 @@ from flask import Flask, abort, redirect, request
 from werkzeug.exceptions import HTTPException
 
 from lenslane import decide
-from lenslane.decide import QueueItem
+from lenslane.decide.model import ACTION_MEANINGS, QueueItem
 from lenslane.web.lab_view import counts_today, search
 from lenslane.web.page import order_page_data, templates, valid_order_id
 
 #: The cookie that carries the access token once a browser has shown it.
 TOKEN_COOKIE = "lenslane_token"
 LOOPBACK_NAMES = ("127.0.0.1", "localhost", "::1")
-#: What each decision does, in the lab's words (the actions of ``lenslane decide``).
-ACTION_WORDS = {
-    "approve": "publish the result to the outbox, status ready",
-    "refuse": "move the result to rejected/ with your reason",
-    "replace": "run the new version through the chain as the order's next revision",
-    "discard": "archive the new version; the published result stays",
-}
 #: What the error pages this server raises itself say (any other error says what HTTP calls it).
 _ERROR_TEXTS = {
     403: ("Refused", "The form did not come from this page (its token is missing or wrong); nothing was recorded. "
@@ -64,7 +57,7 @@ _HEADERS = {
 
 def _awaiting(item: QueueItem) -> dict[str, Any]:
     """What the page says about one queue item: the item, and each action that fits it with what it does."""
-    return {**item.to_dict(), "actions": [(action, ACTION_WORDS[action]) for action in item.actions]}
+    return {**item.to_dict(), "actions": [(action, ACTION_MEANINGS[action]) for action in item.actions]}
 
 
 def _host_name(host: str) -> str:
@@ -141,7 +134,7 @@ def create_app(lab_root: Path, token: str | None = None, loopback: bool = True) 
             abort(404)
         data = order_page_data(lab_root, order_id)
         done = request.args.get("done")
-        message = f"Decision recorded: {done}." if done in ACTION_WORDS else None
+        message = f"Decision recorded: {done}." if done in ACTION_MEANINGS else None
         return page("order.html", 200 if data["found"] else 404, page=data, awaiting=awaiting_decision(order_id),
                     csrf=csrf_for(order_id), message=message)
 

@@ -20,6 +20,7 @@ from markupsafe import Markup
 
 from lenslane import __version__
 from lenslane.contract.models import ORDER_ID_RE
+from lenslane.decide.model import ACTION_DONE
 from lenslane.plugins.optics.outline import DEFAULT_EXPONENT
 from lenslane.report.notation import geometry_text, inputs_text, number, value_text
 from lenslane.report.pictures import eye_pictures
@@ -28,7 +29,7 @@ from lenslane.report.text import OUTCOME_MEANINGS, REFUSED_ON_READING, UNFINISHE
 from lenslane.vocabulary import CAUTION, EYES, WHAT_TO_DECIDE
 
 #: What an order is once a person's decision came after its last processing.
-DECIDED = {"approve": "approved", "refuse": "refused", "replace": "replaced", "discard": "new version discarded"}
+DECIDED = {**ACTION_DONE, "discard": "new version discarded"}
 
 templates = Environment(loader=PackageLoader("lenslane.web", "templates"), autoescape=select_autoescape(default=True),
                         trim_blocks=True, lstrip_blocks=True)
