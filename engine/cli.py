@@ -397,8 +397,12 @@ def main(argv: list[str] | None = None) -> int:
     from lenslane.chain.host import PluginError
     from lenslane.config import ConfigError
 
+    from lenslane.lab.files import NotALabFolder, require_lab
+
     args = build_parser().parse_args(argv)
     try:
+        if getattr(args, "lab", None) and args.func is not cmd_init:
+            require_lab(Path(args.lab))
         code = args.func(args)
         sys.stdout.flush()  # a reader that stopped reading (`| head`) is met here, not at the interpreter's exit
         return code
@@ -410,6 +414,9 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     except ConfigError as exc:
         print(f"lenslane: bad config: {exc}", file=sys.stderr)
+        return 2
+    except NotALabFolder as exc:
+        print(f"lenslane: {exc}", file=sys.stderr)
         return 2
 
 

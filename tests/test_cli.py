@@ -146,3 +146,20 @@ def test_a_reader_that_went_away_gets_no_traceback(command):
     _, errors = child.communicate(timeout=60)
     assert errors == b""
     assert child.returncode == 1
+
+
+@pytest.mark.parametrize("command", [
+    ["watch", "{lab}", "--once"], ["status", "{lab}"], ["explain", "{lab}", "DP-1000"], ["queue", "{lab}"],
+    ["audit", "verify", "{lab}"], ["audit", "checkpoint", "{lab}"], ["audit", "reindex", "{lab}"],
+    ["decide", "{lab}", "DP-1000", "approve", "--by", "tech-01", "--note", "checked"], ["serve", "{lab}"],
+    ["plugins", "--lab", "{lab}"],
+])
+def test_a_folder_that_is_not_a_lab_is_refused_and_left_as_it_was(tmp_path, command):
+    # A mistyped path is said to be one: never "audit log intact", an empty queue, or a new lab made in it.
+    folder = tmp_path / "not-a-lab"
+    folder.mkdir()
+    (folder / "notes.txt").write_text("the lab's own\n")
+    done = lenslane(*[part.format(lab=folder) for part in command], check=False)
+    assert done.returncode == 2, done.stdout + done.stderr
+    assert done.stderr.strip() == f"lenslane: {folder} is not a lab folder (make one with `lenslane init {folder}`)"
+    assert sorted(p.name for p in folder.iterdir()) == ["notes.txt"]

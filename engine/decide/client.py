@@ -16,10 +16,9 @@ import time
 from pathlib import Path
 
 from lenslane.audit.log import AuditError
-from lenslane.audit.records import AUDIT_NAME
 from lenslane.decide import requests
 from lenslane.decide.model import EXIT_BLOCKED, EXIT_NOT_TAKEN, EXIT_USAGE, DecisionError, DecisionResult
-from lenslane.lab.files import LabLocked, lock_lab
+from lenslane.lab.files import LabLocked, NotALabFolder, lock_lab, require_lab
 
 #: How long to wait for a running engine to answer (s); it normally answers in milliseconds.
 WAIT_SECONDS = 30.0
@@ -40,8 +39,10 @@ def decide(lab_root: Path, order_id: str, action: str, by: str, note: str, held_
         Not applied; ``message`` says why and ``exit_code`` which case it is.
     """
     root = Path(lab_root)
-    if not (root / AUDIT_NAME).exists() and not (root / "outbox").is_dir():
-        raise DecisionError(f"{root} is not a lab folder (lenslane init makes one)", EXIT_USAGE)
+    try:
+        require_lab(root)
+    except NotALabFolder as exc:
+        raise DecisionError(str(exc), EXIT_USAGE) from None
     request = requests.new_request(order_id, action, by, note, held_file)
     path = requests.write_request(root, request)
     deadline = time.monotonic() + wait_seconds

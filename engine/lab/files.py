@@ -88,6 +88,21 @@ def _load_renameat2():
 _renameat2 = _load_renameat2()
 
 
+class NotALabFolder(ValueError):
+    """A command was given a folder that is not a lab folder."""
+
+
+def require_lab(root: Path) -> Path:
+    """``root``, when it is a lab folder: one that holds an audit log (``lenslane init`` makes it; a rotated file
+    counts, so a lab stopped between a rotation and its next record is one). Else :class:`NotALabFolder`, so a
+    mistyped path is said to be one, never read as an empty lab or made into a new one."""
+    from lenslane.audit.reader import audit_files  # the audit's own answer to which files make its log
+
+    if not audit_files(root):
+        raise NotALabFolder(f"{root} is not a lab folder (make one with `lenslane init {root}`)")
+    return root
+
+
 def rename_noreplace(source: str | Path, target: str | Path) -> None:
     """Rename ``source`` to ``target``, never replacing a file there: raises FileExistsError instead.
 

@@ -12,7 +12,7 @@ import os
 import sys
 from pathlib import Path
 
-from lenslane.audit.records import AUDIT_NAME
+from lenslane.lab.files import NotALabFolder, require_lab
 
 TOKEN_VARIABLE = "LENSLANE_SERVE_TOKEN"
 MIN_TOKEN_LENGTH = 16
@@ -58,8 +58,10 @@ def serve(lab_root: Path, host: str = DEFAULT_HOST, port: int = DEFAULT_PORT) ->
     from lenslane.web.app import create_app
 
     lab_root = Path(lab_root)
-    if not (lab_root / AUDIT_NAME).is_file():
-        raise ServeRefused(f"{lab_root} is not a lab folder (make one with `lenslane init {lab_root}`)")
+    try:
+        require_lab(lab_root)
+    except NotALabFolder as exc:
+        raise ServeRefused(str(exc)) from None
     token = access_token(host)
     app = create_app(lab_root, token=token, loopback=token is None)
     server = create_server(app, host=host, port=port, threads=4, clear_untrusted_proxy_headers=True)
