@@ -76,8 +76,9 @@ class VerifyReport:
                      else f"nothing new since seq {self.since}, verified before," if self.since is not None
                      else f"{self.records} records (seq 1–{self.last_seq})")
             return (f"audit log intact: {scope} in {files}; {self.published} published, {self.rejected} rejected; "
-                    f"{self.results_matching} outbox results match the log, {self.results_gone} no longer in the "
-                    f"outbox{self._others()}{artefacts}")
+                    f"{self.results_matching} outbox results match the log, {self.results_gone} no longer where a "
+                    f"record placed them (taken away downstream, or moved on by a decision){self._others()}"
+                    f"{artefacts}")
         first = (self.breaks or self.result_problems)[0]
         total = len(self.breaks) + len(self.result_problems)
         more = f" (and {total - 1} more problem(s))" if total > 1 else ""

@@ -173,7 +173,7 @@ def test_a_changed_result_file_is_named(busy_lab, capsys):
 def test_results_taken_from_the_outbox_are_counted_not_failed(busy_lab, capsys):
     (busy_lab.outbox / "TST-0002.json").unlink()
     code, out = verify_cli(busy_lab, capsys)
-    assert code == 0 and "4 outbox results match the log, 1 no longer in the outbox" in out[0]
+    assert code == 0 and "4 outbox results match the log, 1 no longer where a record placed them" in out[0]
 
 
 def test_a_result_no_record_accounts_for_is_a_failure(busy_lab, capsys):

@@ -65,6 +65,12 @@ def test_refuse_moves_the_result_to_rejected_with_the_reason(lab):
                                                                       "progressive; practice informed"}]
     report = verify(root)
     assert report.ok and report.other_results_matching == {"rejected": 1}
+    # Walked from seq 1, the result's first place (review/) is one it is no longer in, and the summary says so
+    # without calling it gone from the outbox.
+    report = verify(root, full=True)
+    assert report.ok and report.other_results_matching == {"rejected": 1} and report.results_gone == 1
+    assert "1 no longer where a record placed them (taken away downstream, or moved on by a decision)" in \
+        report.summary()
 
 
 def test_replace_publishes_the_next_revision_and_keeps_the_superseded_result(lab, drop):
