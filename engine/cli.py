@@ -224,11 +224,7 @@ def cmd_queue(args) -> int:
     from lenslane.decide import queue
     from lenslane.decide.listing import render
 
-    try:
-        items = queue(Path(args.lab))
-    except FileNotFoundError as exc:
-        print(f"lenslane: {exc}", file=sys.stderr)
-        return 1
+    items = queue(Path(args.lab))
     if args.json:
         print(json.dumps({"waiting": [item.to_dict() for item in items], "caution": CAUTION}, indent=1,
                          ensure_ascii=False))

@@ -65,7 +65,8 @@ def test_the_queue_command_prints_text_and_json(make_lab, drop, capsys):
     assert main(["queue", str(lab.root), "--json"]) == 0
     data = json.loads(capsys.readouterr().out)
     assert [item["order_id"] for item in data["waiting"]] == ["RV-0001"] and "licensed" in data["caution"]
-    assert main(["queue", str(lab.root / "nowhere")]) == 1
+    assert main(["queue", str(lab.root / "nowhere")]) == 2  # not a lab folder: a mistake in the command
+    assert "nowhere is not a lab folder" in capsys.readouterr().err
 
 
 def test_differences_name_every_field_that_differs():
