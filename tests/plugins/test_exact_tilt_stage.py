@@ -19,8 +19,8 @@ from lenslane.plugins.optics.asworn import lens_direction, no_roll_axes, trace_c
 from lenslane.plugins.optics.power import power_matrix, principal_powers
 from lenslane.plugins.optics.surfaces import surface_radius_mm, toric_back_surface
 from lenslane.plugins.optics.tilt import tilt_obliquity
-from optics.raytrace_reference import chief_exit, turn_about_z, vergence_matrix, worn_singlet
 from tests.conftest import run_order
+from tests.plugins.optics.raytrace_reference import chief_exit, turn_about_z, vergence_matrix, worn_singlet
 
 OBJECT_MM = 10.0
 

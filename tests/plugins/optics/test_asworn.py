@@ -21,7 +21,7 @@ from lenslane.plugins.optics.surfaces import back_vertex_power, surface_radius_m
 from lenslane.plugins.optics.thickness import LensShape, LensNotMakeable, solve_center_thickness
 from lenslane.plugins.optics.tilt import exact_thin_factor, martin_factor, tilt_obliquity, tilted_power
 from lenslane.plugins.optics.vertex import vertex_move
-from raytrace_reference import chief_exit, turn_about_z, vergence_matrix, worn_singlet
+from tests.plugins.optics.raytrace_reference import chief_exit, turn_about_z, vergence_matrix, worn_singlet
 
 
 def _worn(front, surfacing, thickness, index, pantoscopic=0.0, face_form=0.0, eye="right"):

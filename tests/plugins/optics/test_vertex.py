@@ -8,7 +8,8 @@ from hypothesis import strategies as st
 
 from lenslane.plugins.optics.power import PowerMatrix, power_matrix, principal_powers, sphero_cylinder
 from lenslane.plugins.optics.vertex import vertex_change_m, vertex_move, vertex_power
-from raytrace_reference import paraxial_back_vertex_power, singlet, vergence_matrix
+from tests.plugins.optics.lens_reference import paraxial_back_vertex_power
+from tests.plugins.optics.raytrace_reference import singlet, vergence_matrix
 
 # Source: DOMAIN.md vertex check values — spectacle lens at 12 mm → power at the cornea, from the vertex
 # formula F / (1 − dF) as in the standard vertex-conversion tables (computed from the formula).
