@@ -140,7 +140,7 @@ def test_a_plain_order_passes_quietly(default_host, order_dict):
 
 
 def test_every_geometry_value_has_a_change_record_naming_its_method(default_host, order_dict):
-    # Source: ORDER_FORMAT.md, "Nothing reaches surfacing or geometry without a change record".
+    # Policy (ORDER_FORMAT.md): "Nothing reaches surfacing or geometry without a change record".
     result = run_order(default_host, order_dict)
     for eye in ("right", "left"):
         [change] = [c for c in result["changes"] if c["field"] == f"lenses.{eye}.geometry"]

@@ -427,7 +427,7 @@ def test_exact_compensation_solves_a_pair_whose_thicknesses_depend_on_each_other
 
 
 def test_exact_compensation_refuses_fronts_that_keep_changing():
-    # Source: issue 16 item 2 — a lens whose solved power keeps moving the lab's choice of front has no one
+    # Policy (issue 16 item 2): a lens whose solved power keeps moving the lab's choice of front has no one
     # consistent front curve, centre thickness and surfacing power: no lens is made.
     theta, t = tilt_obliquity(10.0, 0.0, "right")
     fronts = iter([6.0, 8.0] * 20)
