@@ -134,6 +134,7 @@ def test_a_band_may_name_its_own_rule(order_dict):
 
 
 def test_a_band_with_an_unknown_rule_stops_the_engine():
+    # Policy: a band names only a registered method; anything else stops the engine at start.
     with pytest.raises(ConfigError, match="front_curve_bands"):
         host_with('[[stages.geometry.front_curve_bands]]\nmethod = "guess"\n')
 
