@@ -18,7 +18,7 @@ from pathlib import Path
 from lenslane.audit.log import AuditError
 from lenslane.decide import requests
 from lenslane.decide.model import EXIT_BLOCKED, EXIT_NOT_TAKEN, EXIT_USAGE, DecisionError, DecisionResult
-from lenslane.lab.files import LabLocked, NotALabFolder, lock_lab, require_lab
+from lenslane.lab.files import LabLocked, NotALabFolder, lock_lab, read_lock, require_lab
 
 #: How long to wait for a running engine to answer (s); it normally answers in milliseconds.
 WAIT_SECONDS = 30.0
@@ -57,7 +57,7 @@ def decide(lab_root: Path, order_id: str, action: str, by: str, note: str, held_
         holder = _apply_if_free(root)
         now = time.monotonic()
         if holder is not None and now >= next_wake:
-            _wake(holder)
+            _wake(root)
             next_wake = now + WAKE_SECONDS
         if now > deadline and taken_deadline is None:
             try:
@@ -120,8 +120,13 @@ def _time_limit(lab):
         yield
 
 
-def _wake(holder: str) -> None:
+def _wake(root: Path) -> None:
+    """Wake the engine that holds the lab's lock (SIGUSR1), and only an engine: another ``lenslane decide`` or a web
+    page applying a decision holds it for a moment too, and has no handler for SIGUSR1, which would end it."""
+    pid, state, _ = read_lock(root)
+    if pid is None or not (state or {}).get("mode"):  # an engine's state line names its mode
+        return
     try:
-        os.kill(int(holder), signal.SIGUSR1)
-    except (ValueError, ProcessLookupError, PermissionError):
+        os.kill(pid, signal.SIGUSR1)
+    except (ProcessLookupError, PermissionError):
         pass  # the engine looks at decisions/ at every rescan anyway

@@ -190,3 +190,33 @@ def test_a_replacing_version_the_chain_refuses_leaves_the_published_result(tmp_p
     (rejected,) = records(lab, "rejected", "OK-0001")
     assert rejected["revision"] == 2 and "order time limit" in rejected["reasons"][0]["message"]
     assert verify(lab).ok
+
+
+def test_a_decide_that_holds_the_lock_is_not_woken_like_an_engine(tmp_path, fault_plugin):
+    """With no engine running, a second `lenslane decide` waits for the first, which holds the lab's lock while a
+    replace runs the chain: it must not send it the engine's wake-up (SIGUSR1 ends a process that has no handler
+    for it). Both decisions are applied, each by a process that ends normally."""
+    import json
+
+    from tests.system.driver import FAST_WATCH, FAULT_CHAIN, wait_until
+
+    lab = make_lab_folder(tmp_path / "lab", {**FAST_WATCH, "order_time_limit_seconds": 2.0}, chain=FAULT_CHAIN)
+    drop(lab, "RV-0001.json", json.dumps(review_order("RV-0001")).encode())
+    drop(lab, "OK-0001.json", json.dumps(ready_order("OK-0001")).encode())
+    assert lenslane("watch", str(lab), "--once", env=fault_plugin).returncode == 0
+    drop(lab, "OK-0001-hang.json", json.dumps({**ready_order("OK-0001"), "wearer": {"ref": "HANG"}}).encode())
+    assert lenslane("watch", str(lab), "--once", env=fault_plugin).returncode == 0
+    marker = tmp_path / "chain-running"
+    first = start_lenslane("decide", str(lab), "OK-0001", "replace", "--by", "tech-07", "--note", "new wearer ref",
+                           env={**fault_plugin, "LENSLANE_TEST_MARKER": str(marker)})
+    try:
+        wait_until(marker.exists, "the first decide to run the chain, holding the lab's lock")
+        second = lenslane("decide", str(lab), "RV-0001", "approve", "--by", "tech-09", "--note", "ok",
+                          env=fault_plugin)
+    finally:
+        out, err = first.communicate(timeout=WAIT_SECONDS)
+    assert first.returncode == 0, err
+    assert "refused by the chain" in out
+    assert second.returncode == 0, second.stderr
+    assert sorted(d["action"] for d in records(lab, "decided")) == ["approve", "replace"]
+    assert verify(lab).ok
