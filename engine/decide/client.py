@@ -97,6 +97,9 @@ def _apply_if_free(root: Path) -> str | None:
                 raise DecisionError(f"cannot write in {root}: {exc}; the decision is applied once or not at all — it "
                                     "stays in decisions/ and is applied by the next lenslane watch or decide",
                                     EXIT_BLOCKED) from exc
+            finally:
+                if lab.audit is not None:
+                    lab.audit.close()  # its index: a web page applies decisions in one long-running process
     finally:
         os.close(lock)
     return None
