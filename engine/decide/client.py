@@ -44,7 +44,11 @@ def decide(lab_root: Path, order_id: str, action: str, by: str, note: str, held_
     except NotALabFolder as exc:
         raise DecisionError(str(exc), EXIT_USAGE) from None
     request = requests.new_request(order_id, action, by, note, held_file)
-    path = requests.write_request(root, request)
+    try:
+        path = requests.write_request(root, request)
+    except OSError as exc:
+        raise DecisionError(f"cannot write the request in {requests.folder(root)}: {exc}; nothing was decided",
+                            EXIT_BLOCKED) from exc
     deadline = time.monotonic() + wait_seconds
     taken_deadline = None
     next_wake = 0.0
@@ -81,6 +85,9 @@ def _apply_if_free(root: Path) -> str | None:
         lock = lock_lab(root)
     except LabLocked as exc:
         return exc.holder
+    except OSError as exc:
+        raise _blocked(root, exc) from exc
+    lab = None
     try:
         from lenslane.chain.host import start_host
         from lenslane.config import load_config
@@ -89,20 +96,21 @@ def _apply_if_free(root: Path) -> str | None:
 
         if requests.pending(root):
             lab = Lab(root, start_host(load_config(root)))
-            try:
-                lab.recover()  # as any holder of the lock does first: the log's tail, temp leftovers
-                with _time_limit(lab):
-                    Applier(lab).run_pending()
-            except (OSError, AuditError) as exc:
-                raise DecisionError(f"cannot write in {root}: {exc}; the decision is applied once or not at all — it "
-                                    "stays in decisions/ and is applied by the next lenslane watch or decide",
-                                    EXIT_BLOCKED) from exc
-            finally:
-                if lab.audit is not None:
-                    lab.audit.close()  # its index: a web page applies decisions in one long-running process
+            lab.recover()  # as any holder of the lock does first: the log's tail, temp leftovers
+            with _time_limit(lab):
+                Applier(lab).run_pending()
+    except (OSError, AuditError) as exc:
+        raise _blocked(root, exc) from exc
     finally:
+        if lab is not None and lab.audit is not None:
+            lab.audit.close()  # its index: a web page applies decisions in one long-running process
         os.close(lock)
     return None
+
+
+def _blocked(root: Path, exc: Exception) -> DecisionError:
+    return DecisionError(f"cannot write in {root}: {exc}; the decision is applied once or not at all — it stays in "
+                         "decisions/ and is applied by the next lenslane watch or decide", EXIT_BLOCKED)
 
 
 @contextlib.contextmanager

@@ -220,3 +220,24 @@ def test_a_decide_that_holds_the_lock_is_not_woken_like_an_engine(tmp_path, faul
     assert second.returncode == 0, second.stderr
     assert sorted(d["action"] for d in records(lab, "decided")) == ["approve", "replace"]
     assert verify(lab).ok
+
+
+def test_a_lab_that_cannot_be_written_is_told_plainly(tmp_path):
+    """A full disk (here: a file size limit of 0 bytes, which fails every write the same way): the request cannot
+    even be written; the person is told so, with the folder, and nothing is decided."""
+    import resource
+
+    lab = prepared_lab(tmp_path)
+    before = snapshot(lab)
+
+    def no_room() -> None:
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)  # the write fails with EFBIG instead of ending the process
+        resource.setrlimit(resource.RLIMIT_FSIZE, (0, 0))
+
+    done = subprocess.run([sys.executable, "-m", "lenslane.cli", "decide", str(lab), "RV-0001", "approve", "--by",
+                           "tech-07", "--note", "ok"], capture_output=True, text=True, cwd=REPO, env=environment(),
+                          timeout=WAIT_SECONDS, preexec_fn=no_room)
+    assert done.returncode == 1, done.stderr
+    assert "Traceback" not in done.stderr
+    assert f"cannot write the request in {lab / 'decisions'}" in done.stderr and "nothing was decided" in done.stderr
+    assert snapshot(lab) == before and os.listdir(lab / "decisions") == [] and records(lab, "decided") == []
