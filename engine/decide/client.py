@@ -16,6 +16,7 @@ import time
 from pathlib import Path
 
 from lenslane.audit.log import AuditError
+from lenslane.config import ConfigError
 from lenslane.decide import requests
 from lenslane.decide.model import EXIT_BLOCKED, EXIT_NOT_TAKEN, EXIT_USAGE, DecisionError, DecisionResult
 from lenslane.lab.files import LabLocked, NotALabFolder, lock_lab, read_lock, require_lab
@@ -58,7 +59,12 @@ def decide(lab_root: Path, order_id: str, action: str, by: str, note: str, held_
             if isinstance(answer, DecisionError):
                 raise answer
             return answer
-        holder = _apply_if_free(root)
+        try:
+            holder = _apply_if_free(root)
+        except ConfigError as exc:  # nothing took the request: withdrawn, lest a later engine apply it unasked
+            path.unlink(missing_ok=True)
+            raise DecisionError(f"cannot load the lab's config and plugins: {exc}; nothing was decided",
+                                EXIT_USAGE) from None
         now = time.monotonic()
         if holder is not None and now >= next_wake:
             _wake(root)

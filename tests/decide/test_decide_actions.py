@@ -230,3 +230,19 @@ def test_a_decision_applied_with_no_engine_leaves_no_file_of_the_lab_open(lab):
     decide(lab.root, "RV-0001", "approve", "tech-07", "checked")
     decide(lab.root, "OK-0001", "discard", "tech-07", "sent twice")
     assert opened() == 0
+
+
+def test_a_decision_refused_for_a_bad_config_is_not_applied_later(lab, capsys):
+    """No engine runs and the lab's config file is not valid: the person is told, and the request is withdrawn, so
+    that the next engine started on the mended config does not apply a decision its maker was told had failed."""
+    config = lab.root / "lenslane.toml"
+    config.write_text("[watch]\nrescan_secnds = 1\n")
+    assert main(["decide", str(lab.root), "RV-0001", "approve", "--by", "tech-07", "--note", "ok"]) == 2
+    assert "rescan_secnds" in capsys.readouterr().err
+    with pytest.raises(DecisionError) as refused:  # the web page's way: an error it shows, nothing recorded
+        decide(lab.root, "RV-0001", "approve", "tech-07", "ok")
+    assert refused.value.exit_code == EXIT_USAGE and "nothing was decided" in refused.value.message
+    assert os.listdir(lab.root / "decisions") == []
+    config.unlink()
+    assert main(["watch", str(lab.root), "--once"]) == 0
+    assert records(lab.root, "decided") == [] and (lab.root / "review" / "RV-0001.json").exists()
