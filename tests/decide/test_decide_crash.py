@@ -143,6 +143,26 @@ def test_a_decision_goes_through_the_running_engine(tmp_path):
         assert watch.stop() == 0
 
 
+def test_the_running_engine_is_woken_for_a_decision_between_its_rescans(tmp_path):
+    """The engine looks at decisions/ at every rescan; here rescans are an hour apart, so only the wake-up
+    (SIGUSR1) that lenslane decide sends can bring the decision to it within the command's wait."""
+    import json
+
+    from tests.system.driver import FAST_WATCH
+
+    lab = prepared_lab(tmp_path)
+    settings = {**FAST_WATCH, "rescan_seconds": 3600.0}
+    (lab / "lenslane.toml").write_text("[watch]\n" + "".join(f"{k} = {json.dumps(v)}\n" for k, v in settings.items()))
+    watch = Watch(lab)
+    try:
+        done = lenslane("decide", str(lab), "RV-0001", "approve", "--by", "tech-07", "--note", "checked", "--wait",
+                        "20")
+        assert done.returncode == 0, done.stderr
+        assert watch.wait_for("decision")["order_id"] == "RV-0001"
+    finally:
+        assert watch.stop() == 0
+
+
 def test_an_engine_killed_while_applying_a_decision_leaves_it_to_the_waiting_command(tmp_path):
     lab = prepared_lab(tmp_path)
     before = snapshot(lab)
