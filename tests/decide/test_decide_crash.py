@@ -16,7 +16,7 @@ from lenslane.audit.log import verify
 from lenslane.lab.folder import DECISION_STEPS
 from tests.conftest import REPO
 from tests.system.crashing import CRASH_EXIT_CODE
-from tests.decide.helpers import load, ready_order, records, review_order
+from tests.decide.helpers import config_text, load, ready_order, records, review_order
 from tests.system.driver import WAIT_SECONDS, Watch, environment, make_lab as make_lab_folder, drop
 
 
@@ -146,13 +146,8 @@ def test_a_decision_goes_through_the_running_engine(tmp_path):
 def test_the_running_engine_is_woken_for_a_decision_between_its_rescans(tmp_path):
     """The engine looks at decisions/ at every rescan; here rescans are an hour apart, so only the wake-up
     (SIGUSR1) that lenslane decide sends can bring the decision to it within the command's wait."""
-    import json
-
-    from tests.system.driver import FAST_WATCH
-
     lab = prepared_lab(tmp_path)
-    settings = {**FAST_WATCH, "rescan_seconds": 3600.0}
-    (lab / "lenslane.toml").write_text("[watch]\n" + "".join(f"{k} = {json.dumps(v)}\n" for k, v in settings.items()))
+    (lab / "lenslane.toml").write_text(config_text(rescan_seconds=3600.0))
     watch = Watch(lab)
     try:
         done = lenslane("decide", str(lab), "RV-0001", "approve", "--by", "tech-07", "--note", "checked", "--wait",
