@@ -19,8 +19,8 @@ from lenslane.plugins.optics.asworn import lens_direction, no_roll_axes, trace_c
 from lenslane.plugins.optics.power import power_matrix, principal_powers
 from lenslane.plugins.optics.surfaces import surface_radius_mm, toric_back_surface
 from lenslane.plugins.optics.tilt import tilt_obliquity
-from optics.raytrace_reference import chief_exit, turn_about_z, vergence_matrix, worn_singlet
 from tests.conftest import run_order
+from tests.plugins.optics.raytrace_reference import chief_exit, turn_about_z, vergence_matrix, worn_singlet
 
 OBJECT_MM = 10.0
 
@@ -103,7 +103,7 @@ def test_the_published_lens_traced_by_rayoptics_gives_the_prescription(eye):
 
 
 def test_the_exact_change_record_carries_martins_value_the_residual_and_the_off_axis_errors():
-    # Source: issue 16 — the record carries the as-worn residual and Martin's value; the off-axis errors at 20°
+    # Policy (issue 16): the record carries the as-worn residual and Martin's value; the off-axis errors at 20°
     # and 30° in four directions. Martin's value must be what the martin method publishes for the same order.
     exact = _run({"tilt": {"method": "exact"}})
     martin = _run({})
@@ -123,21 +123,21 @@ def test_the_exact_change_record_carries_martins_value_the_residual_and_the_off_
 
 
 def test_martin_stays_the_default_and_naming_it_changes_nothing():
-    # Source: ORDER_FORMAT.md compensation model (method martin) — a lab that names the default gets the very
+    # Policy: martin (ORDER_FORMAT.md's compensation model) is the default; a lab that names it gets the very
     # same result, config hash included.
     assert json.dumps(_run({})) == json.dumps(_run({"tilt": {"method": "martin"}}))
     assert json.dumps(_run({})) != json.dumps(_run({"tilt": {"method": "exact"}}))
 
 
 def test_an_unknown_tilt_method_is_refused_with_its_path():
-    # Source: BRIEF — bad config gets a clear error with the field path.
+    # Policy: a bad config value stops the engine with a clear error naming the field path.
     from lenslane.config import ConfigError
     with pytest.raises(ConfigError, match="stages.tilt.method"):
         start_host(LabConfig(stages={"tilt": {"method": "coddington"}}))
 
 
 def test_exact_best_form_chooses_the_least_error_base_and_records_it():
-    # Source: issue 16 / Atchison (1992), Applied Optics 31:3579 — among the stocked bases, the one whose lens has
+    # Source: Atchison (1992), Applied Optics 31:3579 (from memory); policy (issue 16): among the stocked bases, the one whose lens has
     # the least off-axis error, with the numbers recorded; with the exact tilt, the tilt stage solved the lens
     # for the very front the geometry stage then chose.
     result = _run({"tilt": {"method": "exact"}, "geometry": {"front_curve_method": "exact_best_form"}})

@@ -123,8 +123,8 @@ def test_geometry_recomputed_independently_from_the_reported_curve_and_thickness
 
 
 def test_a_plain_order_passes_quietly(default_host, order_dict):
-    # Source: DOMAIN.md, "a plain mild prescription in an ordinary frame gets no warning":
-    # −1.00 −0.50 × 90 / −1.25, resin-1.50, 52/18 full rim.
+    # Policy: a plain mild prescription in an ordinary frame (−1.00 −0.50 × 90 / −1.25, resin-1.50, 52/18 full
+    # rim) gets no warning.
     order_dict["wearer"] = {"ref": "W-T01", "birth_year": 1984}
     order_dict["placed_at"] = "2026-11-30T15:04:05Z"
     result = run_order(default_host, order_dict)
@@ -140,7 +140,7 @@ def test_a_plain_order_passes_quietly(default_host, order_dict):
 
 
 def test_every_geometry_value_has_a_change_record_naming_its_method(default_host, order_dict):
-    # Source: ORDER_FORMAT.md, "Nothing reaches surfacing or geometry without a change record".
+    # Policy (ORDER_FORMAT.md): "Nothing reaches surfacing or geometry without a change record".
     result = run_order(default_host, order_dict)
     for eye in ("right", "left"):
         [change] = [c for c in result["changes"] if c["field"] == f"lenses.{eye}.geometry"]
@@ -165,6 +165,7 @@ def test_front_curve_by_vogel_snapped_to_the_stocked_base(default_host, order_di
 
 
 def test_a_requested_curve_the_lab_stocks_is_used_quietly(default_host, order_dict):
+    # Policy: the practice's front curve is used as asked; a stocked one needs no word.
     order_dict["lens"]["front_curve_d"] = 4.0
     result = run_order(default_host, order_dict)
     assert result["lenses"]["right"]["geometry"]["front_curve_d"] == 4.0
@@ -172,6 +173,7 @@ def test_a_requested_curve_the_lab_stocks_is_used_quietly(default_host, order_di
 
 
 def test_a_requested_curve_the_lab_does_not_stock_is_a_warning(default_host, order_dict):
+    # Policy: a curve off the stock is still used as asked, with a warning naming the nearest stocked base (4 D).
     order_dict["lens"]["front_curve_d"] = 4.37
     result = run_order(default_host, order_dict)
     assert result["lenses"]["right"]["geometry"]["front_curve_d"] == 4.37
@@ -200,6 +202,7 @@ def test_tscherning_from_the_config_with_its_no_solution_fallback(order_dict):
 
 
 def test_an_unknown_front_curve_method_stops_the_engine_at_start():
+    # Policy: the config names only registered methods.
     with pytest.raises(ConfigError, match="stages.geometry.front_curve_method"):
         host_with('[stages.geometry]\nfront_curve_method = "guess"\n')
 
@@ -216,6 +219,7 @@ def test_the_lab_minimums_come_from_the_config(order_dict):
 
 @pytest.mark.parametrize("design, words", [("progressive", "progressive:"), ("bifocal", "bifocal:")])
 def test_multifocal_geometry_states_its_assumptions(default_host, order_dict, design, words):
+    # Policy: the geometry states the model it assumed for the design and for an outline the order does not give.
     order_dict["lens"]["design"] = design
     for eye in ("right", "left"):
         order_dict["rx"][eye]["add"] = 2.0
@@ -269,6 +273,7 @@ def safety_flag(result, code):
       "lens": {"design": "single_vision", "material": "glass-1.52"}}, "impact-resistance-mount", "review"),
 ])
 def test_orders_a_careful_lab_warns_on(default_host, order_dict, change, code, level):
+    # The thresholds' sources are beside each case above.
     order_dict.update(copy.deepcopy(change))
     result = run_order(default_host, order_dict)
     flag = safety_flag(result, code)
@@ -312,6 +317,7 @@ def test_a_child_in_a_material_that_is_not_impact_resistant(default_host, order_
 
 
 def test_a_child_in_glass_is_held_for_review_and_the_age_uses_this_year_without_placed_at(default_host, order_dict):
+    # Source: 21 CFR 801.410 (glass: hardening and the drop-ball test); policy: a child in glass is held.
     order_dict["lens"]["material"] = "glass-1.52"
     order_dict["wearer"] = {"birth_year": datetime.now(timezone.utc).year - 10}
     result = run_order(default_host, order_dict)
@@ -328,21 +334,25 @@ def test_edges_too_thick_for_a_drilled_mount(default_host, order_dict):
     result = run_order(default_host, order_dict)
     flag = safety_flag(result, "edge-too-thick-for-mount")
     assert flag["values"]["edge_max_mm"] == result["lenses"][flag["eye"]]["geometry"]["edge_max_mm"]
+    assert flag["values"]["limit_mm"] == 5.0 < flag["values"]["edge_max_mm"]
 
 
 def test_a_blank_larger_than_the_lab_stocks_holds_the_order(default_host, order_dict):
-    # Source: blank = ED + 2 × decentration + allowance (dispensing texts): a 62 mm round-ish frame with
-    # 10 mm decentration needs over 80 mm.
+    # Source: blank = ED + 2 × decentration + allowance (dispensing texts, DOMAIN.md): ED 66 mm, decentration
+    # (62 + 14)/2 − 28 = 10 mm (ISO 8624), 66 + 20 + 2 = 88 mm. Twice the farthest outline point from the optical
+    # centre is at most ED + 2 × decentration (the triangle inequality), so the blank lies above the lab's 80 mm
+    # stock and at most 88 mm.
     order_dict["frame"].update({"box_width_mm": 62.0, "box_height_mm": 44.0, "bridge_mm": 14.0,
                                 "effective_diameter_mm": 66.0})
     order_dict["fit"] = {"right": {"pd_mm": 28.0}, "left": {"pd_mm": 28.0}}
     result = run_order(default_host, order_dict)
     flag = safety_flag(result, "blank-too-large")
     assert flag["level"] == "review" and result["status"] == "review"
-    assert flag["values"]["blank_min_diameter_mm"] > 80.0
+    assert 80.0 < flag["values"]["blank_min_diameter_mm"] <= 88.0
 
 
 def test_safety_thresholds_come_from_the_config(order_dict):
+    # Policy: the lab's high_power_d (12 D) replaces the 8 D of common practice; a misspelt key stops the engine.
     host = host_with("[stages.safety]\nhigh_power_d = 12.0\nchromatic_limit_delta = 0.5\ncosmetic_edge_mm = 9.0\n")
     order_dict["rx"] = {"right": {"sphere": -10.0}, "left": {"sphere": -10.0}}
     result = run_order(host, order_dict)
@@ -352,8 +362,8 @@ def test_safety_thresholds_come_from_the_config(order_dict):
 
 
 def test_the_default_config_template_parses_with_both_tables_uncommented():
-    # The commented [stages.geometry] and [stages.safety] sections of config/lenslane.toml, with their
-    # example lines uncommented, are a valid config.
+    # Policy: the commented [stages.geometry] and [stages.safety] sections of config/lenslane.toml, with their
+    # example lines uncommented, are a valid config and carry the built-in minimums.
     from lenslane.config import template_text
 
     text = template_text()
@@ -368,7 +378,7 @@ def test_the_default_config_template_parses_with_both_tables_uncommented():
 
 
 def test_an_edge_flagged_over_its_limit_reads_over_it_in_the_message(default_host):
-    # Common practice: a message must not say "6.0 mm, over the limit of 6.0 mm" — the edge is written to
+    # Policy: a message must not say "6.0 mm, over the limit of 6.0 mm" — the edge is written to
     # 0.01 mm so that the number shown is the one compared (the high-plus sample's right edge is 6.0x mm).
     import re
 

@@ -62,7 +62,8 @@ def _codes(result, level=None):
 
 def test_sample_order_surfacing_matches_the_contract_example(default_host):
     # Source: ORDER_FORMAT.md example result for this order (right surfacing −4.20 −1.12 × 173; index 1.586,
-    # refraction 12.0 mm, fitting 13.5 mm, pantoscopic 9°, face form 6°).
+    # refraction 12.0 mm, fitting 13.5 mm, pantoscopic 9°, face form 6°); recomputed by hand from DOMAIN.md's
+    # F (I − dF)⁻¹ then S⁻ᵀ F_w S⁻¹ / k: −4.203 −1.124 × 173.2.
     data = json.loads(SAMPLE.read_text())
     result = run_order(default_host, data)
     right = result["lenses"]["right"]
@@ -120,7 +121,7 @@ def test_random_orders_match_an_independent_implementation(sphere, cylinder, axi
 
 
 def test_rx_is_untouched_by_compensation(default_host):
-    # Source: ORDER_FORMAT.md — lenses.<eye>.rx is the prescription as received, only normalised.
+    # Policy (ORDER_FORMAT.md): lenses.<eye>.rx is the prescription as received, only normalised.
     data = json.loads(SAMPLE.read_text())
     result = run_order(default_host, data)
     assert result["lenses"]["right"]["rx"] == {"sphere": -4.25, "cylinder": -1.25, "axis": 170, "add": 2.25}
@@ -132,7 +133,7 @@ def test_rx_is_untouched_by_compensation(default_host):
 
 
 def test_changes_explain_vertex_and_tilt_with_their_numbers(default_host):
-    # Source: ORDER_FORMAT.md — every change has the stage, field, before, after, one sentence of why, the
+    # Policy (ORDER_FORMAT.md): every change has the stage, field, before, after, one sentence of why, the
     # method and its published source; the issue asks for the inputs (distances, angles, index, obliquity).
     data = json.loads(SAMPLE.read_text())
     result = run_order(default_host, data)
@@ -149,7 +150,7 @@ def test_changes_explain_vertex_and_tilt_with_their_numbers(default_host):
     assert right_tilt["before"] == right_vertex["after"]
     inputs = right_tilt["inputs"]
     assert inputs["pantoscopic_deg"] == 9.0 and inputs["face_form_deg"] == 6.0 and inputs["index"] == 1.586
-    # cos θ = cos 9° cos 6° (ORDER_FORMAT.md)
+    # Source: DOMAIN.md (Harris 2002), combined obliquity cos θ = cos 9° cos 6°.
     assert inputs["obliquity_deg"] == pytest.approx(math.degrees(math.acos(math.cos(math.radians(9)) *
                                                                            math.cos(math.radians(6)))), abs=1e-9)
     assert len(inputs["tangential_direction"]) == 2
@@ -158,7 +159,7 @@ def test_changes_explain_vertex_and_tilt_with_their_numbers(default_host):
 
 
 def test_default_refraction_vertex_is_recorded_as_an_assumption(default_host):
-    # Source: ORDER_FORMAT.md — without rx.vertex_mm the lab's default (12.0) is used and its use recorded.
+    # Policy (ORDER_FORMAT.md): without rx.vertex_mm the lab's default (12.0) is used and its use recorded.
     data = json.loads(SAMPLE.read_text())
     del data["rx"]["vertex_mm"]
     result = run_order(default_host, data)
@@ -175,7 +176,7 @@ def test_default_refraction_vertex_is_recorded_as_an_assumption(default_host):
 
 
 def test_mild_order_without_fit_angles_gets_no_warning(default_host, order_dict):
-    # Common practice: −1.00 −0.50 × 90 with no fit measurements needs no compensation and no warning.
+    # Policy: −1.00 −0.50 × 90 with no fit measurements gets no compensation and no warning, and says so.
     result = run_order(default_host, order_dict)
     assert result["status"] == "ready"
     assert not _codes(result, "warning") and not _codes(result, "review")
@@ -205,7 +206,7 @@ def test_strong_single_vision_without_vertex_distance_is_told(default_host, orde
 
 
 def test_equal_vertex_distances_need_no_compensation(default_host, order_dict):
-    # Source: vertex formula — d = 0 leaves F unchanged.
+    # Source: DOMAIN.md vertex formula (Jalie), F (I − dF)⁻¹ with d = 0 leaves F unchanged.
     order_dict["rx"]["vertex_mm"] = 13.0
     order_dict["fit"]["vertex_mm"] = 13.0
     result = run_order(default_host, order_dict)
@@ -219,7 +220,7 @@ def test_equal_vertex_distances_need_no_compensation(default_host, order_dict):
 
 
 def test_policy_never_applies_nothing_and_says_so():
-    # Source: issue 3 — a lab policy "never"; whatever the policy, the result says what was not applied.
+    # Policy (issue 3): a lab policy "never"; whatever the policy, the result says what was not applied.
     host = _host(vertex={"policy": "never"}, tilt={"policy": "never"})
     result = run_order(host, json.loads(SAMPLE.read_text()))
     for eye in ("right", "left"):
@@ -240,7 +241,7 @@ def test_policy_above_tolerance_skips_a_change_within_tolerance():
 
 
 def test_policy_above_tolerance_applies_a_change_beyond_tolerance(order_dict):
-    # Source: vertex formula and ANSI Z80.1-2015: −8.00 D refracted at 12 mm and worn at 16 mm (d = −0.004 m)
+    # Source: DOMAIN.md vertex formula (Jalie) and ANSI Z80.1-2015: −8.00 D refracted at 12 mm and worn at 16 mm (d = −0.004 m)
     # becomes −8 / (1 − dF) = −8 / (1 − 0.032) = −8.264 D (farther from the eye, a minus lens must be
     # stronger), a 0.26 D change, beyond the ±0.16 D (2 %) meridian tolerance (computed from the formulas).
     order_dict["rx"] = {"right": {"sphere": -8.0}, "vertex_mm": 12.0}
@@ -252,8 +253,8 @@ def test_policy_above_tolerance_applies_a_change_beyond_tolerance(order_dict):
 
 
 def test_tilt_design_switch_leaves_single_vision_alone():
-    # Source: DOMAIN.md (after Atchison & Tame 1993): a lab that lowers single-vision optical centres for
-    # pantoscopic tilt should not also compensate — a per-design policy.
+    # Policy (DOMAIN.md, after Atchison & Tame 1993): a lab that lowers single-vision optical centres for
+    # pantoscopic tilt should not also compensate — a per-design setting.
     data = json.loads(SAMPLE.read_text())
     data["lens"]["design"] = "single_vision"
     host = _host(tilt={"pantoscopic_apply_to": ["progressive", "bifocal"],
@@ -266,9 +267,8 @@ def test_tilt_design_switch_leaves_single_vision_alone():
 
 
 def test_face_form_is_compensated_on_a_design_left_out_for_pantoscopic_tilt(order_dict):
-    # Source: DOMAIN.md — lowering the optical centre (Atchison & Tame 1993) answers pantoscopic tilt only, so
+    # Policy (DOMAIN.md): lowering the optical centre (Atchison & Tame 1993) answers pantoscopic tilt only, so
     # a lab may leave single vision out of the pantoscopic compensation and still compensate its face form.
-    # Martin's formula for face form alone: the cylinder's axis is 90 (DOMAIN.md, tilt about the vertical).
     order_dict["rx"] = {"right": {"sphere": -4.0}, "left": {"sphere": -4.0}}
     order_dict["fit"].update({"pantoscopic_deg": 10.0, "face_form_deg": 20.0})
     result = run_order(_host(tilt={"pantoscopic_apply_to": ["progressive", "bifocal"]}), order_dict)
@@ -276,13 +276,18 @@ def test_face_form_is_compensated_on_a_design_left_out_for_pantoscopic_tilt(orde
     assert right["inputs"]["pantoscopic_deg"] == 0.0 and right["inputs"]["face_form_deg"] == 20.0
     assert any("pantoscopic tilt 10.0° not compensated" in a for a in right["inputs"]["assumptions"])
     surfacing = result["lenses"]["right"]["surfacing"]
-    # Face form alone turns the lens about the vertical: its principal meridians stay at 90 and 180, where a
-    # pantoscopic tilt mixed in would have turned them.
-    assert surfacing["cylinder"] != 0.0 and surfacing["axis"] in (90, 180)
+    # Source: Martin's formula (DOMAIN.md; Jalie), inverted: face form alone (20°, n 1.498) turns the lens about
+    # the vertical, so −4.00 is made as −4/k vertically and −4 cos²20°/k horizontally, k = 1 + sin²20°/(2n):
+    # −3.40 −0.45 × 180 (a pantoscopic tilt mixed in would have turned the meridians).
+    k = 1 + math.sin(math.radians(20.0)) ** 2 / (2 * 1.498)
+    vertical, horizontal = -4.0 / k, -4.0 * math.cos(math.radians(20.0)) ** 2 / k
+    assert surfacing["sphere"] == pytest.approx(horizontal, abs=0.005)
+    assert surfacing["cylinder"] == pytest.approx(vertical - horizontal, abs=0.0100001)
+    assert surfacing["axis"] == 180
 
 
 def test_unknown_stage_key_stops_the_engine():
-    # Source: TEAM_RULES.md — stage parameters are a pydantic model with extra="forbid".
+    # Policy: a stage's parameters are checked at start; an unknown key or value stops the engine.
     with pytest.raises(ConfigError, match="stages.tilt"):
         _host(tilt={"apply_too": ["progressive"]})
     with pytest.raises(ConfigError, match="stages.vertex"):
@@ -312,7 +317,7 @@ def test_large_vertex_change_holds_the_order_for_review(default_host, order_dict
 
 
 def test_review_threshold_is_configurable(order_dict):
-    # Source: issue 3 — flag thresholds configurable.
+    # Policy (issue 3): the review threshold is the lab's; at 1.0 D the 0.74 D change only warns.
     order_dict["rx"] = {"right": {"sphere": 10.0}, "vertex_mm": 12.0}
     order_dict["fit"] = {"right": {"pd_mm": 32.0}, "vertex_mm": 20.0}
     result = run_order(_host(vertex={"review_above_d": 1.0}), order_dict)
@@ -340,7 +345,8 @@ def test_tilt_of_a_strong_lens_warns_beyond_tolerance(default_host, order_dict):
 
 
 def test_plus_cylinder_lab_gets_plus_form_surfacing():
-    # Source: ORDER_FORMAT.md — surfacing in the lab's cylinder form; transposition (DOMAIN.md).
+    # Source: transposition (DOMAIN.md, the MRCOphth example's rule); policy (ORDER_FORMAT.md): surfacing in the
+    # lab's cylinder form.
     host = start_host(LabConfig.model_validate({"engine": {"cylinder_form": "plus"}}))
     result = run_order(host, json.loads(SAMPLE.read_text()))
     surfacing = result["lenses"]["right"]["surfacing"]
@@ -351,7 +357,7 @@ def test_plus_cylinder_lab_gets_plus_form_surfacing():
 
 
 def test_left_eye_only_order(default_host):
-    # Source: ORDER_FORMAT.md — an absent eye is not made.
+    # Policy (ORDER_FORMAT.md): an absent eye is not made.
     data = json.loads(SAMPLE.read_text())
     del data["rx"]["right"]
     del data["fit"]["right"]
@@ -361,8 +367,8 @@ def test_left_eye_only_order(default_host):
 
 
 def test_a_flag_never_shows_a_negative_zero(default_host):
-    # A plano meridian stays plano under vertex compensation (F(1 − dF)⁻¹ with F = 0 is 0, from the
-    # contract's formula); the flag shows its change as 0.0, never as −0.0.
+    # Source: DOMAIN.md vertex formula, F (I − dF)⁻¹ with F = 0 is 0: a plano meridian stays plano. Policy: the
+    # flag shows its change as 0.0, never as −0.0.
     order = sample_order()
     order["rx"]["left"] = {"sphere": 0.0, "cylinder": -1.0, "axis": 169}
     order["fit"]["vertex_mm"] = 13.5

@@ -71,11 +71,6 @@ def singlet(front_radius_mm: float, back_radius_mm: float, thickness_mm: float, 
     return opm
 
 
-def paraxial_back_vertex_power(opm: OpticalModel) -> float:
-    """1 / back focal length from rayoptics' paraxial first-order data, in dioptres."""
-    return 1000.0 / opm["analysis_results"]["parax_data"].fod.bfl
-
-
 def _exit_line(opm: OpticalModel, x: float, y: float,
                direction: tuple[float, float, float] = (0.0, 0.0, 1.0)) -> tuple[np.ndarray, np.ndarray]:
     """Where a ray starting at (x, y) on the object plane with the given direction leaves the back surface.

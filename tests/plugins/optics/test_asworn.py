@@ -21,7 +21,7 @@ from lenslane.plugins.optics.surfaces import back_vertex_power, surface_radius_m
 from lenslane.plugins.optics.thickness import LensShape, LensNotMakeable, solve_center_thickness
 from lenslane.plugins.optics.tilt import exact_thin_factor, martin_factor, tilt_obliquity, tilted_power
 from lenslane.plugins.optics.vertex import vertex_move
-from raytrace_reference import chief_exit, turn_about_z, vergence_matrix, worn_singlet
+from tests.plugins.optics.raytrace_reference import chief_exit, turn_about_z, vergence_matrix, worn_singlet
 
 
 def _worn(front, surfacing, thickness, index, pantoscopic=0.0, face_form=0.0, eye="right"):
@@ -427,7 +427,7 @@ def test_exact_compensation_solves_a_pair_whose_thicknesses_depend_on_each_other
 
 
 def test_exact_compensation_refuses_fronts_that_keep_changing():
-    # Source: issue 16 item 2 — a lens whose solved power keeps moving the lab's choice of front has no one
+    # Policy (issue 16 item 2): a lens whose solved power keeps moving the lab's choice of front has no one
     # consistent front curve, centre thickness and surfacing power: no lens is made.
     theta, t = tilt_obliquity(10.0, 0.0, "right")
     fronts = iter([6.0, 8.0] * 20)

@@ -60,7 +60,7 @@ def test_tscherning_flatter_form_has_no_seidel_astigmatism_in_rayoptics(power):
 
 def test_tscherning_has_no_solution_above_about_plus_7_2():
     # Source: DOMAIN.md, "No real root above about +7.2 D" (n 1.523, z 27 mm, distance); the limit is where the
-    # discriminant of the published equation vanishes.
+    # discriminant of the published equation vanishes, +7.214 D by bisection on it by hand.
     assert tscherning_limit_d(1.523, 27.0) == pytest.approx(7.2, abs=0.05)
     tscherning_front_curves(7.0, 1.523)
     with pytest.raises(NoBestForm, match=r"\+7\.2"):
@@ -68,7 +68,8 @@ def test_tscherning_has_no_solution_above_about_plus_7_2():
 
 
 def test_the_dispatcher_validates_the_method_name():
-    # Common practice: a registry of named methods; a misspelt name is refused, naming the known ones.
+    # Policy: a registry of named methods; a misspelt name is refused, naming the known ones. The values: Vogel's
+    # rule −4.00/2 + 6 = 4.00 D, and DOMAIN.md's Tscherning check value −5.00 → +5.04 (Sources as above).
     assert {"vogel", "tscherning"} <= set(FRONT_CURVE_METHODS)  # and those other modules register (exact_best_form)
     assert front_curve("vogel", -4.0) == pytest.approx(4.0)
     assert front_curve("tscherning", -5.0, 0.0, 1.523) == pytest.approx(5.04, abs=0.005)
@@ -77,7 +78,7 @@ def test_the_dispatcher_validates_the_method_name():
 
 
 def test_nearest_stocked_base_takes_the_flatter_on_a_tie():
-    # Common practice: snap to the stocked base nearest the wanted curve.
+    # Common practice: snap to the stocked base nearest the wanted curve. Policy: a tie goes to the flatter.
     stocked = [2.0, 4.0, 6.0, 8.0]
     assert nearest_stocked_base(4.75, stocked) == 4.0
     assert nearest_stocked_base(5.0, stocked) == 4.0

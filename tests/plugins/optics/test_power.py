@@ -50,18 +50,24 @@ def test_minus_cylinder_axis_meridian_carries_the_sphere():
 def test_principal_powers_match_numpy_eigenvalues():
     # Source: the principal powers are the eigenvalues of F (Harris); numpy.linalg.eigh as the reference.
     matrix = power_matrix(1.75, -2.25, 37)
-    expected = np.linalg.eigvalsh(np.array([[matrix.xx, matrix.xy], [matrix.xy, matrix.yy]]))
-    larger, smaller, _ = principal_powers(matrix)
+    expected, vectors = np.linalg.eigh(np.array([[matrix.xx, matrix.xy], [matrix.xy, matrix.yy]]))
+    larger, smaller, axis = principal_powers(matrix)
     assert (smaller, larger) == pytest.approx(tuple(expected))
+    # Source: DOMAIN.md (Long 1976): the axis is the direction of the larger power's eigenvector, 37° here.
+    assert (larger, smaller) == pytest.approx((1.75, -0.50))
+    direction = math.degrees(math.atan2(vectors[1, 1], vectors[0, 1])) % 180.0
+    assert axis % 180.0 == pytest.approx(direction) and direction == pytest.approx(37.0)
 
 
 @given(powers, cylinders, axes)
 def test_transposition_never_changes_the_power_matrix(sphere, cylinder, axis):
+    # Source: DOMAIN.md, plus- and minus-cylinder forms are the same lens (Long 1976: the same power matrix).
     assert matrix_close(power_matrix(sphere, cylinder, axis), power_matrix(*transpose(sphere, cylinder, axis)))
 
 
 @given(powers, cylinders, axes)
 def test_transposing_twice_is_the_identity(sphere, cylinder, axis):
+    # Source: DOMAIN.md transposition (S, C, ax) → (S + C, −C, ax ± 90°), applied twice gives back (S, C, ax).
     back = transpose(*transpose(sphere, cylinder, axis))
     assert back.sphere == pytest.approx(sphere, abs=1e-9)
     assert back.cylinder == pytest.approx(cylinder, abs=1e-12)
@@ -70,6 +76,8 @@ def test_transposing_twice_is_the_identity(sphere, cylinder, axis):
 
 @given(powers, cylinders, axes, st.sampled_from(["minus", "plus"]))
 def test_matrix_to_sphero_cylinder_round_trip(sphere, cylinder, axis, form):
+    # Source: DOMAIN.md (Long 1976; Harris): (S, C, α) from the eigenvalues of F gives back F; the spherical
+    # equivalent S + C/2 is half the trace of F, the same in either form; the axis is written 1–180 (ORDER_FORMAT.md).
     written = sphero_cylinder(power_matrix(sphere, cylinder, axis), form)
     assert matrix_close(power_matrix(*written), power_matrix(sphere, cylinder, axis), tol=1e-8)
     assert 0 < written.axis <= 180
@@ -81,4 +89,5 @@ def test_matrix_to_sphero_cylinder_round_trip(sphere, cylinder, axis, form):
 
 
 def test_spherical_lens_keeps_the_asked_axis():
+    # Policy: a sphere has no axis of its own, so the one asked for is written.
     assert sphero_cylinder(power_matrix(-2.0), axis_if_spherical=90) == (-2.0, 0.0, 90.0)

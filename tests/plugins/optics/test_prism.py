@@ -33,6 +33,8 @@ def test_opposite_components_cancel():
 
 
 def test_degrees_are_taken_as_given_for_either_eye():
+    # Source: ISO 8429 notation (DOMAIN.md, ORDER_FORMAT.md): a base in degrees is 0–360° alike for both eyes;
+    # 360° is 0°.
     assert resultant_prism([(3.0, 300.0)], "left").base_deg == pytest.approx(300.0)
     assert resultant_prism([(3.0, 360.0)], "right").base_deg == pytest.approx(0.0)
 

@@ -12,7 +12,7 @@ from lenslane.plugins.optics.power import PowerMatrix, power_matrix, principal_p
 from lenslane.plugins.optics.tilt import (
     compensate_tilt, exact_thin_factor, martin_factor, tangential_meridian_deg, tilt_obliquity, tilted_power,
 )
-from raytrace_reference import lens_normal, singlet, vergence_matrix
+from tests.plugins.optics.raytrace_reference import lens_normal, singlet, vergence_matrix
 
 
 def _rounded(matrix: PowerMatrix, form: str = "minus") -> tuple[float, float, float]:

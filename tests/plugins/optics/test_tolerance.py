@@ -45,7 +45,8 @@ def test_no_axis_tolerance_below_the_table():
 
 
 def test_boundaries_use_the_power_written_to_a_hundredth():
-    # Source: ANSI Z80.1-2015 rows are for labelled powers (to 0.01 D): 2.0000001 D belongs to "≤ 2.00".
+    # Policy: the ANSI Z80.1-2015 rows (DOMAIN.md) are read for powers written to 0.01 D, so 2.0000001 D belongs
+    # to "≤ 2.00".
     assert cylinder_tolerance(-2.0000001) == 0.13
     assert axis_tolerance(1.5000000001) == 3.0
 
@@ -58,7 +59,8 @@ def test_add_tolerance():
 
 
 def test_meridian_changes_follow_the_principal_meridians_of_the_lens_before():
-    # Source: meridian power by Euler's theorem on the power matrix (DOMAIN.md); Z80.1 sphere-meridian row.
+    # Source: meridian power by Euler's theorem on the power matrix (DOMAIN.md): −4.00 −1.00 × 30 has −4.00 along
+    # 30° and −5.00 along 120°, −4.10 −1.30 × 30 has −4.10 and −5.40; Z80.1 sphere-meridian row ±0.13 D.
     first, second = principal_meridian_changes(power_matrix(-4.0, -1.0, 30), power_matrix(-4.1, -1.3, 30))
     assert first.direction_deg == pytest.approx(30.0) and second.direction_deg == pytest.approx(120.0)
     assert first.change == pytest.approx(-0.1, abs=1e-12)
@@ -68,7 +70,8 @@ def test_meridian_changes_follow_the_principal_meridians_of_the_lens_before():
 
 def test_meridian_changes_of_a_sphere_use_the_meridians_after():
     # Source: Martin's formula (Jalie): a tilted sphere gains its cylinder across the tilt axis; every
-    # meridian of a sphere is principal, so the new lens's meridians are the ones compared.
+    # meridian of a sphere is principal, so the new lens's meridians are the ones compared: −8.10 along 180°,
+    # −8.40 along 90°; Z80.1 2 % of 8.00 D = ±0.16 D.
     first, second = principal_meridian_changes(power_matrix(-8.0), power_matrix(-8.1, -0.3, 180))
     assert {round(first.direction_deg) % 180, round(second.direction_deg) % 180} == {0, 90}
     assert sorted([round(first.change, 9), round(second.change, 9)]) == [-0.4, -0.1]

@@ -8,7 +8,8 @@ from hypothesis import strategies as st
 
 from lenslane.plugins.optics.power import PowerMatrix, power_matrix, principal_powers, sphero_cylinder
 from lenslane.plugins.optics.vertex import vertex_change_m, vertex_move, vertex_power
-from raytrace_reference import paraxial_back_vertex_power, singlet, vergence_matrix
+from tests.plugins.optics.lens_reference import paraxial_back_vertex_power, thick_lens
+from tests.plugins.optics.raytrace_reference import singlet, vergence_matrix
 
 # Source: DOMAIN.md vertex check values — spectacle lens at 12 mm → power at the cornea, from the vertex
 # formula F / (1 − dF) as in the standard vertex-conversion tables (computed from the formula).
@@ -99,7 +100,7 @@ def test_back_vertex_power_of_a_thick_lens_from_rayoptics():
     # Source: rayoptics 0.9.8 paraxial back focal length of the DOMAIN.md example lens — F₁ +10, F₂ −4,
     # t 6 mm, n 1.5 — against the thick-lens formula Fv = F₁/(1 − (t/n)F₁) + F₂ = +6.417 (computed from
     # the formula). Radii from F = (n − 1)/r: r₁ = 50 mm, r₂ = 125 mm.
-    opm = singlet(50.0, 125.0, 6.0, 1.5)
+    opm = thick_lens(50.0, 125.0, 6.0, 1.5)
     assert paraxial_back_vertex_power(opm) == pytest.approx(10.0 / (1 - 0.006 / 1.5 * 10.0) - 4.0, abs=1e-9)
     assert round(paraxial_back_vertex_power(opm), 3) == 6.417
     # The real-ray vergence at the back vertex agrees with the paraxial value.
