@@ -16,9 +16,10 @@ import time
 from pathlib import Path
 
 from lenslane.audit.log import AuditError
+from lenslane.config import ConfigError
 from lenslane.decide import requests
 from lenslane.decide.model import EXIT_BLOCKED, EXIT_NOT_TAKEN, EXIT_USAGE, DecisionError, DecisionResult
-from lenslane.lab.files import LabLocked, NotALabFolder, lock_lab, require_lab
+from lenslane.lab.files import LabLocked, NotALabFolder, lock_lab, read_lock, require_lab
 
 #: How long to wait for a running engine to answer (s); it normally answers in milliseconds.
 WAIT_SECONDS = 30.0
@@ -44,7 +45,11 @@ def decide(lab_root: Path, order_id: str, action: str, by: str, note: str, held_
     except NotALabFolder as exc:
         raise DecisionError(str(exc), EXIT_USAGE) from None
     request = requests.new_request(order_id, action, by, note, held_file)
-    path = requests.write_request(root, request)
+    try:
+        path = requests.write_request(root, request)
+    except OSError as exc:
+        raise DecisionError(f"cannot write the request in {requests.folder(root)}: {exc}; nothing was decided",
+                            EXIT_BLOCKED) from exc
     deadline = time.monotonic() + wait_seconds
     taken_deadline = None
     next_wake = 0.0
@@ -54,10 +59,15 @@ def decide(lab_root: Path, order_id: str, action: str, by: str, note: str, held_
             if isinstance(answer, DecisionError):
                 raise answer
             return answer
-        holder = _apply_if_free(root)
+        try:
+            holder = _apply_if_free(root)
+        except ConfigError as exc:  # nothing took the request: withdrawn, lest a later engine apply it unasked
+            path.unlink(missing_ok=True)
+            raise DecisionError(f"cannot load the lab's config and plugins: {exc}; nothing was decided",
+                                EXIT_USAGE) from None
         now = time.monotonic()
         if holder is not None and now >= next_wake:
-            _wake(holder)
+            _wake(root)
             next_wake = now + WAKE_SECONDS
         if now > deadline and taken_deadline is None:
             try:
@@ -81,6 +91,9 @@ def _apply_if_free(root: Path) -> str | None:
         lock = lock_lab(root)
     except LabLocked as exc:
         return exc.holder
+    except OSError as exc:
+        raise _blocked(root, exc) from exc
+    lab = None
     try:
         from lenslane.chain.host import start_host
         from lenslane.config import load_config
@@ -89,17 +102,21 @@ def _apply_if_free(root: Path) -> str | None:
 
         if requests.pending(root):
             lab = Lab(root, start_host(load_config(root)))
-            try:
-                lab.recover()  # as any holder of the lock does first: the log's tail, temp leftovers
-                with _time_limit(lab):
-                    Applier(lab).run_pending()
-            except (OSError, AuditError) as exc:
-                raise DecisionError(f"cannot write in {root}: {exc}; the decision is applied once or not at all — it "
-                                    "stays in decisions/ and is applied by the next lenslane watch or decide",
-                                    EXIT_BLOCKED) from exc
+            lab.recover()  # as any holder of the lock does first: the log's tail, temp leftovers
+            with _time_limit(lab):
+                Applier(lab).run_pending()
+    except (OSError, AuditError) as exc:
+        raise _blocked(root, exc) from exc
     finally:
+        if lab is not None and lab.audit is not None:
+            lab.audit.close()  # its index: a web page applies decisions in one long-running process
         os.close(lock)
     return None
+
+
+def _blocked(root: Path, exc: Exception) -> DecisionError:
+    return DecisionError(f"cannot write in {root}: {exc}; the decision is applied once or not at all — it stays in "
+                         "decisions/ and is applied by the next lenslane watch or decide", EXIT_BLOCKED)
 
 
 @contextlib.contextmanager
@@ -120,8 +137,13 @@ def _time_limit(lab):
         yield
 
 
-def _wake(holder: str) -> None:
+def _wake(root: Path) -> None:
+    """Wake the engine that holds the lab's lock (SIGUSR1), and only an engine: another ``lenslane decide`` or a web
+    page applying a decision holds it for a moment too, and has no handler for SIGUSR1, which would end it."""
+    pid, state, _ = read_lock(root)
+    if pid is None or not (state or {}).get("mode"):  # an engine's state line names its mode
+        return
     try:
-        os.kill(int(holder), signal.SIGUSR1)
-    except (ValueError, ProcessLookupError, PermissionError):
+        os.kill(pid, signal.SIGUSR1)
+    except (ProcessLookupError, PermissionError):
         pass  # the engine looks at decisions/ at every rescan anyway

@@ -18,7 +18,7 @@ from typing import Any, Callable
 
 from lenslane.audit.log import AuditError
 from lenslane.chain.host import start_host
-from lenslane.config import CONFIG_NAME, ConfigError, LabConfig, parse_config
+from lenslane.config import CONFIG_NAME, ConfigError, LabConfig, load_config
 from lenslane.decide.apply import Applier
 from lenslane.decide.model import DecisionError
 from lenslane.lab.folder import Interrupted, Lab
@@ -83,7 +83,7 @@ class Desk:
         path = self.lab.root / CONFIG_NAME
         old = self.lab.host.config_sha256
         try:
-            config = parse_config(path.read_text(encoding="utf-8"), str(path)) if path.exists() else LabConfig()
+            config = load_config(self.lab.root)
             host = start_host(config)
         except (ConfigError, OSError, UnicodeDecodeError) as exc:
             self.log.error("config refused", path=str(path), error=str(exc),
@@ -99,8 +99,8 @@ class Desk:
     def _check_drift(self, now: float) -> None:
         path = self.lab.root / CONFIG_NAME
         try:
-            on_disk = parse_config(path.read_text(encoding="utf-8"), str(path)) if path.exists() else LabConfig()
-            drift = None if on_disk == self.lab.config else "it was edited since the configuration in force was loaded"
+            edited = load_config(self.lab.root) != self.lab.config
+            drift = "it was edited since the configuration in force was loaded" if edited else None
         except (ConfigError, OSError, UnicodeDecodeError) as exc:
             drift = f"it is not valid ({exc})"
         if drift is None:

@@ -33,6 +33,14 @@ def _load(path: Path) -> Any:
         return None
 
 
+def _since(path: Path) -> float | None:
+    """When ``path`` began to wait (its modification time); ``None`` when it is gone (decided meanwhile)."""
+    try:
+        return path.stat().st_mtime
+    except FileNotFoundError:
+        return None
+
+
 def _names(folder: Path) -> list[str]:
     try:
         return sorted(n for n in os.listdir(folder) if not n.startswith("."))
@@ -76,10 +84,10 @@ def queue(lab_root: Path) -> list[QueueItem]:
             asked.setdefault(request["order_id"], f"{request.get('action')} by {request.get('by')}")
     items = []
     for name in _names(root / "review"):
+        since = _since(root / "review" / name)  # first: a file gone after it is read too is left out
         result = _load(root / "review" / name)
-        if not name.endswith(".json") or not isinstance(result, dict):
+        if not name.endswith(".json") or since is None or not isinstance(result, dict):
             continue
-        since = (root / "review" / name).stat().st_mtime
         items.append(QueueItem(
             kind="review", order_id=str(result.get("order_id")), path=f"review/{name}", since=_utc(since),
             age_seconds=round(now - since, 1), actions=("approve", "refuse"), decide=DECIDE_REVIEW,
@@ -88,12 +96,13 @@ def queue(lab_root: Path) -> list[QueueItem]:
     for name in _names(root / "held"):
         if not name.endswith(HELD_SUFFIX):
             continue
+        since = _since(root / "held" / name)
         report = _load(root / "held" / name)
         held_name = name.removesuffix(HELD_SUFFIX)
-        if not isinstance(report, dict) or not (root / "held" / held_name).exists():
+        held = _load(root / "held" / held_name)  # an order that passed intake: a JSON object while it is there
+        if since is None or not isinstance(report, dict) or not isinstance(held, dict):
             continue
         order_id = str(report.get("order_id"))
-        since = (root / "held" / name).stat().st_mtime
         published, compared = None, None
         for folder in ("outbox", "review"):
             result = _load(root / folder / f"{order_id}.json")
@@ -103,7 +112,7 @@ def queue(lab_root: Path) -> list[QueueItem]:
         items.append(QueueItem(
             kind="held", order_id=order_id, path=f"held/{held_name}", since=_utc(since),
             age_seconds=round(now - since, 1), actions=("replace", "discard"), decide=DECIDE_HELD,
-            differences=differences(published or {}, _load(root / "held" / held_name)), compared_with=compared,
+            differences=differences(published or {}, held), compared_with=compared,
             pending_request=asked.get(order_id)))
     items.sort(key=lambda item: (-item.age_seconds, item.order_id))
     return items

@@ -370,7 +370,8 @@ def lock_lab(root: Path) -> int:
 
     ``flock`` locks belong to the open file, so the kernel releases the lock
     when the holder exits in any way, ``kill -9`` included: a crash never blocks
-    a restart. Raises :class:`LabLocked` when another process holds it.
+    a restart. Raises :class:`LabLocked` when another process holds it, OSError when the lock file cannot be
+    opened or written (the lock is then not kept).
     """
     path = Path(root) / LOCK_NAME
     fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)
@@ -382,7 +383,11 @@ def lock_lab(root: Path) -> int:
         if exc.errno in (errno.EWOULDBLOCK, errno.EAGAIN, errno.EACCES):
             raise LabLocked(path, holder) from None
         raise
-    write_lock_state(fd, {})
+    try:
+        write_lock_state(fd, {})
+    except OSError:
+        os.close(fd)  # and with it the lock: a caller that goes on living must not keep the lab locked
+        raise
     return fd
 
 

@@ -151,6 +151,7 @@ class Daemon:
         self.health.retry_max_seconds = watch.retry_max_seconds
         self.clock.limit_seconds = watch.order_time_limit_seconds
         if self.supervisor is not None:
+            self.supervisor.rescan_seconds = watch.rescan_seconds  # told in its log line when it is rebuilt
             self.supervisor.use_setting(watch.observer)
         self.checkpoints.use(config)
 

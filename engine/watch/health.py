@@ -22,9 +22,12 @@ from lenslane.watch.retry import Backoff
 #: Steps that fail for one entry (not for the whole lab): tried this many times, then the entry is set aside.
 ENTRY_STEPS = frozenset({"claim", "read", "archive"})
 ENTRY_TRIES = 5
-#: A `lenslane decide` applying a decision while no engine runs holds the lab's lock for a moment
-#: (well under a second): an engine starting meanwhile waits this long for it before giving up (s).
+#: A `lenslane decide` applying a decision while no engine runs holds the lab's lock for a moment (an approve
+#: well under a second; a replace runs the chain, bounded by the order time limit): an engine starting
+#: meanwhile waits this long for it before giving up (s).
 LOCK_WAIT_SECONDS = 3.0
+#: What :meth:`Health.retrying` returns when a stop was asked while it waited.
+STOPPED = object()
 
 
 def _lock_waiting(root: Any) -> int:
@@ -36,8 +39,6 @@ def _lock_waiting(root: Any) -> int:
             if time.monotonic() >= deadline:
                 raise
             time.sleep(0.05)
-#: What :meth:`Health.retrying` returns when a stop was asked while it waited.
-STOPPED = object()
 
 
 class Health:
@@ -58,7 +59,8 @@ class Health:
             self.lock_fd = _lock_waiting(self.lab.root)
         except LabLocked as exc:
             self.log.error("lab locked", lab=str(self.lab.root), lock=str(exc.path), holder_pid=exc.holder,
-                           message="another lenslane watch is working on this lab; refusing to start")
+                           message="another lenslane process (a watch, or a decision being applied) holds this "
+                                   "lab; refusing to start")
             return None
         self.since = datetime.now(timezone.utc).isoformat(timespec="seconds").replace("+00:00", "Z")
         self.write_state()

@@ -16,15 +16,13 @@ import orjson
 import structlog
 
 
-def configure_logging(stream: IO[str] | None = None, *, level: int = logging.INFO, console: bool | None = None):
-    """Set up structlog for the process and return the engine's logger.
+def configure_logging(stream: IO[str] | None = None, *, console: bool | None = None):
+    """Set up structlog for the process and return the engine's logger (lines from level info up).
 
     Parameters
     ----------
     stream : text stream, optional
         Where the lines go; standard output by default.
-    level : int
-        The lowest level written (``logging.INFO`` by default).
     console : bool, optional
         Force the console renderer (``True``) or JSON lines (``False``); by
         default the console renderer is used only when ``stream`` is a terminal.
@@ -44,7 +42,7 @@ def configure_logging(stream: IO[str] | None = None, *, level: int = logging.INF
                       structlog.processors.JSONRenderer(serializer=_json_line)]
     structlog.configure(
         processors=processors,
-        wrapper_class=structlog.make_filtering_bound_logger(level),
+        wrapper_class=structlog.make_filtering_bound_logger(logging.INFO),
         logger_factory=structlog.PrintLoggerFactory(stream),
         # Not cached, so structlog.testing.capture_logs() sees every line in tests.
         cache_logger_on_first_use=False,

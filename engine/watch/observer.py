@@ -31,7 +31,7 @@ POLL_SECONDS = 1.0
 INOTIFY_LIMIT_ERRORS = frozenset({errno.ENOSPC, errno.EMFILE, errno.ENFILE, errno.ENOMEM})
 
 
-def _observer_classes():
+def _event_classes():
     from watchdog.events import DirCreatedEvent, DirMovedEvent, FileClosedEvent, FileCreatedEvent, FileMovedEvent
 
     return [FileCreatedEvent, FileMovedEvent, FileClosedEvent, DirCreatedEvent, DirMovedEvent]
@@ -100,7 +100,7 @@ def _polling_observer():
 
 def _scheduled(observer: Any, inbox: str, handler: InboxEvents) -> Any:
     try:
-        observer.schedule(handler, inbox, recursive=False, event_filter=_observer_classes())
+        observer.schedule(handler, inbox, recursive=False, event_filter=_event_classes())
         observer.start()
     except BaseException:
         try:

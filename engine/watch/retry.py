@@ -12,8 +12,7 @@ class Backoff:
     or ``None`` once ``tries`` failures are reached (give up).
     """
 
-    def __init__(self, most_seconds: float, tries: int | None = None, first_seconds: float = FIRST_RETRY_SECONDS):
-        self.first_seconds = first_seconds
+    def __init__(self, most_seconds: float, tries: int | None = None):
         self.most_seconds = most_seconds
         self.tries = tries
         self.failures = 0
@@ -22,7 +21,7 @@ class Backoff:
         self.failures += 1
         if self.tries is not None and self.failures >= self.tries:
             return None
-        return min(self.first_seconds * 2 ** (self.failures - 1), self.most_seconds)
+        return min(FIRST_RETRY_SECONDS * 2 ** (self.failures - 1), self.most_seconds)
 
     def reset(self) -> None:
         self.failures = 0

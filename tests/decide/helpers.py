@@ -9,6 +9,7 @@ from typing import Any
 from lenslane.audit.log import DEFINE_EVENT, iter_records, unpack
 from lenslane.audit.records import ref_of
 from tests.conftest import BASE_ORDER
+from tests.system.driver import FAST_WATCH
 
 
 def review_order(order_id: str) -> dict[str, Any]:
@@ -45,3 +46,9 @@ def records(lab: Path, event: str, order_id: str | None = None) -> list[dict[str
 
 def load(path: Path) -> Any:
     return json.loads(path.read_bytes())
+
+
+def config_text(extra: str = "", **watch: Any) -> str:
+    """A lab config: the test labs' watch settings (with ``watch`` changed), then ``extra``."""
+    lines = ["[watch]"] + [f"{key} = {json.dumps(value)}" for key, value in {**FAST_WATCH, **watch}.items()]
+    return "\n".join(lines) + "\n" + extra

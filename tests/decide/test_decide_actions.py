@@ -209,3 +209,40 @@ def test_a_move_left_half_done_by_a_crash_finishes_and_a_stranger_at_the_target_
                          "sha256": held_digest}])
     assert sha256(held) == held_digest
     assert (root / "archive" / "OK-0001-corrected.json").read_bytes() == b"someone else's\n"
+
+
+def test_a_decision_applied_with_no_engine_leaves_no_file_of_the_lab_open(lab):
+    """The web page applies decisions in its own long-running process: each must close what it opened (here the
+    audit index: a descriptor of its database file each time it is opened)."""
+    database = str(lab.root / "audit.sqlite")
+
+    def opened() -> int:
+        count = 0
+        for fd in os.listdir("/proc/self/fd"):
+            try:
+                count += os.readlink(f"/proc/self/fd/{fd}") == database
+            except OSError:
+                pass  # the listing's own descriptor, closed by now
+        return count
+
+    lab.audit.close()  # the fixture's own engine is done: its index is not counted
+    assert opened() == 0
+    decide(lab.root, "RV-0001", "approve", "tech-07", "checked")
+    decide(lab.root, "OK-0001", "discard", "tech-07", "sent twice")
+    assert opened() == 0
+
+
+def test_a_decision_refused_for_a_bad_config_is_not_applied_later(lab, capsys):
+    """No engine runs and the lab's config file is not valid: the person is told, and the request is withdrawn, so
+    that the next engine started on the mended config does not apply a decision its maker was told had failed."""
+    config = lab.root / "lenslane.toml"
+    config.write_text("[watch]\nrescan_secnds = 1\n")
+    assert main(["decide", str(lab.root), "RV-0001", "approve", "--by", "tech-07", "--note", "ok"]) == 2
+    assert "rescan_secnds" in capsys.readouterr().err
+    with pytest.raises(DecisionError) as refused:  # the web page's way: an error it shows, nothing recorded
+        decide(lab.root, "RV-0001", "approve", "tech-07", "ok")
+    assert refused.value.exit_code == EXIT_USAGE and "nothing was decided" in refused.value.message
+    assert os.listdir(lab.root / "decisions") == []
+    config.unlink()
+    assert main(["watch", str(lab.root), "--once"]) == 0
+    assert records(lab.root, "decided") == [] and (lab.root / "review" / "RV-0001.json").exists()

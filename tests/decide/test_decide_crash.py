@@ -16,7 +16,7 @@ from lenslane.audit.log import verify
 from lenslane.lab.folder import DECISION_STEPS
 from tests.conftest import REPO
 from tests.system.crashing import CRASH_EXIT_CODE
-from tests.decide.helpers import load, ready_order, records, review_order
+from tests.decide.helpers import config_text, load, ready_order, records, review_order
 from tests.system.driver import WAIT_SECONDS, Watch, environment, make_lab as make_lab_folder, drop
 
 
@@ -143,6 +143,21 @@ def test_a_decision_goes_through_the_running_engine(tmp_path):
         assert watch.stop() == 0
 
 
+def test_the_running_engine_is_woken_for_a_decision_between_its_rescans(tmp_path):
+    """The engine looks at decisions/ at every rescan; here rescans are an hour apart, so only the wake-up
+    (SIGUSR1) that lenslane decide sends can bring the decision to it within the command's wait."""
+    lab = prepared_lab(tmp_path)
+    (lab / "lenslane.toml").write_text(config_text(rescan_seconds=3600.0))
+    watch = Watch(lab)
+    try:
+        done = lenslane("decide", str(lab), "RV-0001", "approve", "--by", "tech-07", "--note", "checked", "--wait",
+                        "20")
+        assert done.returncode == 0, done.stderr
+        assert watch.wait_for("decision")["order_id"] == "RV-0001"
+    finally:
+        assert watch.stop() == 0
+
+
 def test_an_engine_killed_while_applying_a_decision_leaves_it_to_the_waiting_command(tmp_path):
     lab = prepared_lab(tmp_path)
     before = snapshot(lab)
@@ -190,3 +205,54 @@ def test_a_replacing_version_the_chain_refuses_leaves_the_published_result(tmp_p
     (rejected,) = records(lab, "rejected", "OK-0001")
     assert rejected["revision"] == 2 and "order time limit" in rejected["reasons"][0]["message"]
     assert verify(lab).ok
+
+
+def test_a_decide_that_holds_the_lock_is_not_woken_like_an_engine(tmp_path, fault_plugin):
+    """With no engine running, a second `lenslane decide` waits for the first, which holds the lab's lock while a
+    replace runs the chain: it must not send it the engine's wake-up (SIGUSR1 ends a process that has no handler
+    for it). Both decisions are applied, each by a process that ends normally."""
+    import json
+
+    from tests.system.driver import FAST_WATCH, FAULT_CHAIN, wait_until
+
+    lab = make_lab_folder(tmp_path / "lab", {**FAST_WATCH, "order_time_limit_seconds": 2.0}, chain=FAULT_CHAIN)
+    drop(lab, "RV-0001.json", json.dumps(review_order("RV-0001")).encode())
+    drop(lab, "OK-0001.json", json.dumps(ready_order("OK-0001")).encode())
+    assert lenslane("watch", str(lab), "--once", env=fault_plugin).returncode == 0
+    drop(lab, "OK-0001-hang.json", json.dumps({**ready_order("OK-0001"), "wearer": {"ref": "HANG"}}).encode())
+    assert lenslane("watch", str(lab), "--once", env=fault_plugin).returncode == 0
+    marker = tmp_path / "chain-running"
+    first = start_lenslane("decide", str(lab), "OK-0001", "replace", "--by", "tech-07", "--note", "new wearer ref",
+                           env={**fault_plugin, "LENSLANE_TEST_MARKER": str(marker)})
+    try:
+        wait_until(marker.exists, "the first decide to run the chain, holding the lab's lock")
+        second = lenslane("decide", str(lab), "RV-0001", "approve", "--by", "tech-09", "--note", "ok",
+                          env=fault_plugin)
+    finally:
+        out, err = first.communicate(timeout=WAIT_SECONDS)
+    assert first.returncode == 0, err
+    assert "refused by the chain" in out
+    assert second.returncode == 0, second.stderr
+    assert sorted(d["action"] for d in records(lab, "decided")) == ["approve", "replace"]
+    assert verify(lab).ok
+
+
+def test_a_lab_that_cannot_be_written_is_told_plainly(tmp_path):
+    """A full disk (here: a file size limit of 0 bytes, which fails every write the same way): the request cannot
+    even be written; the person is told so, with the folder, and nothing is decided."""
+    import resource
+
+    lab = prepared_lab(tmp_path)
+    before = snapshot(lab)
+
+    def no_room() -> None:
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)  # the write fails with EFBIG instead of ending the process
+        resource.setrlimit(resource.RLIMIT_FSIZE, (0, 0))
+
+    done = subprocess.run([sys.executable, "-m", "lenslane.cli", "decide", str(lab), "RV-0001", "approve", "--by",
+                           "tech-07", "--note", "ok"], capture_output=True, text=True, cwd=REPO, env=environment(),
+                          timeout=WAIT_SECONDS, preexec_fn=no_room)
+    assert done.returncode == 1, done.stderr
+    assert "Traceback" not in done.stderr
+    assert f"cannot write the request in {lab / 'decisions'}" in done.stderr and "nothing was decided" in done.stderr
+    assert snapshot(lab) == before and os.listdir(lab / "decisions") == [] and records(lab, "decided") == []

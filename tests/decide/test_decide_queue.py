@@ -84,3 +84,35 @@ def test_differences_name_every_field_that_differs():
 def test_ages_read_as_a_person_says_them():
     assert [age_text(s) for s in (5, 125, 3 * 3600 + 5 * 60, 2 * 86400 + 4 * 3600)] == \
         ["5 s", "2 min", "3 h 05 min", "2 d 04 h"]
+
+
+def test_the_queue_is_read_while_decisions_move_its_files(make_lab, drop):
+    """The web page lists the queue while the engine applies decisions: a file taken away between the moments the
+    listing reads it is left out of that listing, never an error. Here a person moves the results in and out."""
+    import threading
+
+    lab = make_lab()
+    drop(lab, ready_order("OK-0001"))
+    lab.drain()
+    drop(lab, ready_order("OK-0001", sphere=-1.50), "OK-0001-corrected.json")
+    drop(lab, review_order("RV-0001"))
+    lab.drain()
+    moving = [lab.root / "review" / "RV-0001.json", lab.root / "held" / "OK-0001-corrected.json.held.json"]
+    stop = threading.Event()
+
+    def move_back_and_forth() -> None:
+        while not stop.is_set():
+            for path in moving:
+                path.rename(lab.root / path.name)
+                (lab.root / path.name).rename(path)
+
+    mover = threading.Thread(target=move_back_and_forth)
+    mover.start()
+    try:
+        seen = set()
+        for _ in range(3000):
+            seen.update(item.kind for item in queue(lab.root))
+    finally:
+        stop.set()
+        mover.join()
+    assert seen == {"review", "held"}  # both listed when they were there

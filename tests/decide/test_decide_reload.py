@@ -4,13 +4,8 @@ from __future__ import annotations
 import json
 import signal
 
-from tests.decide.helpers import ready_order, records
+from tests.decide.helpers import config_text, ready_order, records
 from tests.system.driver import FAST_WATCH, Watch, drop, make_lab, wait_until
-
-
-def config_text(extra: str = "") -> str:
-    lines = ["[watch]"] + [f"{key} = {json.dumps(value)}" for key, value in FAST_WATCH.items()]
-    return "\n".join(lines) + "\n" + extra
 
 
 def published_config(lab, order_id):
@@ -59,5 +54,19 @@ def test_a_file_edited_without_sighup_is_warned_about_and_not_used(tmp_path):
         result = json.loads((lab / "outbox" / "B-1.json").read_bytes())
         assert result["lenses"]["right"]["rx"]["cylinder"] < 0  # still the minus form in force
         assert not watch.events("config reloaded")
+    finally:
+        assert watch.stop() == 0
+
+
+def test_an_observer_rebuilt_after_a_reload_logs_the_settings_in_force(tmp_path):
+    lab = make_lab(tmp_path / "lab")
+    watch = Watch(lab)
+    try:
+        assert watch.events("observer")[0]["rescan_seconds"] == FAST_WATCH["rescan_seconds"]
+        (lab / "lenslane.toml").write_text(config_text(rescan_seconds=2.5, observer="polling"))
+        watch.process.send_signal(signal.SIGHUP)
+        watch.wait_for("observer rebuilt")
+        (_, rebuilt) = watch.events("observer")
+        assert rebuilt["kind"] == "polling" and rebuilt["rescan_seconds"] == 2.5
     finally:
         assert watch.stop() == 0

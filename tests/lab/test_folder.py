@@ -7,6 +7,8 @@ import io
 import json
 import os
 import signal
+import subprocess
+import sys
 import time
 
 import pytest
@@ -243,6 +245,24 @@ def test_a_second_lock_on_the_lab_is_refused_until_the_first_is_released(tmp_pat
     assert refused.value.holder == str(os.getpid())
     os.close(first)
     os.close(lock_lab(tmp_path))
+
+
+def test_a_lock_whose_state_cannot_be_written_is_released(tmp_path):
+    """Taking a new lock file on a full disk (here a file size limit of 0 bytes) fails, and lets the lock go: a web
+    page that applies decisions would otherwise hold the lab's lock for as long as it runs."""
+    script = ("import errno, fcntl, os, resource, signal, sys\n"
+              "from lenslane.lab.files import lock_lab\n"
+              "signal.signal(signal.SIGXFSZ, signal.SIG_IGN)\n"
+              "resource.setrlimit(resource.RLIMIT_FSIZE, (0, 0))\n"
+              "try:\n"
+              "    lock_lab(sys.argv[1])\n"
+              "except OSError as exc:\n"
+              "    print(errno.errorcode[exc.errno])\n"
+              "fd = os.open(os.path.join(sys.argv[1], '.lock'), os.O_RDWR)\n"
+              "fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)\n"
+              "print('free')\n")
+    done = subprocess.run([sys.executable, "-c", script, str(tmp_path)], capture_output=True, text=True, timeout=60)
+    assert (done.returncode, done.stdout) == (0, "EFBIG\nfree\n"), done.stderr
 
 
 def test_log_lines_are_json_off_a_terminal_and_readable_on_one():
