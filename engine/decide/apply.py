@@ -103,7 +103,7 @@ class Applier:
                                   "flags_acknowledged": acknowledged}
             approved = result_bytes(result)
             target = f"outbox/{order_id}.json"
-            create_durably(self.root / target, approved)
+            self._create_result(target, approved)
             decided.update(result=target, result_sha256=hashlib.sha256(approved).hexdigest(), status="ready",
                            flags_acknowledged=acknowledged, moves=[{"from": path, "to": None, "sha256": placed.sha256}])
             message = f"approved: {target} published with status ready"
@@ -177,6 +177,10 @@ class Applier:
             return f"the new version was refused by the chain ({reasons[0]['field']}: {reasons[0]['message']}); " \
                    "the published result stays"
         current = log.current()
+        folder = "review" if result["status"] == "review" else "outbox"
+        target = f"{folder}/{order_id}.json"
+        if (self.root / target).exists() and (current is None or current[0] != target):
+            raise _stranger(target)  # before anything is kept or written
         superseded = archived = None
         if current is not None:
             path, placed = current
@@ -187,12 +191,13 @@ class Applier:
         result["revision"] = revision
         if superseded:
             result["supersedes"] = superseded
-        folder = "review" if result["status"] == "review" else "outbox"
-        target = f"{folder}/{order_id}.json"
         published = result_bytes(result)
         # Only the result this revision supersedes, kept in archive/ by now, may be written over.
         replaces = current is not None and archived is not None and current[0] == target
-        (write_durably if replaces else create_durably)(self.root / target, published)
+        if replaces:
+            write_durably(self.root / target, published)
+        else:
+            self._create_result(target, published)
         destination = free_name(self.root / "archive", name, claim_tag(request["request"]))
         moves.append({"from": held, "to": f"archive/{destination}", "sha256": log.held[held]})
         decided.update(revision=revision, outcome=folder)
@@ -205,6 +210,15 @@ class Applier:
         waits = " and waits for review" if folder == "review" else ""
         return f"replaced: revision {revision} published as {target}{waits}" + (
             f"; the superseded result is kept as {decided['supersedes']['archived']}" if superseded else "")
+
+    def _create_result(self, target: str, data: bytes) -> None:
+        """Write a result where the decision's record will place it. A file already there that the log does not
+        place there is no one's to replace: it is kept as it is, and nothing is decided (not retried: waiting
+        would not change it, and the requests after this one must not wait behind it)."""
+        try:
+            create_durably(self.root / target, data)
+        except FileExistsError:
+            raise _stranger(target) from None
 
     def _keep(self, path: str, sha256: str, base: str, request_id: str) -> str | None:
         """Hard-link the result a revision supersedes into archive/ (step 2); returns its path there."""
@@ -306,3 +320,9 @@ def _result_of(record: dict[str, Any], message: str | None = None) -> DecisionRe
                           decided_at=record["decided_at"], request=record["request"], seq=record["seq"],
                           message=message, result=record.get("result"), result_sha256=record.get("result_sha256"),
                           status=record.get("status"))
+
+
+def _stranger(target: str) -> DecisionError:
+    return DecisionError(f"{target} is already there, a file the audit log does not account for; it is kept as it is "
+                         "and nothing was decided — move it out of the lab's folders (keep it elsewhere) and decide "
+                         "again", EXIT_MISMATCH)

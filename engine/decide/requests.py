@@ -86,12 +86,14 @@ def write_request(lab_root: Path, request: dict[str, Any]) -> Path:
 
 def pending(lab_root: Path) -> list[Path]:
     """Requests not yet finished, oldest first (their names start with the time they were made):
-    ``<id>.json`` waiting, ``<id>.taken`` taken by an applier that has not finished it."""
+    ``<id>.json`` waiting, ``<id>.taken`` taken by an applier that has not finished it. Only plain files are
+    requests (``lenslane decide`` writes them): a folder or link of such a name is no request, and never one that
+    stops the requests after it."""
     try:
-        names = os.listdir(folder(lab_root))
+        entries = list(os.scandir(folder(lab_root)))
     except FileNotFoundError:
         return []
-    return [folder(lab_root) / n for n in sorted(names)
+    return [folder(lab_root) / n for n in sorted(entry.name for entry in entries if entry.is_file(follow_symlinks=False))
             if not n.startswith(".") and (n.endswith(TAKEN_SUFFIX) or n.endswith(".json") and not n.endswith(ANSWER_SUFFIX))]
 
 

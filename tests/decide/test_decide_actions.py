@@ -185,9 +185,40 @@ def test_an_approval_never_writes_over_a_file_it_does_not_account_for(lab):
     stranger.write_bytes(b'{"not": "ours"}\n')
     with pytest.raises(DecisionError) as raised:
         decide(root, "RV-0001", "approve", "tech-07", "checked")
-    assert "cannot write" in raised.value.message
+    assert raised.value.exit_code == EXIT_MISMATCH
+    assert raised.value.message.startswith("outbox/RV-0001.json is already there, a file the audit log does not "
+                                           "account for; it is kept as it is and nothing was decided")
     assert stranger.read_bytes() == b'{"not": "ours"}\n' and (root / "review" / "RV-0001.json").exists()
     assert records(root, "decided") == []
+    # Answered, not left to be retried: the next decision in the lab is not stuck behind it.
+    assert [p.name for p in (root / "decisions").iterdir() if not p.name.endswith(".answer.json")] == []
+    decide(root, "OK-0001", "discard", "tech-07", "the practice withdrew the correction")
+    assert [d["action"] for d in records(root, "decided")] == ["discard"]
+
+
+def test_a_replace_onto_a_result_file_the_log_does_not_know_is_refused_and_blocks_nothing(make_lab, drop):
+    """An order held because outbox/ already holds a file under its id that the engine did not write: replacing
+    it would write over that file, so nothing is decided, and the lab's other decisions go on."""
+    lab = make_lab()
+    drop(lab, review_order("RV-0001"))
+    (lab.root / "outbox" / "ST-0001.json").write_bytes(b"a stranger's result\n")
+    drop(lab, ready_order("ST-0001"))
+    assert sorted(p.outcome for p in lab.drain()) == ["held", "published"]
+    with pytest.raises(DecisionError) as raised:
+        decide(lab.root, "ST-0001", "replace", "tech-07", "the practice resent it")
+    assert raised.value.exit_code == EXIT_MISMATCH and "outbox/ST-0001.json is already there" in raised.value.message
+    assert (lab.root / "outbox" / "ST-0001.json").read_bytes() == b"a stranger's result\n"
+    root = lab.root
+    assert not [name for name in os.listdir(root / "archive") if name.startswith("ST-0001")]
+    assert records(root, "decided") == [] and len(os.listdir(root / "held")) == 2  # the held version and its report
+    decide(root, "RV-0001", "approve", "tech-07", "checked")
+    assert [d["action"] for d in records(root, "decided")] == ["approve"]
+
+
+def test_a_folder_named_like_a_request_is_no_request_and_stops_none(lab):
+    (lab.root / "decisions" / "00000000000000000000-stray.json").mkdir()
+    decide(lab.root, "RV-0001", "approve", "tech-07", "checked")
+    assert [d["action"] for d in records(lab.root, "decided")] == ["approve"]
 
 
 def test_a_move_left_half_done_by_a_crash_finishes_and_a_stranger_at_the_target_is_kept(lab):
