@@ -4,6 +4,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import sqlite3
 import sys
 from pathlib import Path
 
@@ -414,6 +415,9 @@ def main(argv: list[str] | None = None) -> int:
     except NotALabFolder as exc:
         print(f"lenslane: {exc}", file=sys.stderr)
         return 2
+    except sqlite3.OperationalError as exc:  # the audit index on a full disk, say: said, not a traceback
+        print(f"lenslane: the lab's audit index (audit.sqlite) cannot be used: {exc}", file=sys.stderr)
+        return 1
 
 
 if __name__ == "__main__":  # pragma: no cover

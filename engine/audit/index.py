@@ -108,7 +108,8 @@ class Index:
 
     ``writable=False`` never creates or changes the file on disk: when it is
     missing or behind, an index is built in memory instead (for a lab folder
-    the reader may not write to).
+    the reader may not write to). An index this process may not write (another
+    user's lab) is opened so too: it is read, never removed or rewritten.
     """
 
     def __init__(self, lab_root: Path, writable: bool = True):
@@ -120,6 +121,8 @@ class Index:
     # -- opening, and starting again -------------------------------------------
 
     def _open(self) -> sqlite3.Connection:
+        if self.writable and not self._may_write():
+            self.writable = False
         if self.writable:
             if not self.path.exists():
                 self._remove()  # a journal left beside a removed index belongs to nothing now
@@ -158,6 +161,10 @@ class Index:
             raise
         return db
 
+    def _may_write(self) -> bool:
+        """Whether this process may change the index: write in the lab folder, and the file itself if it is there."""
+        return os.access(self.root, os.W_OK) and (not self.path.exists() or os.access(self.path, os.W_OK))
+
     def _remove(self) -> None:
         for suffix in ("", "-wal", "-shm"):
             with contextlib.suppress(FileNotFoundError):
@@ -193,6 +200,11 @@ class Index:
         """Bring the index level with the log; returns what it did: ``level``, ``caught up`` or ``rebuilt``."""
         try:
             return self._catch_up()
+        except sqlite3.OperationalError:  # a full disk, a read-only file: not damage
+            if self.writable:
+                raise  # the caller decides (the engine blocks and retries)
+            self.rebuild()  # a read-only index behind the log: answered from memory
+            return "rebuilt"
         except sqlite3.DatabaseError:  # damaged where opening it did not look
             self.rebuild()
             return "rebuilt"
@@ -251,7 +263,8 @@ class Index:
             self._add(placed, self.meta("tail_seq") or 0)
             db.execute("COMMIT")
         except BaseException:
-            db.execute("ROLLBACK")
+            if db.in_transaction:  # a failed COMMIT (a full disk) may have rolled it back already
+                db.execute("ROLLBACK")
             raise
 
     def _add(self, placed: Iterable[tuple[dict[str, Any], int, int, int]], after: int) -> None:

@@ -53,7 +53,11 @@ class AuditLog:
         self.rotate_period = rotate_period
         self.index = Index(self.path.parent)
         self.index_state = "level"
-        self._load()
+        try:
+            self._load()
+        except BaseException:
+            self.index.close()
+            raise
 
     def close(self) -> None:
         """Close the index (the log itself is opened only for each write)."""
@@ -73,7 +77,11 @@ class AuditLog:
         else:
             self.seq, self.prev = self._end_of_rotated_files()
             self.first_seq, self.first_ts = None, None
-        self.index_state = self.index.catch_up()
+        try:
+            self.index_state = self.index.catch_up()
+        except sqlite3.Error as exc:  # a full disk…: the log is not appended to until its index is level again
+            self._must_reload = True
+            raise AuditError(f"the audit index {self.index.path} cannot be brought level with the log: {exc}") from exc
         if tail.end < tail.size:
             self._close_torn_tail(tail)
         elif tail.newline_missing:

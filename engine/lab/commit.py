@@ -17,7 +17,7 @@ import os
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any, Callable
 
-from lenslane.audit.log import AuditError, AuditLog
+from lenslane.audit.log import AUDIT_NAME, AuditError, AuditLog
 from lenslane.lab.errors import OutputBlocked
 from lenslane.lab.files import fsync_dir, make_durable, publish_file, rename_noreplace
 from lenslane.lab.history import FinalRecord, History
@@ -70,6 +70,7 @@ class GroupCommit:
         history answers from its index."""
         if self.audit is not None:
             self.audit.close()
+            self.audit = None  # until one opens: a log that cannot be opened now is opened again at the next commit
         self.audit = self._open_audit()
         self.history.use(self.audit.index)
 
@@ -174,12 +175,12 @@ class GroupCommit:
         unrecorded = [pending for pending in orders if not pending.recorded_in_log]
         if not unrecorded:
             return
-        if self.audit is None:
-            self.open_audit()
         try:
+            if self.audit is None:
+                self.open_audit()
             self.audit.append([pending.record for pending in unrecorded])
         except (OSError, AuditError) as exc:
-            raise OutputBlocked("audit", self.audit.path, exc, unrecorded[0].work_name) from exc
+            raise OutputBlocked("audit", os.path.join(self.root, AUDIT_NAME), exc, unrecorded[0].work_name) from exc
         for pending in unrecorded:
             pending.recorded_in_log = True
             self.history.note_final(pending.claim, pending.final)

@@ -100,3 +100,40 @@ def test_history_answers_the_lab_from_the_index(make_lab, drop, order_dict):
     claim = published[-1]["received"]["claim"]
     assert history.final_record(claim).seq == published[-1]["seq"]  # the lab's FinalRecord
     assert history.final_record("0:0") is None
+
+
+@contextlib.contextmanager
+def read_only(*paths):
+    """The paths as a reader who may not write them sees them: immutable for root (whom modes do not stop), else
+    without write permission; given back afterwards."""
+    import os
+    import subprocess
+
+    if os.geteuid() == 0:
+        subprocess.run(["chattr", "+i", *map(str, paths)], check=True)
+        try:
+            yield
+        finally:
+            subprocess.run(["chattr", "-i", *map(str, paths)], check=True)
+        return
+    modes = {path: path.stat().st_mode for path in paths}
+    for path in paths:
+        path.chmod(modes[path] & ~0o222)
+    try:
+        yield
+    finally:
+        for path, mode in modes.items():
+            path.chmod(mode)
+
+
+def test_a_reader_who_may_not_write_the_lab_reads_its_index_and_never_removes_it(busy_lab, capsys):
+    root = busy_lab.root
+    before = snapshot(root)
+    journal = [path for path in (root / f"{INDEX_NAME}-wal", root / f"{INDEX_NAME}-shm") if path.exists()]
+    with read_only(root / INDEX_NAME, *journal, root):
+        assert main(["explain", str(root), "TST-0003"]) == 0
+        assert "TST-0003" in capsys.readouterr().out
+        assert main(["audit", "verify", str(root), "--full"]) == 0
+        assert capsys.readouterr().out.startswith("audit log intact")
+        assert (root / INDEX_NAME).exists()
+    assert snapshot(root) == before  # the index is there, unchanged

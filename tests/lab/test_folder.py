@@ -122,6 +122,34 @@ def test_orders_made_final_before_a_failure_are_returned_by_the_next_commit(lab,
     assert [p.order_id for p in lab.commit()] == ["FINAL-1", "FINAL-2"]  # neither is lost to the log
 
 
+def test_an_audit_index_that_cannot_grow_blocks_the_commit_and_the_retry_finishes_it(lab):
+    # SQLite's own page limit gives the index the error a full disk gives (SQLITE_FULL): the batch's records and
+    # input wait, the commit says it is blocked (the engine retries it), and nothing is lost or written twice.
+    import lenslane.lab.folder
+    from lenslane.audit.log import iter_records, verify
+
+    _process(lab, "FULL-1")
+    assert [p.order_id for p in lab.commit()] == ["FULL-1"]
+    index = lab.audit.index.db
+    pages = index.execute("PRAGMA page_count").fetchone()[0]
+    index.execute(f"PRAGMA max_page_count = {pages}")
+    _process(lab, *(f"FULL-{n}" for n in range(2, 121)))
+    assert len(lab.commit()) == 119  # on disk in the log; the index could not follow
+    assert lab.audit.index.tail().seq < lab.audit.seq
+    _process(lab, *(f"FULL-{n}" for n in range(121, 140)))
+    for _ in range(2):  # the next commit must bring the index level first, and cannot: blocked, and again
+        with pytest.raises(lenslane.lab.folder.OutputBlocked) as blocked:
+            lab.commit()
+        assert blocked.value.step == "audit" and "full" in str(blocked.value.error)
+    assert len(claimed(lab.root)) == 19
+    lab.audit.index.db.execute("PRAGMA max_page_count = 1073741823")  # room again
+    assert len(lab.commit()) == 19
+    assert claimed(lab.root) == [] and len(os.listdir(lab.outbox)) == 139
+    published = [r["order_id"] for r in iter_records(lab.root) if r.get("event") == "published"]
+    assert sorted(published) == sorted(f"FULL-{n}" for n in range(1, 140))
+    assert verify(lab.root, full=True).ok
+
+
 def test_a_fresh_file_written_in_place_waits_for_its_quiet_time(lab):
     (lab.inbox / "fresh.json").write_bytes(NON_ASCII_ORDER)
     outcome = lab.consider("fresh.json")
