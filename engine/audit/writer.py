@@ -22,7 +22,7 @@ from typing import Any, Iterable
 from lenslane.audit.index import Index
 from lenslane.audit.reader import AUDIT_NAME, audit_files, first_record, read_tail, rotated_name
 from lenslane.audit.records import CHAIN_FIELDS, GENESIS, TORN_EVENT, Packer, canonical, utc_now
-from lenslane.lab.files import fsync_dir, write_all
+from lenslane.lab.files import fsync_dir, rename_noreplace, write_all
 
 #: How much of the first record's timestamp names the rotation period.
 PERIOD_PREFIX = {"day": 10, "month": 7}
@@ -167,9 +167,10 @@ class AuditLog:
 
     def _rotate(self) -> None:
         target = self.path.with_name(rotated_name(self.first_seq))
-        if target.exists():
-            raise AuditError(f"cannot rotate {self.path.name}: {target.name} already exists")
-        os.rename(self.path, target)
+        try:
+            rename_noreplace(self.path, target)
+        except FileExistsError:
+            raise AuditError(f"cannot rotate {self.path.name}: {target.name} already exists") from None
         fsync_dir(self.path.parent)
         self.size, self.first_seq, self.first_ts = 0, None, None
 

@@ -67,7 +67,8 @@ def lab_status(root: Path, now: float | None = None) -> dict[str, Any]:
         "not_taken": state.get("not_taken", []),
         "not_taken_as_of": "the running engine" if holder else ("the last engine's run" if state else None),
         "audit": {"bytes": history.size(), "last_record": None if last is None else {
-            key: last.get(key) for key in ("seq", "ts", "event", "order_id", "file")}},
+            **{key: last.get(key) for key in ("seq", "ts", "event", "order_id")},
+            "file": (last.get("received") or {}).get("file")}},  # the input's name, as it arrived
     }
 
 

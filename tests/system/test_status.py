@@ -36,6 +36,7 @@ def test_status_beside_a_running_engine_and_after_it_stopped(tmp_path):
                                   "archive": 3, "decisions": 0}
     last = list(iter_records(lab))[-1]
     assert running["audit"]["last_record"]["seq"] == last["seq"]
+    assert running["audit"]["last_record"]["file"] == last["received"]["file"]  # the input's name, as it arrived
     assert running["audit"]["bytes"] == sum(p.stat().st_size for p in audit_files(lab))
     assert running["not_taken"] == [] and running["oldest_waiting"] is None
     assert f"engine: running, pid {watch.process.pid}" in status(lab)
