@@ -28,6 +28,7 @@ import time
 from pathlib import Path
 from typing import Any, Callable
 
+from lenslane.audit.log import AuditError
 from lenslane.chain.host import Host
 from lenslane.decide.desk import Desk
 from lenslane.lab.errors import Interrupted, OutputBlocked
@@ -43,6 +44,8 @@ from lenslane.watch.tally import Tally
 
 EXIT_OK = 0
 EXIT_OBSERVER_FAILED = 1
+#: The lab cannot be made ready at start (its lock file, its audit log or work/ cannot be written): said, exit 1.
+EXIT_CANNOT_START = 1
 EXIT_LAB_LOCKED = 3
 
 #: After SIGTERM/SIGINT, how long a running stage may still take before it is interrupted (s).
@@ -81,25 +84,38 @@ class Daemon:
     # -- start and stop ----------------------------------------------------------
 
     def run(self) -> int:
-        lock = self.health.lock()
-        if lock is None:
-            return EXIT_LAB_LOCKED
+        # The handlers come first: a lenslane decide may send its wake-up as soon as the lock file names this engine.
         handlers = {signal.SIGTERM: self._on_stop, signal.SIGINT: self._on_stop, signal.SIGALRM: self.clock.on_alarm,
                     signal.SIGUSR1: lambda *_: self._wake(self.desk.wake)}
         if not self.once:
             handlers[signal.SIGHUP] = lambda *_: self._wake(self.desk.ask_reload)
-        try:
-            with signals_handled(handlers):
+        with signals_handled(handlers):
+            try:
+                lock = self.health.lock()
+            except OSError as exc:
+                return self._cannot_start("lock file", exc)
+            if lock is None:
+                return EXIT_LAB_LOCKED
+            try:
                 return self._run_locked()
-        finally:
-            if self.supervisor is not None:
-                self.supervisor.stop()
-            os.close(lock)  # the kernel would release it anyway
+            finally:
+                if self.supervisor is not None:
+                    self.supervisor.stop()
+                os.close(lock)  # the kernel would release it anyway
+
+    def _cannot_start(self, what: str, exc: BaseException) -> int:
+        self.log.error("cannot start", lab=str(self.lab.root), error=str(exc),
+                       message=f"the lab's {what} cannot be written (a full disk, or a folder this user may not "
+                               "write); nothing was taken from the inbox")
+        return EXIT_CANNOT_START
 
     def _run_locked(self) -> int:
         lab = self.lab
         self.tally.starting(lab, "once" if self.once else "watch")
-        claimed = lab.recover()
+        try:
+            claimed = lab.recover()
+        except (OSError, AuditError) as exc:
+            return self._cannot_start("audit log or work/", exc)
         self.checkpoints.start()
         if claimed:
             self.log.info("recovering", claimed=len(claimed),

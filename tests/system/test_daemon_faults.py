@@ -141,3 +141,27 @@ def test_the_daemon_exits_non_zero_when_the_observer_cannot_be_rebuilt(tmp_path)
     os.rmdir(lab / "inbox")
     assert watch.wait() == 1
     assert watch.events("observer cannot be rebuilt")
+
+
+@pytest.mark.parametrize("file_size_limit, what", [(0, "lock file"), (4096, "audit log or work/")])
+def test_a_lab_that_cannot_be_written_at_start_is_said_and_nothing_is_taken(tmp_path, file_size_limit, what):
+    # A full disk, as the kernel's file-size limit makes one (EFBIG for every write past it): with no room for
+    # the lock file's state, or for closing the audit log's torn last line, the engine says it cannot start,
+    # exit 1 (the service manager starts it again), with no traceback, and the inbox is as it was.
+    import resource
+    import sys
+
+    lab = make_lab(tmp_path / "lab")
+    drop(lab, "first.json", order_bytes("FS-1"))
+    assert run_once(lab).returncode == 0
+    with open(lab / "audit.jsonl", "ab") as log:
+        log.write(b'{"seq": 99, "torn')  # a crash cut the last line short: closing it needs a write
+    drop(lab, "second.json", order_bytes("FS-2"))
+    assert (lab / "audit.jsonl").stat().st_size > 4096
+    done = subprocess.run([sys.executable, "-m", "lenslane.cli", "watch", str(lab), "--once"], capture_output=True,
+                          text=True, timeout=60, preexec_fn=lambda: resource.setrlimit(
+                              resource.RLIMIT_FSIZE, (file_size_limit, file_size_limit)))
+    assert done.returncode == 1 and "Traceback" not in done.stderr
+    [line] = [json.loads(text) for text in done.stderr.splitlines() if '"cannot start"' in text]
+    assert line["message"].startswith(f"the lab's {what} cannot be written") and "File too large" in line["error"]
+    assert os.listdir(lab / "inbox") == ["second.json"] and os.listdir(lab / "work") == []
