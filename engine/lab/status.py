@@ -65,6 +65,7 @@ def lab_status(root: Path, now: float | None = None) -> dict[str, Any]:
             "folder": oldest[1], "file": os.fsencode(oldest[2]).decode("utf-8", "backslashreplace"),
             "age_seconds": round(max(0.0, now - oldest[0]), 1)},
         "not_taken": state.get("not_taken", []),
+        "output_blocked": state.get("output_blocked") if holder else None,
         "not_taken_as_of": "the running engine" if holder else ("the last engine's run" if state else None),
         "audit": {"bytes": history.size(), "last_record": None if last is None else {
             **{key: last.get(key) for key in ("seq", "ts", "event", "order_id")},
@@ -96,6 +97,10 @@ def render(status: dict[str, Any]) -> str:
                          f"{entry['reason']}")
     else:
         lines.append("not taken: none")
+    blocked = status["output_blocked"]
+    if blocked:
+        lines.append(f"output blocked since {blocked['since']}: {blocked['step']} {blocked['path']}: {blocked['error']} "
+                     "(retried until it works; nothing is lost)")
     audit = status["audit"]
     last = audit["last_record"]
     lines.append(f"audit log: {audit['bytes']} bytes; last record "

@@ -52,6 +52,7 @@ class Health:
         self.lock_fd: int | None = None
         self.since = ""
         self.entry_tries: dict[str, Backoff] = {}  # inbox names whose claim or read failed, with their waits
+        self.output_blocked: dict[str, Any] | None = None  # the lab's output blocked now: what, since when
 
     def lock(self) -> int | None:
         """Take the lab's lock (waiting a moment for a ``lenslane decide``) and write the state; ``None``: held."""
@@ -62,15 +63,19 @@ class Health:
                            message="another lenslane process (a watch, or a decision being applied) holds this "
                                    "lab; refusing to start")
             return None
-        self.since = datetime.now(timezone.utc).isoformat(timespec="seconds").replace("+00:00", "Z")
+        self.since = _now()
         self.write_state()
         return self.lock_fd
 
     def blocked(self, exc: OutputBlocked, delay: float, **fields: Any) -> None:
         error = exc.error
-        self.log.error("output blocked", step=exc.step, path=str(exc.path), **fields,
-                       error=getattr(error, "strerror", None) or str(error),
+        text = getattr(error, "strerror", None) or str(error)
+        self.log.error("output blocked", step=exc.step, path=str(exc.path), **fields, error=text,
                        errno=errno.errorcode.get(getattr(error, "errno", None) or 0), retry_in_s=delay)
+        if exc.step not in ENTRY_STEPS:  # the lab's output, not one entry's: `lenslane status` shows it until it clears
+            since = self.output_blocked["since"] if self.output_blocked else _now()
+            self.output_blocked = {"step": exc.step, "path": str(exc.path), "error": text, "since": since}
+            self.write_state()
 
     def entry_failed(self, name: str, exc: OutputBlocked) -> float | None:
         """An inbox entry could not be claimed or read: the wait before its next try, or ``None`` (set aside)."""
@@ -106,7 +111,7 @@ class Health:
         waits: dict[Any, Backoff] = {}
         while True:
             try:
-                return attempt()
+                done = attempt()
             except OutputBlocked as exc:
                 entry = exc.step in ENTRY_STEPS
                 if entry and not exc.claimed:
@@ -123,6 +128,11 @@ class Health:
                 if sleep(delay):  # True: a stop was asked meanwhile
                     return STOPPED
                 attempt = resume(exc) or attempt
+            else:
+                if None in waits and self.output_blocked is not None:  # the lab's output works again
+                    self.output_blocked = None
+                    self.write_state()
+                return done
 
     def set_aside(self, blocked: OutputBlocked, tries: int) -> None:
         entry = self.lab.set_aside(blocked, tries)
@@ -139,6 +149,11 @@ class Health:
             self.log.warning("health", not_taken=len(not_taken), entries=not_taken)
         if self.lock_fd is not None:
             try:
-                write_lock_state(self.lock_fd, {"since": self.since, "mode": self.mode, "not_taken": not_taken})
+                write_lock_state(self.lock_fd, {"since": self.since, "mode": self.mode, "not_taken": not_taken,
+                                                "output_blocked": self.output_blocked})
             except OSError as exc:
                 self.log.warning("state not written", error=str(exc))
+
+
+def _now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds").replace("+00:00", "Z")

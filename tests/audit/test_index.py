@@ -9,6 +9,7 @@ import shutil
 from lenslane.audit.index import INDEX_NAME, Index
 from lenslane.cli import main
 from lenslane.lab.folder import Lab
+from tests.system.driver import read_only
 
 
 def snapshot(root):
@@ -100,30 +101,6 @@ def test_history_answers_the_lab_from_the_index(make_lab, drop, order_dict):
     claim = published[-1]["received"]["claim"]
     assert history.final_record(claim).seq == published[-1]["seq"]  # the lab's FinalRecord
     assert history.final_record("0:0") is None
-
-
-@contextlib.contextmanager
-def read_only(*paths):
-    """The paths as a reader who may not write them sees them: immutable for root (whom modes do not stop), else
-    without write permission; given back afterwards."""
-    import os
-    import subprocess
-
-    if os.geteuid() == 0:
-        subprocess.run(["chattr", "+i", *map(str, paths)], check=True)
-        try:
-            yield
-        finally:
-            subprocess.run(["chattr", "-i", *map(str, paths)], check=True)
-        return
-    modes = {path: path.stat().st_mode for path in paths}
-    for path in paths:
-        path.chmod(modes[path] & ~0o222)
-    try:
-        yield
-    finally:
-        for path, mode in modes.items():
-            path.chmod(mode)
 
 
 def test_a_reader_who_may_not_write_the_lab_reads_its_index_and_never_removes_it(busy_lab, capsys):

@@ -11,7 +11,7 @@ import pytest
 
 from lenslane.audit.log import audit_files, iter_records
 from tests.conftest import REPO
-from tests.system.driver import Watch, count, drop, make_lab, order_bytes, wait_until
+from tests.system.driver import Watch, count, drop, make_lab, order_bytes, read_only, wait_until
 
 pytestmark = pytest.mark.slow
 
@@ -52,3 +52,23 @@ def test_status_beside_a_running_engine_and_after_it_stopped(tmp_path):
     assert stopped["oldest_waiting"]["file"] == "late.json" and stopped["oldest_waiting"]["age_seconds"] >= 7200
     text = status(lab)
     assert "engine: not running" in text and "inbox/late.json, 2.0 h" in text
+
+
+def test_status_shows_output_blocked_while_it_is_and_not_after(tmp_path):
+    # The outbox made unwritable under a running engine: the order waits in work/, and status says the output is
+    # blocked, where and why, until the folder is writable again; then the order is published and the line goes.
+    lab = make_lab(tmp_path / "lab")
+    watch = Watch(lab)
+    try:
+        with read_only(lab / "outbox"):
+            drop(lab, "o-1.json", order_bytes("BL-1"))
+            blocked = wait_until(lambda: status(lab, "--json")["output_blocked"], "the blocked output in status")
+            assert blocked["step"] == "publish" and blocked["path"].startswith(str(lab / "outbox"))
+            assert blocked["since"].endswith("Z") and blocked["error"]
+            assert f"output blocked since {blocked['since']}: publish " in status(lab)
+            assert count(lab / "outbox") == 0
+        wait_until(lambda: (lab / "outbox" / "BL-1.json").exists(), "the order, published once the outbox is back")
+        wait_until(lambda: status(lab, "--json")["output_blocked"] is None, "the blocked line gone")
+        assert "output blocked" not in status(lab)
+    finally:
+        assert watch.stop() == 0
