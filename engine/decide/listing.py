@@ -109,11 +109,14 @@ def queue(lab_root: Path) -> list[QueueItem]:
             if isinstance(result, dict):
                 published, compared = result.get("order"), f"{folder}/{order_id}.json"
                 break
+        reasons = report.get("reasons")
+        reason = reasons[0].get("message") if isinstance(reasons, list) and reasons and isinstance(reasons[0], dict) \
+            else None
         items.append(QueueItem(
             kind="held", order_id=order_id, path=f"held/{held_name}", since=_utc(since),
             age_seconds=round(now - since, 1), actions=("replace", "discard"), decide=DECIDE_HELD,
             differences=differences(published or {}, held), compared_with=compared,
-            pending_request=asked.get(order_id)))
+            pending_request=asked.get(order_id), reason=reason if isinstance(reason, str) else None))
     items.sort(key=lambda item: (-item.age_seconds, item.order_id))
     return items
 
@@ -144,13 +147,15 @@ def render(items: list[QueueItem]) -> str:
     lines = [f"{len(items)} waiting for a person, oldest first"]
     for item in items:
         lines.append("")
-        what = "in review" if item.kind == "review" else "held: another version of a published order"
+        what = "in review" if item.kind == "review" else "held"
         revision = f", revision {item.revision}" if item.revision else ""
         lines.append(f"{item.order_id}  {what}{revision} — {item.path}, waiting {age_text(item.age_seconds)} "
                      f"(since {item.since})")
         for flag in item.flags:
             eye = f"{flag['eye']} eye" if flag.get("eye") else "both eyes"
             lines.append(f"  [{flag['level']}] {flag['code']} ({eye}): {flag['message']}")
+        if item.reason:
+            lines.append(f"  why: {item.reason}")
         if item.kind == "held":
             against = item.compared_with or "no published result found"
             lines.append(f"  differs from {against} in {len(item.differences)} field(s):")

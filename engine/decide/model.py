@@ -50,6 +50,7 @@ class QueueItem:
     compared_with: str | None = None  # held: the published result the differences are against
     revision: int | None = None
     pending_request: str | None = None  # a decision already asked for and not yet applied
+    reason: str | None = None  # held: why it was held, in its report's words
 
     def to_dict(self) -> dict[str, Any]:
         data = asdict(self)

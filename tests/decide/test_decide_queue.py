@@ -7,7 +7,7 @@ import time
 
 from lenslane.cli import main
 from lenslane.decide import queue
-from lenslane.decide.listing import age_text, differences
+from lenslane.decide.listing import age_text, differences, render
 from tests.decide.helpers import ready_order, review_order
 
 
@@ -47,6 +47,8 @@ def test_the_queue_lists_review_and_held_orders_oldest_first(make_lab, drop):
         {"field": "lens.front_curve_d", "published": "(absent)", "held": 4.0},
         {"field": "fit.left.pd_mm", "published": 32.0, "held": 31.0},
     ]
+    assert held.reason.startswith("order OK-0001 was already published (outbox/OK-0001.json) with different content")
+    assert "\n  why: order OK-0001 was already published" in render(items)  # the held report's own words
     assert review.path == "review/RV-0001.json" and review.actions == ("approve", "refuse")
     assert any(f["code"] == "fitting-height-low" and f["level"] == "review" and f["eye"] == "right"
                for f in review.flags)
