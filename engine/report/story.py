@@ -237,13 +237,14 @@ def _check_result_files(lab_root: Path, stories: list[dict[str, Any]],
                 latest[outcome["result"]]["result_now"] = "replaced by a later processing"
             latest[outcome["result"]] = outcome
     for path, outcome in latest.items():
+        folder = path.split("/", 1)[0]  # outbox, or review while it waits for a person
         try:
             data = (Path(lab_root) / path).read_bytes()
         except (FileNotFoundError, IsADirectoryError):
-            outcome["result_now"] = "no longer in the outbox"
+            outcome["result_now"] = f"no longer in {folder}/"
             continue
         same = hashlib.sha256(data).hexdigest() == outcome.get("result_sha256")
-        outcome["result_now"] = "still in the outbox, unchanged" if same else "CHANGED since it was published"
+        outcome["result_now"] = f"still in {folder}/, unchanged" if same else "CHANGED since it was published"
 
 
 def order_story(lab_root: Path, order_id: str, index: Index | None = None) -> dict[str, Any]:

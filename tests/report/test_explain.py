@@ -118,7 +118,18 @@ def test_explain_reads_the_log_when_the_outbox_is_gone(make_lab, drop, compensat
     (lab.outbox / "CMP-0001.json").unlink()
     code, out, _ = explain(lab, "CMP-0001", capsys)
     assert code == 0 and f"surfacing  {MINUS}8.13 DS" in out
-    assert "no longer in the outbox" in out
+    assert "no longer in outbox/" in out
+
+
+def test_a_result_waiting_for_a_person_is_told_where_it_waits(make_lab, drop, capsys):
+    from tests.decide.helpers import review_order
+
+    lab = make_lab()
+    drop(lab, review_order("RV-0001"))
+    lab.drain()
+    code, out, _ = explain(lab, "RV-0001", capsys)
+    assert code == 0 and "review/RV-0001.json" in out and "still in review/, unchanged" in out
+    assert "outbox" not in out.split("Result:", 1)[1].splitlines()[0]
 
 
 def test_an_order_processed_twice_is_told_twice(make_lab, drop, compensated, capsys):
