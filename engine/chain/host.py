@@ -133,7 +133,8 @@ class Host:
 
 
 def installed_to_load() -> set[str] | None:
-    """The installed plugins to load by name, or None for all (see :data:`NO_AUTOLOAD_VARIABLE`)."""
+    """The installed plugins to load, by entry-point name or as ``name=module`` (only the entry point of that name
+    that loads that module), or None for all (see :data:`NO_AUTOLOAD_VARIABLE`)."""
     if os.environ.get(NO_AUTOLOAD_VARIABLE, "") in ("", "0"):
         return None
     return {name.strip() for name in os.environ.get(PLUGINS_VARIABLE, "").split(",") if name.strip()}
@@ -244,7 +245,8 @@ def _load_installed(pm: pluggy.PluginManager, infos: dict[str, PluginInfo], bloc
     names = []
     for entry_point in metadata.entry_points(group=ENTRY_POINT_GROUP):
         names.append(entry_point.name)
-        if entry_point.name in blocked or (wanted is not None and entry_point.name not in wanted):
+        if entry_point.name in blocked or (
+                wanted is not None and not {entry_point.name, f"{entry_point.name}={entry_point.value}"} & wanted):
             continue  # not even imported
         dist = entry_point.dist
         info = PluginInfo(entry_point.name, dist.metadata["Name"] if dist else "unknown distribution",

@@ -29,9 +29,10 @@ def install_plugin(tmp_path, monkeypatch):
         (site / f"{module}.py").write_text(source, encoding="utf-8")
         write_distribution(site, project or f"lenslane-test-{entry_name.replace('_', '-')}", version,
                            {entry_name: module})
-        # Installed plugins load only by name in the engine's tests (see tests/conftest.py): this one is asked for.
+        # Installed plugins load only by name in the engine's tests (see tests/conftest.py): this one is asked for,
+        # by its name and module, so a plugin of the same name installed in the environment is not loaded with it.
         wanted = [n for n in os.environ.get(PLUGINS_VARIABLE, "").split(",") if n]
-        monkeypatch.setenv(PLUGINS_VARIABLE, ",".join([*wanted, entry_name]))
+        monkeypatch.setenv(PLUGINS_VARIABLE, ",".join([*wanted, f"{entry_name}={module}"]))
         return module
 
     return install

@@ -18,7 +18,7 @@ import pytest
 from lenslane import Flag, Stage
 from lenslane.chain import hookspecs
 from lenslane.config import ConfigError, LabConfig
-from lenslane.chain.host import start_host
+from lenslane.chain.host import PLUGINS_VARIABLE, start_host
 from lenslane.contract.intake import read_order
 from lenslane.chain.pipeline import Pipeline, StageFailure
 
@@ -67,6 +67,19 @@ def run(view, params):
 def lenslane_stages():
     return [Stage(name="lab_note", run=run, writes=("lenses.*.lab.note",))]
 '''
+
+
+def test_a_plugin_of_the_same_name_installed_beside_a_test_plugin_is_not_loaded_with_it(install_plugin, order_dict,
+                                                                                        monkeypatch):
+    # Another distribution's "lab_note" in the environment, not asked for: the test names its own by module.
+    install_plugin("lab_note", NOTE_STAGE.replace("checked", "someone else's"), project="someone-elses-lab-note")
+    monkeypatch.setenv(PLUGINS_VARIABLE, "")
+    install_plugin("lab_note", NOTE_STAGE)
+    host = start_host(LabConfig.model_validate({"engine": {"chain": ["normalize", "lab_note"]}}))
+    result = run_order(host, order_dict)
+    assert result["lenses"]["right"]["lab"] == {"note": "checked"}
+    assert [entry["distribution"] for entry in result["engine"]["chain"] if entry["stage"] == "lab_note"] == [
+        "lenslane-test-lab-note"]
 
 
 def test_stages_from_a_plugin_run_in_the_chain_and_are_recorded(install_plugin, order_dict):
