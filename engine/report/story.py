@@ -14,6 +14,7 @@ the first format, a record per event, is told the same way.
 """
 from __future__ import annotations
 
+import copy
 import hashlib
 from pathlib import Path
 from typing import Any
@@ -185,7 +186,7 @@ def _final_lenses(processing: _Processing) -> dict[str, Any]:
             place = lenses.setdefault(parts[1], {})
             for part in parts[2:-1]:
                 place = place.setdefault(part, {})
-            place[parts[-1]] = record.get("after")
+            place[parts[-1]] = copy.deepcopy(record.get("after"))  # a later change to a part changes this copy only
     return lenses
 
 

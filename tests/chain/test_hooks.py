@@ -82,6 +82,42 @@ def test_a_plugin_of_the_same_name_installed_beside_a_test_plugin_is_not_loaded_
         "lenslane-test-lab-note"]
 
 
+SPHERE_STAGE = '''
+from lenslane import Change, Stage, hookimpl
+
+def run(view, params):
+    for eye in view.eyes:
+        yield Change(f"lenses.{eye}.surfacing.sphere", -7.75, "The lab's own correction.", "lab rule", "Common practice")
+
+@hookimpl
+def lenslane_stages():
+    return [Stage(name="sphere_nudge", run=run, writes=("lenses.*.surfacing.sphere",))]
+'''
+
+
+def test_explain_tells_each_change_as_recorded_when_a_later_change_sets_a_part_of_it(install_plugin, make_lab, drop,
+                                                                                   order_dict):
+    # normalize sets lenses.<eye>.surfacing whole; a later stage sets its sphere: the story must tell normalize's
+    # change as the log holds it, and the final lens with the later sphere.
+    from lenslane.audit.index import level_index
+    from lenslane.audit.log import iter_records, unpack
+    from lenslane.report import order_story
+
+    install_plugin("sphere_nudge", SPHERE_STAGE)
+    lab = make_lab({"engine": {"chain": ["validate", "normalize", "sphere_nudge"]}})
+    drop(lab, order_dict)
+    lab.drain()
+    with level_index(lab.root) as index:
+        [record] = [unpack(r, index.body) for r in iter_records(lab.root) if r.get("event") == "published"]
+    recorded = {c["field"]: c["after"] for c in record["changes"] if c["stage"] == "normalize"}
+    [processing] = order_story(lab.root, order_dict["order_id"])["processings"]
+    told = {c["field"]: c["after"] for stage in processing["stages"] if stage["stage"] == "normalize"
+            for c in stage["changes"]}
+    assert told["lenses.right.surfacing"] == recorded["lenses.right.surfacing"]
+    assert told["lenses.right.surfacing"]["sphere"] != -7.75
+    assert processing["lenses"]["right"]["surfacing"]["sphere"] == -7.75
+
+
 def test_stages_from_a_plugin_run_in_the_chain_and_are_recorded(install_plugin, order_dict):
     install_plugin("lab_note", NOTE_STAGE)
     host = start_host(LabConfig.model_validate({"engine": {"chain": ["normalize", "lab_note"]}}))
