@@ -16,12 +16,12 @@ import traceback
 from dataclasses import dataclass, field
 from typing import Any
 
-from pydantic import ValidationError
+from pydantic import TypeAdapter, ValidationError
 
 from lenslane.chain import core
 from lenslane.chain.host import Host, PluginInfo
 from lenslane.chain.stage import Change, Flag, OrderView, Stage
-from lenslane.contract.models import RESULT_FORMAT, LensOrder, LensOrderResult
+from lenslane.contract.models import RESULT_FORMAT, LensOrder, LensOrderResult, lens_field_checks
 from lenslane.contract.precision import NotPlain, plain_copy, present
 from lenslane.vocabulary import CAUTION, EYES, LEVELS
 
@@ -80,6 +80,9 @@ class Pipeline:
             (host.plugins[name], pm.subset_hook_caller("lenslane_result_ready",
                                                        [p for n, p in pm.list_name_plugin() if n != name and p is not None]))
             for name in observers] if side_effects else []
+        # What each field of the contract's lens may hold, to check a value as it is set (before a later stage
+        # computes with it: a boolean taken for a number would be published as one).
+        self.field_checks = lens_field_checks()
         # The code of each plugin's lenslane_run_stage wrapper, to tell a failing wrapper from its stage.
         self.wrappers = {impl.function.__code__: host.plugins[impl.plugin_name]
                          for impl in self.run_stage.get_hookimpls() if impl.plugin_name != "core"}
@@ -110,7 +113,7 @@ class Pipeline:
                 raise self._blame(stage, exc) from exc
             for proposal in proposals or ():
                 if isinstance(proposal, Change):
-                    changes.append(_apply(stage, proposal, state, shown, eyes))
+                    changes.append(_apply(stage, proposal, state, shown, eyes, self.field_checks))
                 elif isinstance(proposal, Flag):
                     flags.append(_flag_record(stage.name, proposal, eyes))
                 else:
@@ -154,8 +157,8 @@ class Pipeline:
         return StageFailure(stage.name, message)
 
 
-def _apply(stage: Stage, change: Change, state: dict[str, Any], shown: dict[str, Any],
-           eyes: list[str]) -> dict[str, Any]:
+def _apply(stage: Stage, change: Change, state: dict[str, Any], shown: dict[str, Any], eyes: list[str],
+           checks: dict[tuple[str, ...], TypeAdapter[Any]]) -> dict[str, Any]:
     """Apply one change to ``state`` and its rounded twin ``shown``; return its record."""
     path = change.field
     if not isinstance(path, str) or not stage.may_write(path):
@@ -174,6 +177,13 @@ def _apply(stage: Stage, change: Change, state: dict[str, Any], shown: dict[str,
         _check_json(stage.name, path, change.value)  # the slow walk, only now: it says where and what
         _check_json(stage.name, f"{path} (inputs)", change.inputs)
         raise StageFailure(stage.name, f"wrote a value to {path} that is not plain JSON") from None
+    check = checks.get(tuple(parts[2:]))
+    if check is not None:
+        try:
+            check.validate_python(after)
+        except ValidationError as exc:
+            problem = _problem(exc.errors(include_url=False)[0], parts)
+            raise StageFailure(stage.name, f"wrote a value the result contract refuses: {problem}") from None
     node = state["lenses"][parts[1]]  # made for every eye at the start; no change can replace it
     shown = shown[parts[1]]
     for part in parts[2:-1]:
@@ -245,8 +255,7 @@ def _validate(result: dict[str, Any]) -> None:
     except ValidationError as exc:
         error = exc.errors(include_url=False)[0]
         location = [str(part) for part in error["loc"]]
-        where = ".".join(location)
-        problem = f"{where}: {error['msg']}" + ("" if error["type"] == "missing" else f" (got {error['input']!r})")
+        problem = _problem(error, [])
         stage = _writer(result, location)
         if stage is None:
             raise StageFailure(None, f"{problem}; no stage of the chain wrote it", "(result)") from None
@@ -263,3 +272,9 @@ def _writer(result: dict[str, Any], location: list[str]) -> str | None:
         if where == written or where.startswith(written + ".") or written.startswith(where + "."):
             return str(change["stage"])
     return None
+
+
+def _problem(error: Any, path: list[str]) -> str:
+    """One contract error as a rejected order's reasons say it: where (below ``path``), what, and what was there."""
+    where = ".".join([*path, *(str(part) for part in error["loc"])])
+    return f"{where}: {error['msg']}" + ("" if error["type"] == "missing" else f" (got {error['input']!r})")

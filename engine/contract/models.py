@@ -9,9 +9,9 @@ from __future__ import annotations
 
 import re
 from datetime import datetime
-from typing import Annotated, Any, Literal
+from typing import Annotated, Any, Literal, get_args
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationInfo, field_validator, model_validator
+from pydantic import BaseModel, ConfigDict, Field, TypeAdapter, ValidationInfo, field_validator, model_validator
 
 from lenslane.vocabulary import EYES, Design, Eye, Level, Mount, Status
 
@@ -287,6 +287,21 @@ class Approval(_Out):
     at: str
     note: str
     flags_acknowledged: list[str]
+
+
+def lens_field_checks() -> dict[tuple[str, ...], TypeAdapter[Any]]:
+    """What each field of a result's lens may hold, by its path below ``lenses.<eye>`` (``("surfacing",)``,
+    ``("surfacing", "sphere")``…), as the result model says: for checking one value as a stage sets it, before a
+    later stage computes with it. Fields the model does not name (a plugin's own) have none."""
+    checks: dict[tuple[str, ...], TypeAdapter[Any]] = {}
+    strict = ConfigDict(strict=True, allow_inf_nan=False)
+    for name, field in LensResult.model_fields.items():
+        checks[(name,)] = TypeAdapter(field.annotation)  # a model, with its own strict settings
+        model = next(part for part in (field.annotation, *get_args(field.annotation)) if isinstance(part, type)
+                     and issubclass(part, BaseModel))
+        for part_name, part in model.model_fields.items():
+            checks[(name, part_name)] = TypeAdapter(Annotated[part.annotation, part], config=strict)
+    return checks
 
 
 class LensOrderResult(_Out):

@@ -100,6 +100,22 @@ def test_a_value_the_result_contract_refuses_fails_the_order_naming_the_stage(or
     assert caught.value.stage == "overwrite" and caught.value.field == "(stage overwrite)"
 
 
+@pytest.mark.parametrize("value, problem", [
+    (True, r"lenses\.right\.surfacing\.sphere: Input should be a valid number \(got True\)"),
+    ("-8.00", r"lenses\.right\.surfacing\.sphere: Input should be a valid number \(got '-8\.00'\)"),
+])
+def test_a_wrong_value_is_refused_as_it_is_set_not_computed_with_by_the_next_stage(order_dict, value, problem):
+    # ORDER_FORMAT.md: a power is a number. A boolean written where a power goes must not be read as 1 D by the
+    # stages after it (and published as a power they computed from it), nor a text blamed on the stage that
+    # tripped over it: the order is refused naming the stage that wrote it.
+    chain = '[engine]\nchain = ["validate", "normalize", "overwrite", "vertex", "tilt", "generator", "geometry", "safety"]\n'
+    order_dict["rx"] = {"right": {"sphere": -8.0}, "vertex_mm": 12.0}  # fitted at 14 mm: vertex recomputes the power
+    order_dict["fit"]["vertex_mm"] = 14.0
+    with pytest.raises(StageFailure, match=problem) as caught:
+        run_order(host_with(chain, overwrite=Overwrite(value, "sphere")), order_dict)
+    assert caught.value.stage == "overwrite"
+
+
 def test_a_result_missing_what_the_contract_requires_fails_without_blaming_a_stage(order_dict):
     # A chain without normalize writes no rx or surfacing, which every published lens must have.
     with pytest.raises(StageFailure, match=r"lenses\.right\.rx: Field required; no stage of the chain wrote it") as caught:
