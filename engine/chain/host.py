@@ -22,6 +22,7 @@ from lenslane import __version__
 from lenslane.chain import hookspecs
 from lenslane.chain.stage import Stage
 from lenslane.config import ConfigError, LabConfig, LabSettings, Material, config_sha256, format_errors
+from lenslane.vocabulary import EYES
 
 ENTRY_POINT_GROUP = "lenslane.plugins"
 #: The engine's own distribution: the one the built-in plugins come with.
@@ -303,11 +304,21 @@ def _collect_stages(pm: pluggy.PluginManager, infos: dict[str, PluginInfo]) -> d
         for stage in _call_start_hook(impl, infos, "lenslane_stages") or ():
             if not isinstance(stage, Stage):
                 raise PluginError(f"{info}: lenslane_stages returned {stage!r}, not a Stage")
+            outside = [pattern for pattern in stage.writes if not _is_lens_field(pattern)]
+            if outside:
+                raise PluginError(f"{info}: stage {stage.name!r} declares it writes {outside[0]!r}; a stage writes "
+                                  "only fields of the lenses, lenses.<right, left or *>.<field>…")
             if stage.name in stages:
                 raise ConfigError(f"stage {stage.name!r} is provided by both {stages[stage.name].plugin.name!r} "
                                   f"and {info.name!r}")
             stages[stage.name] = StageInfo(stage, info)
     return stages
+
+
+def _is_lens_field(pattern: str) -> bool:
+    """Whether a ``writes`` pattern names fields of the lenses (the only part of a result a stage may write)."""
+    parts = pattern.split(".")
+    return len(parts) >= 3 and parts[0] == "lenses" and parts[1] in ("*", *EYES) and all(parts[2:])
 
 
 def _collect_materials(pm: pluggy.PluginManager, infos: dict[str, PluginInfo]) -> dict[str, Material]:

@@ -1,11 +1,13 @@
 """The plugin host and the pipeline: chain from the config, proposals applied and recorded, faults contained."""
 from __future__ import annotations
 
+import re
+
 import pytest
 
 from lenslane import Change, Flag, Stage, hookimpl
 from lenslane.config import ConfigError, parse_config
-from lenslane.chain.host import start_host
+from lenslane.chain.host import PluginError, start_host
 from lenslane.chain.pipeline import StageFailure
 from tests.conftest import run_order
 
@@ -114,6 +116,15 @@ def test_a_wrong_value_is_refused_as_it_is_set_not_computed_with_by_the_next_sta
     with pytest.raises(StageFailure, match=problem) as caught:
         run_order(host_with(chain, overwrite=Overwrite(value, "sphere")), order_dict)
     assert caught.value.stage == "overwrite"
+
+
+@pytest.mark.parametrize("writes", [("status",), ("lenses.*",), ("lenses.middle.rx",), ("order.rx",)])
+def test_a_stage_declaring_it_writes_outside_the_lenses_stops_the_start(writes):
+    # A stage may write only the lenses' fields (DEVELOPERS.md, the result contract): a declaration that could
+    # never be honoured is refused when the engine starts, not by failing every order.
+    with pytest.raises(PluginError, match=rf"stage 'odd' declares it writes {re.escape(repr(writes[0]))}; a stage "
+                                          r"writes only fields of the lenses"):
+        host_with(odd=NoteStage(name="odd", writes=writes))
 
 
 def test_a_result_missing_what_the_contract_requires_fails_without_blaming_a_stage(order_dict):
