@@ -109,7 +109,7 @@ class Checkpoint:
 
     @property
     def name(self) -> str:
-        return f"checkpoint on line {self.line} (seq {self.fields['seq']}, {self.fields.get('at')})"
+        return f"checkpoint on line {self.line} of {self.fields.get('at')}"  # a finding adds its seq
 
 
 def read_checkpoints(path: Path) -> list[Checkpoint]:

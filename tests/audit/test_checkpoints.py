@@ -51,8 +51,8 @@ def test_a_consistent_rewrite_verifies_alone_but_not_against_a_checkpoint(busy_l
 
     code, out = run(capsys, "audit", "verify", str(busy_lab.root), "--checkpoints", str(tmp_path / "kept.txt"))
     assert code == 1
-    assert out[-1].startswith(f"checkpoints BROKEN at checkpoint on line 1 (seq {kept['seq']}, {kept['at']}) "
-                              f"(seq {kept['seq']}): record seq {kept['seq']} now has hash ")
+    assert out[-1].startswith(f"checkpoints BROKEN at checkpoint on line 1 of {kept['at']} (seq {kept['seq']}): "
+                              f"record seq {kept['seq']} now has hash ")
     assert "the log was rewritten" in out[-1]
 
 
@@ -62,7 +62,7 @@ def test_a_log_cut_short_is_caught_by_a_checkpoint(busy_lab, capsys, tmp_path):
     path.write_bytes(b"".join(path.read_bytes().splitlines(keepends=True)[:-2]))
     code, out = run(capsys, "audit", "verify", str(busy_lab.root), "--checkpoints", str(tmp_path / "kept.txt"))
     assert code == 1
-    assert any(line.startswith(f"checkpoints BROKEN at checkpoint on line 1 (seq {kept['seq']}") and
+    assert any(line.startswith(f"checkpoints BROKEN at checkpoint on line 1 of {kept['at']} (seq {kept['seq']})") and
                f"the log ends at seq {kept['seq'] - 2}" in line and "cut off the end" in line for line in out)
 
 
