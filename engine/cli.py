@@ -120,6 +120,9 @@ def cmd_audit_keygen(args) -> int:
 def cmd_explain(args) -> int:
     from lenslane.report import configurations, order_story, render_configurations, render_text
 
+    if args.html and (args.json or args.config):
+        print("lenslane: --html writes the order page, which has neither --json nor --config", file=sys.stderr)
+        return 2
     story = order_story(Path(args.lab), args.order_id)
     if args.html and story["found"]:
         from lenslane.web.page import render_order_page
@@ -135,8 +138,9 @@ def cmd_explain(args) -> int:
         if args.config:
             print()
             print(render_configurations(configurations(Path(args.lab), story)))
+            print(f"\n{CAUTION}")  # the text ends with the caution, the configuration too
     else:
-        print(f"lenslane: {render_text(story)}", file=sys.stderr)
+        print(f"lenslane: {render_text(story)}\n{CAUTION}", file=sys.stderr)
     return 0 if story["found"] else 1
 
 

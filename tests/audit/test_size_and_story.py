@@ -9,6 +9,7 @@ from pathlib import Path
 from lenslane.audit.records import AUDIT_NAME, DEFINE_EVENT
 from lenslane.audit.verify import verify
 from lenslane.audit.writer import AuditLog
+from lenslane.vocabulary import CAUTION
 from lenslane.cli import main
 from lenslane.report import order_story
 
@@ -78,7 +79,8 @@ def test_explain_config_shows_the_configuration_in_force(busy_lab, capsys):
     out = capsys.readouterr().out
     sha = busy_lab.host.config_sha256
     assert f"Configuration in force (sha256 {sha}):" in out
-    shown = json.loads(out.split(f"Configuration in force (sha256 {sha}):\n", 1)[1])
+    assert out.rstrip().endswith(CAUTION)  # the text ends with the caution, the configuration too
+    shown = json.loads(out.split(f"Configuration in force (sha256 {sha}):\n", 1)[1].rsplit(CAUTION, 1)[0])
     assert shown == json.loads(json.dumps(busy_lab.host.effective_config))
     defines = [json.loads(line) for line in open(busy_lab.root / AUDIT_NAME, "rb") if b'"kind":"config"' in line]
     assert len(defines) == 1  # once per distinct configuration

@@ -32,10 +32,17 @@ def compensated(order_dict):
     return order
 
 
+def test_html_with_json_or_config_is_refused(busy_lab, capsys, tmp_path):
+    for flag in ("--json", "--config"):
+        code, out, err = explain(busy_lab, "TST-0001", capsys, "--html", str(tmp_path / "page.html"), flag)
+        assert code == 2 and out == "" and "--html writes the order page" in err
+    assert not (tmp_path / "page.html").exists()
+
+
 def test_an_unknown_order_is_said_to_be_unknown(busy_lab, capsys):
     code, out, err = explain(busy_lab, "NOPE-1", capsys)
     assert code == 1 and out == ""
-    assert err.strip() == f"lenslane: order NOPE-1 is not in the audit log of {busy_lab.root}"
+    assert err.splitlines() == [f"lenslane: order NOPE-1 is not in the audit log of {busy_lab.root}", CAUTION]
     code, out, _ = explain(busy_lab, "NOPE-1", capsys, "--json")
     assert code == 1 and json.loads(out)["found"] is False and json.loads(out)["processings"] == []
 
