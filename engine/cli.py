@@ -398,6 +398,7 @@ def main(argv: list[str] | None = None) -> int:
     from lenslane.chain.host import PluginError
     from lenslane.config import ConfigError
 
+    from lenslane.audit.index import Undefined
     from lenslane.lab.files import NotALabFolder, require_lab
 
     args = build_parser().parse_args(argv)
@@ -419,6 +420,9 @@ def main(argv: list[str] | None = None) -> int:
     except NotALabFolder as exc:
         print(f"lenslane: {exc}", file=sys.stderr)
         return 2
+    except Undefined as exc:  # a story told from a log whose define records were removed
+        print(f"lenslane: {exc}", file=sys.stderr)
+        return 1
     except sqlite3.OperationalError as exc:  # the audit index on a full disk, say: said, not a traceback
         print(f"lenslane: the lab's audit index (audit.sqlite) cannot be used: {exc}", file=sys.stderr)
         return 1

@@ -103,6 +103,14 @@ def _text(value: Any) -> str | None:
     return value if isinstance(value, str) else None
 
 
+class Undefined(KeyError):
+    """A record refers to a define record the log does not hold (records were removed from it)."""
+
+    def __str__(self) -> str:
+        return (f"a record refers to define {self.args[0]!r}, which the audit log does not hold: records were "
+                "removed from the log (`lenslane audit verify --full` tells which)")
+
+
 class Index:
     """The index of one lab's audit log.
 
@@ -356,14 +364,14 @@ class Index:
         return (row[0], row[1]) if row else None
 
     def body(self, ref: int | str) -> Any:
-        """The body of the define record a record refers to, read from the log (``KeyError`` when the log
-        defines no such ref)."""
+        """The body of the define record a record refers to, read from the log (:class:`Undefined`, a
+        ``KeyError``, when the log defines no such ref)."""
         found = self.define_at(ref)
         place = self.place(found[0]) if found else None
         record = self.read(place) if place else None
         if record is None or record.get("event") != DEFINE_EVENT or (
                 isinstance(ref, str) and not str(record.get("sha256")).startswith(ref)):
-            raise KeyError(ref)
+            raise Undefined(ref)
         return record["body"]
 
     def outcomes_between(self, start: str, end: str) -> list[tuple[str, str | None, int]]:

@@ -114,3 +114,17 @@ def test_a_reader_who_may_not_write_the_lab_reads_its_index_and_never_removes_it
         assert capsys.readouterr().out.startswith("audit log intact")
         assert (root / INDEX_NAME).exists()
     assert snapshot(root) == before  # the index is there, unchanged
+
+
+def test_a_story_whose_define_records_were_removed_is_refused_in_one_line(make_lab, drop, order_dict, capsys):
+    # The oldest audit file removed: the later records still refer to the defines it held. explain says so and
+    # where to look, exit 1, not a traceback.
+    lab = busy_rotating_lab(make_lab, drop, order_dict)
+    first = sorted(lab.root.glob("audit-*.jsonl"))[0]
+    first.unlink()
+    assert main(["audit", "reindex", str(lab.root)]) == 0
+    capsys.readouterr()
+    assert main(["explain", str(lab.root), "IDX-0006"]) == 1
+    err = capsys.readouterr().err
+    assert err.startswith("lenslane: a record refers to define ") and "which the audit log does not hold" in err
+    assert "`lenslane audit verify --full` tells which" in err
