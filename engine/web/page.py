@@ -24,7 +24,7 @@ from lenslane.decide.model import ACTION_DONE
 from lenslane.plugins.optics.outline import DEFAULT_EXPONENT
 from lenslane.report.notation import geometry_text, inputs_text, number, value_text
 from lenslane.report.pictures import eye_pictures
-from lenslane.report.story import order_story
+from lenslane.report.story import configurations, order_story
 from lenslane.report.text import OUTCOME_MEANINGS, REFUSED_ON_READING, UNFINISHED
 from lenslane.vocabulary import CAUTION, EYES, WHAT_TO_DECIDE
 
@@ -68,15 +68,15 @@ def _read_verified(lab_root: Path, relative: str | None, sha256: str | None) -> 
         return None
 
 
-def outline_exponent(lab_root: Path) -> float:
-    """The lab's superellipse exponent for orders with neither outline nor ED (its config, else the default)."""
-    from lenslane.config import ConfigError, load_config
+def outline_exponent(config: dict[str, Any] | None) -> float:
+    """The superellipse exponent for orders with neither outline nor ED in a configuration as the log recorded it
+    (the one in force when the order ran, not the lab's file now); the default when it gives none."""
     from lenslane.plugins.geometry import GeometryParams
 
     try:
-        settings = load_config(Path(lab_root)).stages.get("geometry", {})
+        settings = ((config or {}).get("stages") or {}).get("geometry") or {}
         return GeometryParams.model_validate(settings).outline_exponent_without_ed
-    except (ConfigError, ValueError, OSError):
+    except (ValueError, AttributeError):
         return DEFAULT_EXPONENT
 
 
@@ -166,10 +166,11 @@ def _with_texts(processing: dict[str, Any]) -> dict[str, Any]:
 def order_page_data(lab_root: Path, order_id: str) -> dict[str, Any]:
     """Everything the order page shows, as plain data: the story, flags by level, the pictures."""
     story = order_story(Path(lab_root), order_id)
-    exponent = outline_exponent(lab_root) if story["found"] else DEFAULT_EXPONENT
+    in_force = {c["config_sha256"]: c["config"] for c in configurations(lab_root, story)} if story["found"] else {}
     processings = []
     for count, processing in enumerate(story["processings"], start=1):
         order, source = _order_as_received(lab_root, processing)
+        exponent = outline_exponent(in_force.get(processing["engine"].get("config_sha256")))
         processings.append({**_with_texts(processing), "number": count, "order_facts": _order_facts(order),
                             "pictures": _pictures(processing, order, source, exponent, f"p{count}")})
     decisions = story.get("decisions") or []

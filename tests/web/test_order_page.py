@@ -208,3 +208,19 @@ def test_a_decision_needs_a_name_and_goes_only_through_the_decision_mechanism(cl
     story = web.get("/orders/DP-1011").get_data(as_text=True)
     assert "<strong>refuse</strong> by <strong>T-7</strong>" in story and "Fit to be re-measured" in story
     assert '<h1>Order DP-1011 <span class="status decided">refused</span>' in story
+
+
+def test_the_lens_is_drawn_with_the_configuration_in_force_when_it_was_made(sample_lab):
+    # DP-1001 gives neither outline nor ED: its outline is the lab's superellipse, exponent 4 when it was made.
+    # The lab changes the exponent afterwards; the page still draws (and says) the outline the lens was made for.
+    from lenslane.config import load_config
+
+    lab, _ = sample_lab
+    assert "exponent 4" in render_order_page(lab.root, "DP-1001")
+    config = lab.root / "lenslane.toml"
+    text = config.read_text()
+    assert "# outline_exponent_without_ed = 4.0" in text  # the template's line, under [stages.geometry]
+    config.write_text(text.replace("# outline_exponent_without_ed = 4.0", "outline_exponent_without_ed = 2.0"))
+    assert load_config(lab.root).stages["geometry"]["outline_exponent_without_ed"] == 2.0
+    html = render_order_page(lab.root, "DP-1001")
+    assert "exponent 4" in html and "exponent 2" not in html
