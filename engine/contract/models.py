@@ -296,11 +296,13 @@ def lens_field_checks() -> dict[tuple[str, ...], TypeAdapter[Any]]:
     checks: dict[tuple[str, ...], TypeAdapter[Any]] = {}
     strict = ConfigDict(strict=True, allow_inf_nan=False)
     for name, field in LensResult.model_fields.items():
-        checks[(name,)] = TypeAdapter(field.annotation)  # a model, with its own strict settings
-        model = next(part for part in (field.annotation, *get_args(field.annotation)) if isinstance(part, type)
+        annotation: Any = field.annotation
+        checks[(name,)] = TypeAdapter(annotation)  # a model, with its own strict settings
+        model = next(part for part in (annotation, *get_args(annotation)) if isinstance(part, type)
                      and issubclass(part, BaseModel))
         for part_name, part in model.model_fields.items():
-            checks[(name, part_name)] = TypeAdapter(Annotated[part.annotation, part], config=strict)
+            constrained: Any = Annotated[part.annotation, part]
+            checks[(name, part_name)] = TypeAdapter(constrained, config=strict)
     return checks
 
 
