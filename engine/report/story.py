@@ -233,19 +233,28 @@ def _check_result_files(lab_root: Path, stories: list[dict[str, Any]],
                 moved = latest.pop(move["from"])
                 to = f"moved to {move['to']}" if move.get("to") else "removed"
                 moved["result_now"] = f"{to} by the {outcome['action']} decision (seq {outcome['seq']})"
+                if move.get("to"):  # and there now? (a refused result in rejected/, a superseded one in archive/)
+                    state = _file_state(Path(lab_root) / move["to"], move.get("sha256"))
+                    moved["result_now"] += {"same": ", unchanged there", "gone": "; no longer there",
+                                            "changed": "; CHANGED there since"}[state]
         if outcome.get("event", "published") == "published" and outcome.get("result"):
             if outcome["result"] in latest:
                 latest[outcome["result"]]["result_now"] = "replaced by a later processing"
             latest[outcome["result"]] = outcome
     for path, outcome in latest.items():
         folder = path.split("/", 1)[0]  # outbox, or review while it waits for a person
-        try:
-            data = (Path(lab_root) / path).read_bytes()
-        except (FileNotFoundError, IsADirectoryError):
-            outcome["result_now"] = f"no longer in {folder}/"
-            continue
-        same = hashlib.sha256(data).hexdigest() == outcome.get("result_sha256")
-        outcome["result_now"] = f"still in {folder}/, unchanged" if same else "CHANGED since it was published"
+        outcome["result_now"] = {"same": f"still in {folder}/, unchanged", "gone": f"no longer in {folder}/",
+                                 "changed": "CHANGED since it was published"}[
+            _file_state(Path(lab_root) / path, outcome.get("result_sha256"))]
+
+
+def _file_state(path: Path, sha256: Any) -> str:
+    """``same`` when the file has the sha256 the log recorded, ``changed`` when it has other bytes, else ``gone``."""
+    try:
+        data = path.read_bytes()
+    except (FileNotFoundError, IsADirectoryError):
+        return "gone"
+    return "same" if hashlib.sha256(data).hexdigest() == sha256 else "changed"
 
 
 def order_story(lab_root: Path, order_id: str, index: Index | None = None) -> dict[str, Any]:

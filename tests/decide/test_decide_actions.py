@@ -94,6 +94,11 @@ def test_replace_publishes_the_next_revision_and_keeps_the_superseded_result(lab
     story = render(order_story(root, "OK-0001"))
     assert "== Decision: replace by tech-07" in story and "revision 2 (supersedes sha256 " + old_sha in story
     assert "moved to archive/OK-0001.r1.json by the replace decision" in story
+    assert ", unchanged there" in story.split("moved to archive/OK-0001.r1.json", 1)[1].splitlines()[0]
+    # The superseded result is still checked where the decision put it: an edit there is told.
+    (root / "archive" / "OK-0001.r1.json").write_bytes(b"edited\n")
+    story = render(order_story(root, "OK-0001"))
+    assert "; CHANGED there since" in story.split("moved to archive/OK-0001.r1.json", 1)[1].splitlines()[0]
     assert story.count("Input:    now archive/OK-0001-corrected.json") == 2  # the held pass and revision 2
 
 
